@@ -1,0 +1,1 @@
+//! Builders for small ONNX models used by tests, fixtures and benchmarks.
