@@ -1,8 +1,28 @@
 //! shunt audits the residual structure of exported ONNX models.
+//!
+//! The pipeline runs one way: [`load`] decodes the file, [`graph`] builds
+//! the dataflow graph, [`residual`] finds the blocks, [`classify`] says what
+//! kind each is, [`scan`] puts it together into a [`report::ScanReport`], and
+//! [`report`] renders it.
+//!
+//! ```no_run
+//! use std::path::Path;
+//! let config = shunt::scan::ScanConfig::standard();
+//! let report = shunt::scan::scan_file(Path::new("model.onnx"), &config)?;
+//! println!("{} residual blocks", report.blocks.len());
+//! # Ok::<(), shunt::Error>(())
+//! ```
 #![deny(missing_docs)]
 
+pub mod classify;
 pub mod error;
+pub mod graph;
+pub mod load;
 pub mod proto;
+pub mod report;
+pub mod residual;
+pub mod scan;
+#[doc(hidden)]
 pub mod testkit;
 
 pub use error::{Diagnostic, Error, ErrorKind, Result, Severity};

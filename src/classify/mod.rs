@@ -1,0 +1,416 @@
+//! What kind of block each detected block is: where its normalisation and
+//! activation sit relative to the merge (placement), what its branch holds,
+//! and whether its branch is dead by construction.
+//!
+//! **Invariant:** classification reads the graph and the detection only; it
+//! never changes either and never fails (an unreadable weight is simply not
+//! inspected).
+
+mod stage;
+
+use std::collections::HashSet;
+
+use crate::graph::op::{self, Family};
+use crate::graph::{Graph, NodeId, ValueId};
+use crate::load::attr;
+use crate::residual::Block;
+
+pub use stage::{BareRun, Stage, bare_runs, stages};
+
+/// Limits for reading weights while classifying.
+#[derive(Debug, Clone)]
+pub struct ClassifyConfig {
+    /// Weight tensors larger than this are not read to check for all zeros.
+    pub max_inspect_bytes: u64,
+}
+
+/// Where normalisation and activation sit relative to the merge.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub enum Placement {
+    /// An activation consumes the merge output: `relu(F(x) + x)` ([R3]).
+    PostActivation,
+    /// The branch opens with a normalisation or activation (or both branch
+    /// and shortcut start after one) and the merge output is not activated ([P1]).
+    PreActivation,
+    /// The branch opens with a layer normalisation: `x + F(LN(x))` ([T2]).
+    PreNorm,
+    /// A normalisation consumes the merge output: `LN(x + F(x))` ([T1]).
+    PostNorm,
+    /// Neither: `x + F(x)` with a linear end and nothing after ([M1]).
+    Unactivated,
+}
+
+impl Placement {
+    /// The report's name for it.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Placement::PostActivation => "post-activation",
+            Placement::PreActivation => "pre-activation",
+            Placement::PreNorm => "pre-norm",
+            Placement::PostNorm => "post-norm",
+            Placement::Unactivated => "unactivated",
+        }
+    }
+}
+
+/// A learned layer of a branch.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Layer {
+    /// The node.
+    pub node: NodeId,
+    /// Spatial kernel size (empty for fully connected layers).
+    pub kernel: Vec<u64>,
+    /// Input channels or features, when the weight's shape says.
+    pub in_channels: Option<u64>,
+    /// Output channels or features.
+    pub out_channels: Option<u64>,
+    /// Strides (convolutions only).
+    pub strides: Vec<i64>,
+    /// Convolution groups (1 unless grouped or depthwise).
+    pub groups: u64,
+}
+
+/// A constant scale at the end of a branch (layer scale, ReZero gain).
+#[derive(Debug, Clone, PartialEq)]
+pub struct EndScale {
+    /// The Mul node.
+    pub node: NodeId,
+    /// The constant operand.
+    pub tensor: ValueId,
+    /// Its values, summarised, when they could be read.
+    pub summary: Option<ValueSummary>,
+}
+
+/// Minimum, maximum and mean absolute value of a constant.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ValueSummary {
+    /// Number of elements.
+    pub elements: u64,
+    /// Smallest value.
+    pub min: f32,
+    /// Largest value.
+    pub max: f32,
+    /// Mean of absolute values.
+    pub mean_abs: f32,
+}
+
+impl ValueSummary {
+    fn of(values: &[f32]) -> ValueSummary {
+        let min = values.iter().copied().fold(f32::INFINITY, f32::min);
+        let max = values.iter().copied().fold(f32::NEG_INFINITY, f32::max);
+        let sum: f64 = values.iter().map(|v| v.abs() as f64).sum();
+        ValueSummary {
+            elements: values.len() as u64,
+            min,
+            max,
+            mean_abs: if values.is_empty() { 0.0 } else { (sum / values.len() as f64) as f32 },
+        }
+    }
+}
+
+/// Why a branch is dead by construction: its output cannot depend on its input.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum StaticDead {
+    /// The branch ends in a constant scale that is all zeros ([Z1]).
+    ZeroScale(NodeId),
+    /// The last normalisation's scale is all zeros.
+    ZeroNormScale(NodeId),
+    /// The last learned layer's weights are all zeros.
+    ZeroWeights(NodeId),
+}
+
+/// The classification of one block.
+#[derive(Debug, Clone)]
+pub struct Kind {
+    /// Placement of normalisation and activation.
+    pub placement: Placement,
+    /// The op after the merge or at the branch opening that decided it.
+    pub placement_node: Option<NodeId>,
+    /// Learned layers of the branch.
+    pub layers: Vec<Layer>,
+    /// Normalisations of the branch: the node and a label
+    /// (`BatchNormalization`, `LayerNormalization (decomposed)`).
+    pub norms: Vec<(NodeId, String)>,
+    /// Activations of the branch: the node and a label.
+    pub activations: Vec<(NodeId, String)>,
+    /// Multiplicative gates inside the branch (squeeze-and-excitation).
+    pub gates: usize,
+    /// A constant scale at the branch end.
+    pub end_scale: Option<EndScale>,
+    /// Dead by construction.
+    pub static_dead: Option<StaticDead>,
+}
+
+/// Classifies one detected block.
+pub fn classify(g: &Graph, block: &Block, config: &ClassifyConfig) -> Kind {
+    let branch: HashSet<NodeId> = block.branch.iter().copied().collect();
+    let (placement, placement_node) = placement(g, block, &branch);
+    let layers = block.branch.iter().copied().filter(|&n| op::is_parametrised(g, n)).map(|n| layer(g, n)).collect();
+    let mut norms = Vec::new();
+    let mut activations = Vec::new();
+    let mut gates = 0;
+    for &n in &block.branch {
+        let node = g.node(n);
+        match op::family(g, n) {
+            Family::Norm => norms.push((n, node.op.clone())),
+            Family::Activation => activations.push((n, node.op.clone())),
+            _ => {}
+        }
+        if let Some(out) = node.outputs.first() {
+            if decomposed_layer_norm(g, *out, Some(&branch)).is_some() {
+                norms.push((n, "LayerNormalization (decomposed)".to_owned()));
+            }
+        }
+        if node.op == "Erf" {
+            activations.push((n, "Gelu (decomposed)".to_owned()));
+        }
+        if node.op == "Mul" && op::signal_arity(g, n) == 2 {
+            let gated = g.signal_inputs(n).any(|v| {
+                g.producer(v).is_some_and(|p| matches!(g.node(p).op.as_str(), "Sigmoid" | "HardSigmoid"))
+            });
+            if gated {
+                gates += 1;
+            }
+        }
+    }
+    let end_scale = end_scale(g, block);
+    let static_dead = static_dead(g, block, end_scale.as_ref(), config);
+    Kind { placement, placement_node, layers, norms, activations, gates, end_scale, static_dead }
+}
+
+fn placement(g: &Graph, block: &Block, branch: &HashSet<NodeId>) -> (Placement, Option<NodeId>) {
+    // 1-2: what the branch opens with.
+    let entries = openings(g, block.fork, branch);
+    if let Some(&n) = entries.iter().find(|&&n| op::is_layer_norm_op(&g.node(n).op)) {
+        return (Placement::PreNorm, Some(n));
+    }
+    if let Some(n) = decomposed_layer_norm(g, block.fork, Some(branch)) {
+        return (Placement::PreNorm, Some(n));
+    }
+    let opens_with_norm_or_act =
+        !entries.is_empty() && entries.iter().all(|&n| matches!(op::family(g, n), Family::Norm | Family::Activation));
+    if opens_with_norm_or_act {
+        return (Placement::PreActivation, entries.first().copied());
+    }
+    // 3: what consumes the merge output, and nothing else.
+    let (value, consumers) = follow_pass_through(g, block.output);
+    if consumers.len() == 1 {
+        let c = consumers[0];
+        match op::family(g, c) {
+            Family::Activation => return (Placement::PostActivation, Some(c)),
+            Family::Norm => return (Placement::PostNorm, Some(c)),
+            _ => {}
+        }
+    }
+    if let Some(n) = decomposed_layer_norm(g, value, None) {
+        if consumers.len() == 2 {
+            return (Placement::PostNorm, Some(n));
+        }
+    }
+    // 4: branch and shortcut both start after an activation (the projection
+    // units of pre-activation networks take the activated input).
+    let mut v = block.fork;
+    while let Some(p) = g.producer(v) {
+        match op::family(g, p) {
+            Family::Activation => return (Placement::PreActivation, Some(p)),
+            Family::PassThrough => v = g.node(p).inputs[0].unwrap_or(v),
+            _ => break,
+        }
+        if g.producer(v) == Some(p) {
+            break;
+        }
+    }
+    (Placement::Unactivated, None)
+}
+
+/// The first branch ops that are not pass-through, reached from the fork.
+fn openings(g: &Graph, fork: ValueId, branch: &HashSet<NodeId>) -> Vec<NodeId> {
+    let mut out = Vec::new();
+    let mut stack = vec![fork];
+    let mut seen = HashSet::new();
+    while let Some(v) = stack.pop() {
+        for c in g.consumers(v) {
+            if !branch.contains(&c) || !seen.insert(c) {
+                continue;
+            }
+            if op::family(g, c) == Family::PassThrough {
+                stack.extend(g.node(c).outputs.iter().copied());
+            } else {
+                out.push(c);
+            }
+        }
+    }
+    out.sort_by_key(|n| g.rank[n.0 as usize]);
+    out
+}
+
+/// Follows a value through single-consumer pass-through ops; returns the
+/// last value and its consumers.
+fn follow_pass_through(g: &Graph, mut v: ValueId) -> (ValueId, Vec<NodeId>) {
+    loop {
+        let consumers: Vec<NodeId> = g.consumers(v).collect();
+        if consumers.len() == 1 && op::family(g, consumers[0]) == Family::PassThrough && !g.is_output(v) {
+            v = g.node(consumers[0]).outputs[0];
+            continue;
+        }
+        return (v, consumers);
+    }
+}
+
+/// A layer or RMS normalisation spelled out as arithmetic on `v`:
+/// `Sub(v, ReduceMean(v))` (layer norm) or `ReduceMean(Pow(v, 2))` feeding a
+/// `Div` or `Mul` of `v` (RMS norm). Returns the node that opens it.
+pub fn decomposed_layer_norm(g: &Graph, v: ValueId, within: Option<&HashSet<NodeId>>) -> Option<NodeId> {
+    let ok = |n: NodeId| within.is_none_or(|w| w.contains(&n));
+    let consumers: Vec<NodeId> = g.consumers(v).filter(|&n| ok(n)).collect();
+    for &r in &consumers {
+        if g.node(r).op != "ReduceMean" {
+            continue;
+        }
+        let mean = g.node(r).outputs[0];
+        let centred = consumers.iter().any(|&s| {
+            let node = g.node(s);
+            node.op == "Sub" && node.inputs.first() == Some(&Some(v)) && node.inputs.get(1) == Some(&Some(mean))
+        });
+        if centred {
+            return Some(r);
+        }
+    }
+    for &p in &consumers {
+        let node = g.node(p);
+        let squares = match node.op.as_str() {
+            "Pow" => node.inputs.get(1).copied().flatten().and_then(|e| g.constant_f32(e, 64)) == Some(vec![2.0]),
+            "Mul" => node.inputs.first() == node.inputs.get(1),
+            _ => false,
+        };
+        if squares && g.consumers(node.outputs[0]).any(|m| g.node(m).op == "ReduceMean") {
+            return Some(p);
+        }
+    }
+    None
+}
+
+fn layer(g: &Graph, n: NodeId) -> Layer {
+    let node = g.node(n);
+    let weight = op::weight_slot(g, n).and_then(|s| g.input(n, s)).and_then(|w| g.shape(w).map(<[_]>::to_vec));
+    let dims: Vec<Option<u64>> = weight
+        .unwrap_or_default()
+        .iter()
+        .map(|d| match d {
+            crate::graph::Dim::Known(k) => Some(*k),
+            _ => None,
+        })
+        .collect();
+    let groups = attr::int(&node.attrs, "group").unwrap_or(1).max(1) as u64;
+    let strides = attr::ints(&node.attrs, "strides").map(<[i64]>::to_vec).unwrap_or_default();
+    match node.op.as_str() {
+        "Conv" | "ConvInteger" | "QLinearConv" | "FusedConv" => Layer {
+            node: n,
+            kernel: dims.iter().skip(2).map(|d| d.unwrap_or(0)).collect(),
+            in_channels: dims.get(1).copied().flatten().map(|c| c * groups),
+            out_channels: dims.first().copied().flatten(),
+            strides,
+            groups,
+        },
+        "ConvTranspose" => Layer {
+            node: n,
+            kernel: dims.iter().skip(2).map(|d| d.unwrap_or(0)).collect(),
+            in_channels: dims.first().copied().flatten(),
+            out_channels: dims.get(1).copied().flatten().map(|c| c * groups),
+            strides,
+            groups,
+        },
+        _ => {
+            let transposed = node.op.starts_with("Gemm") && attr::int(&node.attrs, "transB") == Some(1);
+            let slot = op::weight_slot(g, n).unwrap_or(1);
+            let (k, m) = match dims.len() {
+                r if r >= 2 => (dims[r - 2], dims[r - 1]),
+                _ => (None, None),
+            };
+            let (in_c, out_c) = if transposed {
+                (m, k)
+            } else if slot == 0 {
+                // A static left operand: W @ x, rows are outputs.
+                (m, k)
+            } else {
+                (k, m)
+            };
+            Layer { node: n, kernel: Vec::new(), in_channels: in_c, out_channels: out_c, strides: Vec::new(), groups: 1 }
+        }
+    }
+}
+
+fn end_scale(g: &Graph, block: &Block) -> Option<EndScale> {
+    for &input in &block.branch_inputs {
+        let mut v = input;
+        while let Some(p) = g.producer(v) {
+            let node = g.node(p);
+            match op::family(g, p) {
+                Family::PassThrough => v = node.inputs[0]?,
+                Family::Affine if node.op == "Mul" => {
+                    let tensor = node.inputs.iter().flatten().copied().find(|&i| g.value(i).is_static)?;
+                    let summary = g.constant_f32(tensor, 1 << 20).map(|vals| ValueSummary::of(&vals));
+                    return Some(EndScale { node: p, tensor, summary });
+                }
+                _ => break,
+            }
+        }
+    }
+    None
+}
+
+fn all_zero(g: &Graph, v: Option<ValueId>, config: &ClassifyConfig) -> bool {
+    v.and_then(|v| g.constant_f32(v, config.max_inspect_bytes)).is_some_and(|vals| !vals.is_empty() && vals.iter().all(|&x| x == 0.0))
+}
+
+fn static_dead(g: &Graph, block: &Block, end: Option<&EndScale>, config: &ClassifyConfig) -> Option<StaticDead> {
+    if let Some(EndScale { node, summary: Some(s), .. }) = end {
+        if s.min == 0.0 && s.max == 0.0 {
+            return Some(StaticDead::ZeroScale(*node));
+        }
+    }
+    // Walk back from each branch input to the last learned layer; every branch
+    // input must be dead for the branch to be.
+    let mut verdict = None;
+    for &input in &block.branch_inputs {
+        let mut v = input;
+        let mut found = None;
+        while let Some(p) = g.producer(v) {
+            let node = g.node(p);
+            let signal = g.signal_inputs(p).next();
+            match op::family(g, p) {
+                Family::PassThrough => {}
+                Family::Affine => {
+                    let konst = node.inputs.iter().flatten().copied().find(|&i| g.value(i).is_static);
+                    if node.op == "Mul" && all_zero(g, konst, config) {
+                        found = Some(StaticDead::ZeroScale(p));
+                        break;
+                    }
+                }
+                Family::Norm => {
+                    if all_zero(g, g.input(p, 1), config) {
+                        found = Some(StaticDead::ZeroNormScale(p));
+                        break;
+                    }
+                }
+                Family::Linear => {
+                    let w = op::weight_slot(g, p).and_then(|s| g.input(p, s));
+                    if all_zero(g, w, config) {
+                        found = Some(StaticDead::ZeroWeights(p));
+                    }
+                    break;
+                }
+                _ => break,
+            }
+            match signal {
+                Some(s) => v = s,
+                None => break,
+            }
+        }
+        match found {
+            Some(f) => verdict = verdict.or(Some(f)),
+            None => return None,
+        }
+    }
+    verdict
+}

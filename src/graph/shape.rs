@@ -1,0 +1,428 @@
+//! A small shape inference for the ops residual networks are made of, used
+//! where the model carries no `value_info`. It never guesses: a shape it
+//! cannot derive stays unknown.
+
+use crate::graph::{Dim, Graph, NodeId, ValueId};
+use crate::load::attr;
+
+/// Fills in the shape of every value whose shape the model does not declare
+/// and that follows from its inputs.
+pub(crate) fn infer(g: &mut Graph) {
+    for i in 0..g.order.len() {
+        let n = g.order[i];
+        let outputs = g.node(n).outputs.clone();
+        let Some(&first) = outputs.first() else { continue };
+        if g.value(first).fact.shape.is_some() {
+            continue;
+        }
+        if let Some(shape) = infer_node(g, n) {
+            let dtype = match g.node(n).op.as_str() {
+                "Cast" => attr::int(&g.node(n).attrs, "to").unwrap_or(0) as i32,
+                _ => g.input(n, 0).map_or(0, |v| g.value(v).fact.dtype),
+            };
+            let fact = &mut g.values[first.0 as usize].fact;
+            fact.shape = Some(shape);
+            if fact.dtype == 0 {
+                fact.dtype = dtype;
+            }
+        }
+    }
+}
+
+fn shape_of(g: &Graph, n: NodeId, slot: usize) -> Option<Vec<Dim>> {
+    g.input(n, slot).and_then(|v| g.shape(v)).map(<[Dim]>::to_vec)
+}
+
+fn known(d: &Dim) -> Option<u64> {
+    match d {
+        Dim::Known(k) => Some(*k),
+        _ => None,
+    }
+}
+
+fn ints_attr_or_input(g: &Graph, n: NodeId, name: &str, slot: usize) -> Option<Vec<i64>> {
+    if let Some(v) = attr::ints(&g.node(n).attrs, name) {
+        return Some(v.to_vec());
+    }
+    g.input(n, slot).and_then(|v: ValueId| g.constant_i64(v))
+}
+
+fn norm_axis(axis: i64, rank: usize) -> Option<usize> {
+    let a = if axis < 0 { axis + rank as i64 } else { axis };
+    (0..rank as i64).contains(&a).then_some(a as usize)
+}
+
+fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
+    let node = g.node(n);
+    let attrs = &node.attrs;
+    match node.op.as_str() {
+        "Relu" | "LeakyRelu" | "Elu" | "Selu" | "Celu" | "Sigmoid" | "HardSigmoid" | "Tanh" | "Softplus"
+        | "Softsign" | "Gelu" | "HardSwish" | "Mish" | "Clip" | "Erf" | "Sqrt" | "Neg" | "Exp" | "Log" | "Abs"
+        | "Reciprocal" | "Identity" | "Cast" | "CastLike" | "Dropout" | "BatchNormalization"
+        | "InstanceNormalization" | "GroupNormalization" | "LayerNormalization" | "RMSNormalization"
+        | "SimplifiedLayerNormalization" | "Softmax" | "LogSoftmax" | "QuantizeLinear" | "DequantizeLinear"
+        | "Not" | "Floor" | "Ceil" | "Round" | "Sign" | "LpNormalization" | "ThresholdedRelu" | "Swish" => {
+            shape_of(g, n, 0)
+        }
+        "Add" | "Sub" | "Mul" | "Div" | "Pow" | "Max" | "Min" | "Sum" | "Mean" | "Equal" | "Greater" | "Less"
+        | "And" | "Or" | "Where" | "PRelu" | "BiasGelu" => {
+            let shapes: Option<Vec<Vec<Dim>>> = node.inputs.iter().flatten().map(|&v| g.shape(v).map(<[Dim]>::to_vec)).collect();
+            broadcast(&shapes?)
+        }
+        "Conv" | "ConvInteger" | "FusedConv" => {
+            let x = shape_of(g, n, 0)?;
+            let w = g.input(n, 1).and_then(|v| g.shape(v))?.to_vec();
+            spatial(&x, known(w.first()?)?, &w[2..], attrs, false)
+        }
+        "QLinearConv" => {
+            let x = shape_of(g, n, 0)?;
+            let w = g.input(n, 3).and_then(|v| g.shape(v))?.to_vec();
+            spatial(&x, known(w.first()?)?, &w[2..], attrs, false)
+        }
+        "MaxPool" | "AveragePool" | "LpPool" => {
+            let x = shape_of(g, n, 0)?;
+            let channels = known(x.get(1)?)?;
+            let kernel: Vec<Dim> = attr::ints(attrs, "kernel_shape")?.iter().map(|&k| Dim::Known(k as u64)).collect();
+            let ceil = attr::int(attrs, "ceil_mode") == Some(1);
+            spatial(&x, channels, &kernel, attrs, ceil)
+        }
+        "GlobalAveragePool" | "GlobalMaxPool" => {
+            let x = shape_of(g, n, 0)?;
+            let mut out = x.clone();
+            for d in out.iter_mut().skip(2) {
+                *d = Dim::Known(1);
+            }
+            Some(out)
+        }
+        "Gemm" | "FusedGemm" => {
+            let a = shape_of(g, n, 0)?;
+            let b = shape_of(g, n, 1)?;
+            if a.len() != 2 || b.len() != 2 {
+                return None;
+            }
+            let m = if attr::int(attrs, "transA") == Some(1) { a[1].clone() } else { a[0].clone() };
+            let k = if attr::int(attrs, "transB") == Some(1) { b[0].clone() } else { b[1].clone() };
+            Some(vec![m, k])
+        }
+        "MatMul" | "MatMulInteger" | "FusedMatMul" => {
+            let a = shape_of(g, n, 0)?;
+            let b = shape_of(g, n, 1)?;
+            matmul(&a, &b)
+        }
+        "Flatten" => {
+            let x = shape_of(g, n, 0)?;
+            let axis = norm_axis(attr::int(attrs, "axis").unwrap_or(1), x.len() + 1)?;
+            let product = |dims: &[Dim]| -> Dim {
+                if dims.len() == 1 {
+                    return dims[0].clone();
+                }
+                dims.iter().try_fold(1u64, |acc, d| known(d).map(|k| acc * k)).map_or(Dim::Unknown, Dim::Known)
+            };
+            let head = if axis == 0 { Dim::Known(1) } else { product(&x[..axis]) };
+            let tail = if axis == x.len() { Dim::Known(1) } else { product(&x[axis..]) };
+            Some(vec![head, tail])
+        }
+        "Reshape" => {
+            let x = shape_of(g, n, 0)?;
+            let target = g.input(n, 1).and_then(|v| g.constant_i64(v))?;
+            reshape(&x, &target, attr::int(attrs, "allowzero") == Some(1))
+        }
+        "Transpose" => {
+            let x = shape_of(g, n, 0)?;
+            let perm: Vec<usize> = match attr::ints(attrs, "perm") {
+                Some(p) => p.iter().map(|&i| usize::try_from(i).ok()).collect::<Option<_>>()?,
+                None => (0..x.len()).rev().collect(),
+            };
+            perm.iter().map(|&i| x.get(i).cloned()).collect()
+        }
+        "Concat" => {
+            let shapes: Vec<Vec<Dim>> =
+                node.inputs.iter().flatten().map(|&v| g.shape(v).map(<[Dim]>::to_vec)).collect::<Option<_>>()?;
+            let first = shapes.first()?.clone();
+            let axis = norm_axis(attr::int(attrs, "axis")?, first.len())?;
+            let total: Option<u64> = shapes.iter().map(|s| s.get(axis).and_then(known)).sum();
+            let mut out = first;
+            out[axis] = total.map_or(Dim::Unknown, Dim::Known);
+            Some(out)
+        }
+        "Unsqueeze" => {
+            let x = shape_of(g, n, 0)?;
+            let axes = ints_attr_or_input(g, n, "axes", 1)?;
+            let rank = x.len() + axes.len();
+            let mut axes: Vec<usize> = axes.iter().map(|&a| norm_axis(a, rank)).collect::<Option<_>>()?;
+            axes.sort_unstable();
+            let mut out = x;
+            for a in axes {
+                if a > out.len() {
+                    return None;
+                }
+                out.insert(a, Dim::Known(1));
+            }
+            Some(out)
+        }
+        "Squeeze" => {
+            let x = shape_of(g, n, 0)?;
+            let axes: Vec<usize> = match ints_attr_or_input(g, n, "axes", 1) {
+                Some(a) => a.iter().map(|&a| norm_axis(a, x.len())).collect::<Option<_>>()?,
+                None => x.iter().enumerate().filter(|(_, d)| **d == Dim::Known(1)).map(|(i, _)| i).collect(),
+            };
+            Some(x.into_iter().enumerate().filter(|(i, _)| !axes.contains(i)).map(|(_, d)| d).collect())
+        }
+        "ReduceMean" | "ReduceSum" | "ReduceMax" | "ReduceMin" | "ReduceProd" | "ReduceL2" | "ReduceSumSquare" => {
+            let x = shape_of(g, n, 0)?;
+            let keep = attr::int(attrs, "keepdims").unwrap_or(1) == 1;
+            let axes: Vec<usize> = match ints_attr_or_input(g, n, "axes", 1) {
+                Some(a) => a.iter().map(|&a| norm_axis(a, x.len())).collect::<Option<_>>()?,
+                None => (0..x.len()).collect(),
+            };
+            Some(
+                x.into_iter()
+                    .enumerate()
+                    .filter_map(|(i, d)| match (axes.contains(&i), keep) {
+                        (true, true) => Some(Dim::Known(1)),
+                        (true, false) => None,
+                        (false, _) => Some(d),
+                    })
+                    .collect(),
+            )
+        }
+        "Resize" | "Upsample" => {
+            let x = shape_of(g, n, 0)?;
+            let (scales_slot, sizes_slot) = if node.op == "Upsample" { (1, usize::MAX) } else { (2, 3) };
+            if let Some(sizes) = g.input(n, sizes_slot).and_then(|v| g.constant_i64(v)) {
+                if sizes.len() == x.len() {
+                    return Some(sizes.iter().map(|&s| Dim::Known(s.max(0) as u64)).collect());
+                }
+            }
+            let scales = g.input(n, scales_slot).and_then(|v| g.constant_f32(v, 1 << 12))?;
+            if scales.len() != x.len() {
+                return None;
+            }
+            Some(
+                x.iter()
+                    .zip(&scales)
+                    .map(|(d, &s)| match d {
+                        Dim::Known(k) => Dim::Known((*k as f64 * s as f64).floor() as u64),
+                        other if s == 1.0 => other.clone(),
+                        _ => Dim::Unknown,
+                    })
+                    .collect(),
+            )
+        }
+        "Pad" => {
+            let x = shape_of(g, n, 0)?;
+            let pads = ints_attr_or_input(g, n, "pads", 1)?;
+            if pads.len() != 2 * x.len() {
+                return None;
+            }
+            Some(
+                x.iter()
+                    .enumerate()
+                    .map(|(i, d)| match (d, pads[i] + pads[i + x.len()]) {
+                        (Dim::Known(k), p) => Dim::Known((*k as i64 + p).max(0) as u64),
+                        (other, 0) => other.clone(),
+                        _ => Dim::Unknown,
+                    })
+                    .collect(),
+            )
+        }
+        "Slice" => {
+            let x = shape_of(g, n, 0)?;
+            let starts = ints_attr_or_input(g, n, "starts", 1)?;
+            let ends = ints_attr_or_input(g, n, "ends", 2)?;
+            let axes = ints_attr_or_input(g, n, "axes", 3).unwrap_or_else(|| (0..starts.len() as i64).collect());
+            let steps = g.input(n, 4).and_then(|v| g.constant_i64(v)).unwrap_or_else(|| vec![1; starts.len()]);
+            let mut out = x.clone();
+            for (i, &axis) in axes.iter().enumerate() {
+                let a = norm_axis(axis, x.len())?;
+                let Dim::Known(len) = x[a] else {
+                    out[a] = Dim::Unknown;
+                    continue;
+                };
+                out[a] = Dim::Known(slice_len(len as i64, *starts.get(i)?, *ends.get(i)?, *steps.get(i)?)?);
+            }
+            Some(out)
+        }
+        "Gather" => {
+            let data = shape_of(g, n, 0)?;
+            let idx = shape_of(g, n, 1)?;
+            let axis = norm_axis(attr::int(attrs, "axis").unwrap_or(0), data.len())?;
+            let mut out = data[..axis].to_vec();
+            out.extend(idx);
+            out.extend_from_slice(&data[axis + 1..]);
+            Some(out)
+        }
+        _ => None,
+    }
+}
+
+/// Output length of a Slice along one axis (ONNX Slice semantics).
+fn slice_len(len: i64, start: i64, end: i64, step: i64) -> Option<u64> {
+    if step == 0 {
+        return None;
+    }
+    let clamp = |v: i64, lo: i64, hi: i64| v.max(lo).min(hi);
+    let norm = |v: i64| if v < 0 { v + len } else { v };
+    let (s, e) = if step > 0 {
+        (clamp(norm(start), 0, len), clamp(norm(end), 0, len))
+    } else {
+        (clamp(norm(start), -1, len - 1), clamp(norm(end), -1, len - 1))
+    };
+    let n = if step > 0 { (e - s + step - 1) / step } else { (s - e + (-step) - 1) / (-step) };
+    Some(n.max(0) as u64)
+}
+
+/// `[N, C, spatial…]` of a convolution or pooling: [O2] in the ONNX operator
+/// specification, floor((in + pad_begin + pad_end - dilation*(kernel-1) - 1) / stride) + 1.
+fn spatial(x: &[Dim], channels: u64, kernel: &[Dim], attrs: &[crate::proto::AttributeProto], ceil: bool) -> Option<Vec<Dim>> {
+    let rank = x.len().checked_sub(2)?;
+    if kernel.len() != rank {
+        return None;
+    }
+    let strides = attr::ints(attrs, "strides").map(<[i64]>::to_vec).unwrap_or_else(|| vec![1; rank]);
+    let dilations = attr::ints(attrs, "dilations").map(<[i64]>::to_vec).unwrap_or_else(|| vec![1; rank]);
+    let pads = attr::ints(attrs, "pads").map(<[i64]>::to_vec).unwrap_or_else(|| vec![0; 2 * rank]);
+    let auto_pad = attr::string(attrs, "auto_pad").unwrap_or("NOTSET");
+    let mut out = vec![x[0].clone(), Dim::Known(channels)];
+    for i in 0..rank {
+        let (Some(input), Some(k)) = (known(&x[i + 2]), known(&kernel[i])) else {
+            out.push(Dim::Unknown);
+            continue;
+        };
+        let (input, k) = (input as i64, k as i64);
+        let stride = *strides.get(i)?;
+        let dilation = *dilations.get(i)?;
+        if stride <= 0 {
+            return None;
+        }
+        let size = match auto_pad {
+            "SAME_UPPER" | "SAME_LOWER" => (input + stride - 1) / stride,
+            "VALID" => (input - dilation * (k - 1) - 1) / stride + 1,
+            _ => {
+                let span = input + pads.get(i)? + pads.get(i + rank)? - dilation * (k - 1) - 1;
+                if ceil { (span + stride - 1) / stride + 1 } else { span.div_euclid(stride) + 1 }
+            }
+        };
+        out.push(Dim::Known(size.max(0) as u64));
+    }
+    Some(out)
+}
+
+/// Numpy-style multidirectional broadcasting ([O1]).
+fn broadcast(shapes: &[Vec<Dim>]) -> Option<Vec<Dim>> {
+    let rank = shapes.iter().map(Vec::len).max()?;
+    let mut out = Vec::with_capacity(rank);
+    for i in 0..rank {
+        let mut dim = Dim::Known(1);
+        for s in shapes {
+            let Some(d) = (i + s.len()).checked_sub(rank).map(|j| &s[j]) else { continue };
+            dim = match (&dim, d) {
+                (Dim::Known(1), other) => other.clone(),
+                (_, Dim::Known(1)) => dim,
+                (a, b) if a == b => dim,
+                (Dim::Unknown, b) | (b, Dim::Unknown) => b.clone(),
+                _ => Dim::Unknown,
+            };
+        }
+        out.push(dim);
+    }
+    Some(out)
+}
+
+fn matmul(a: &[Dim], b: &[Dim]) -> Option<Vec<Dim>> {
+    match (a.len(), b.len()) {
+        (0, _) | (_, 0) => None,
+        (1, 1) => Some(vec![]),
+        (1, _) => {
+            let mut out = b[..b.len() - 2].to_vec();
+            out.push(b[b.len() - 1].clone());
+            Some(out)
+        }
+        (_, 1) => Some(a[..a.len() - 1].to_vec()),
+        _ => {
+            let mut out = broadcast(&[a[..a.len() - 2].to_vec(), b[..b.len() - 2].to_vec()])?;
+            out.push(a[a.len() - 2].clone());
+            out.push(b[b.len() - 1].clone());
+            Some(out)
+        }
+    }
+}
+
+fn reshape(x: &[Dim], target: &[i64], allow_zero: bool) -> Option<Vec<Dim>> {
+    let mut out: Vec<Dim> = Vec::with_capacity(target.len());
+    let mut infer_at = None;
+    for (i, &t) in target.iter().enumerate() {
+        match t {
+            0 if !allow_zero => out.push(x.get(i)?.clone()),
+            -1 => {
+                infer_at = Some(i);
+                out.push(Dim::Unknown);
+            }
+            t if t >= 0 => out.push(Dim::Known(t as u64)),
+            _ => return None,
+        }
+    }
+    if let Some(i) = infer_at {
+        let total: Option<u64> = x.iter().map(known).product();
+        let rest: Option<u64> = out.iter().enumerate().filter(|(j, _)| *j != i).map(|(_, d)| known(d)).product();
+        if let (Some(total), Some(rest)) = (total, rest) {
+            if rest > 0 && total % rest == 0 {
+                out[i] = Dim::Known(total / rest);
+            }
+        } else {
+            // A symbolic batch carried through: [N, C, H, W] -> [N, -1] keeps
+            // the product of the known dims when dim 0 is copied.
+            let copied_head = target.first() == Some(&0) && !allow_zero;
+            if copied_head && i == 1 && target.len() == 2 {
+                let tail: Option<u64> = x[1..].iter().map(known).product();
+                if let Some(t) = tail {
+                    out[1] = Dim::Known(t);
+                }
+            }
+        }
+    }
+    Some(out)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn k(v: &[u64]) -> Vec<Dim> {
+        v.iter().map(|&d| Dim::Known(d)).collect()
+    }
+
+    #[test]
+    fn conv_output_size_follows_the_spec() {
+        // [O2]: floor((32 + 1 + 1 - 1*(3-1) - 1) / 2) + 1 = 16.
+        let attrs = vec![
+            crate::proto::AttributeProto { name: "strides".into(), ints: vec![2, 2], ..Default::default() },
+            crate::proto::AttributeProto { name: "pads".into(), ints: vec![1, 1, 1, 1], ..Default::default() },
+        ];
+        let out = spatial(&k(&[1, 3, 32, 32]), 8, &k(&[3, 3]), &attrs, false).unwrap();
+        assert_eq!(out, k(&[1, 8, 16, 16]));
+        // 7x7 stride 2 pad 3 on 224: floor((224 + 6 - 6 - 1) / 2) + 1 = 112.
+        let attrs7 = vec![
+            crate::proto::AttributeProto { name: "strides".into(), ints: vec![2, 2], ..Default::default() },
+            crate::proto::AttributeProto { name: "pads".into(), ints: vec![3, 3, 3, 3], ..Default::default() },
+        ];
+        assert_eq!(spatial(&k(&[1, 3, 224, 224]), 64, &k(&[7, 7]), &attrs7, false).unwrap(), k(&[1, 64, 112, 112]));
+    }
+
+    #[test]
+    fn broadcasting_follows_numpy() {
+        assert_eq!(broadcast(&[k(&[8, 1, 6, 1]), k(&[7, 1, 5])]).unwrap(), k(&[8, 7, 6, 5]));
+        let sym = vec![Dim::Symbol("N".into()), Dim::Known(4)];
+        assert_eq!(broadcast(&[sym.clone(), k(&[4])]).unwrap(), sym);
+    }
+
+    #[test]
+    fn slices_and_reshapes() {
+        assert_eq!(slice_len(8, 0, i64::MAX, 2), Some(4));
+        assert_eq!(slice_len(7, 0, 7, 2), Some(4));
+        assert_eq!(slice_len(8, -1, i64::MIN, -1), Some(8));
+        assert_eq!(reshape(&k(&[2, 3, 4]), &[0, -1], false).unwrap(), k(&[2, 12]));
+        let sym = vec![Dim::Symbol("N".into()), Dim::Known(3), Dim::Known(4)];
+        assert_eq!(reshape(&sym, &[0, -1], false).unwrap(), vec![Dim::Symbol("N".into()), Dim::Known(12)]);
+    }
+}

@@ -1,0 +1,282 @@
+//! From a path to a decoded [`ModelProto`], with every external-data reference
+//! checked against the model's folder.
+//!
+//! Nothing here reads tensor payloads that live in external files: the scan
+//! only needs their metadata. [`tensor`] reads a payload on request, through
+//! the same checks.
+
+pub mod attr;
+pub mod tensor;
+
+use std::fs;
+use std::path::{Component, Path, PathBuf};
+
+use bytes::Bytes;
+use prost::Message;
+
+use crate::error::{Error, ErrorKind, Result};
+use crate::proto::{ModelProto, TensorProto, tensor_proto::DataLocation};
+
+/// Limits checked before anything large is read or allocated.
+#[derive(Debug, Clone)]
+pub struct LoadConfig {
+    /// The largest model file (the protobuf itself) that is read.
+    pub max_file_bytes: u64,
+}
+
+/// A decoded model and where it came from.
+#[derive(Debug)]
+pub struct LoadedModel {
+    /// The model file.
+    pub path: PathBuf,
+    /// Size of the model file in bytes.
+    pub file_bytes: u64,
+    /// The decoded model.
+    pub model: ModelProto,
+    /// Resolves external data of this model's tensors.
+    pub external: ExternalData,
+}
+
+/// The newest ONNX IR version this build knows of (IR 11 is ONNX 1.17+).
+pub const NEWEST_IR_VERSION: i64 = 11;
+
+/// Reads and decodes `path`, and checks every external-data reference.
+pub fn load(path: &Path, config: &LoadConfig) -> Result<LoadedModel> {
+    load_inner(path, config).map_err(|e| e.at(path))
+}
+
+fn load_inner(path: &Path, config: &LoadConfig) -> Result<LoadedModel> {
+    let meta = fs::metadata(path).map_err(|e| Error::new(ErrorKind::Io, io_message(&e)))?;
+    if meta.is_dir() {
+        return Err(Error::new(ErrorKind::Io, "is a folder, not a model file"));
+    }
+    if !meta.is_file() {
+        return Err(Error::new(ErrorKind::Io, "is not a regular file"));
+    }
+    if meta.len() > config.max_file_bytes {
+        return Err(Error::new(
+            ErrorKind::Limit,
+            format!(
+                "the file is {} bytes, larger than the limit of {} bytes (raise it with --max-file-bytes)",
+                meta.len(),
+                config.max_file_bytes
+            ),
+        ));
+    }
+    let bytes = fs::read(path).map_err(|e| Error::new(ErrorKind::Io, io_message(&e)))?;
+    let file_bytes = bytes.len() as u64;
+    let model = decode(Bytes::from(bytes))?;
+    let dir = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
+        _ => PathBuf::from("."),
+    };
+    let external = ExternalData::new(&dir)?;
+    check_external_refs(&model, &external)?;
+    Ok(LoadedModel { path: path.to_path_buf(), file_bytes, model, external })
+}
+
+/// Decodes protobuf bytes into a model and checks the few things every
+/// ONNX model must have: a graph, an IR version and an opset.
+pub fn decode(bytes: Bytes) -> Result<ModelProto> {
+    if bytes.is_empty() {
+        return Err(Error::new(ErrorKind::Decode, "the file is empty, not an ONNX model"));
+    }
+    let model = ModelProto::decode(bytes).map_err(|e| {
+        Error::new(
+            ErrorKind::Decode,
+            format!("not an ONNX model, or a truncated one: protobuf decoding failed ({e})"),
+        )
+    })?;
+    if model.graph.is_none() {
+        return Err(Error::new(ErrorKind::Decode, "not an ONNX model: it has no graph"));
+    }
+    if model.ir_version < 3 {
+        return Err(Error::new(
+            ErrorKind::Decode,
+            format!(
+                "not an ONNX model shunt can read: ir_version is {} (3 to {NEWEST_IR_VERSION} are supported)",
+                model.ir_version
+            ),
+        ));
+    }
+    if model.opset_import.is_empty() {
+        return Err(Error::new(
+            ErrorKind::Decode,
+            "not a complete ONNX model: it imports no operator set (truncated file?)",
+        ));
+    }
+    Ok(model)
+}
+
+/// The version of the default ONNX operator set the model imports, if any.
+pub fn default_opset(model: &ModelProto) -> Option<i64> {
+    model
+        .opset_import
+        .iter()
+        .find(|o| o.domain.is_empty() || o.domain == "ai.onnx")
+        .map(|o| o.version)
+}
+
+/// Where the external data of one tensor lives, once checked.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ExternalRef {
+    /// The file, inside the model's folder.
+    pub file: PathBuf,
+    /// Offset of the payload in the file.
+    pub offset: u64,
+    /// Length of the payload in bytes.
+    pub length: u64,
+}
+
+/// Resolves external-data locations, never outside the model's folder.
+#[derive(Debug, Clone)]
+pub struct ExternalData {
+    dir: PathBuf,
+    canonical_dir: Option<PathBuf>,
+}
+
+impl ExternalData {
+    fn new(dir: &Path) -> Result<ExternalData> {
+        Ok(ExternalData { dir: dir.to_path_buf(), canonical_dir: fs::canonicalize(dir).ok() })
+    }
+
+    /// An `ExternalData` for a model that did not come from a file: every
+    /// external reference is refused.
+    pub fn none() -> ExternalData {
+        ExternalData { dir: PathBuf::new(), canonical_dir: None }
+    }
+
+    /// Checks the external-data entries of `tensor` ([O3] in the ONNX IR
+    /// specification: `location`, `offset`, `length`, optional `checksum`)
+    /// and returns where its payload is. `Ok(None)` for a tensor stored inline.
+    pub fn resolve(&self, tensor: &TensorProto) -> Result<Option<ExternalRef>> {
+        if tensor.data_location != DataLocation::External as i32 {
+            return Ok(None);
+        }
+        let what = || format!("tensor '{}': external data", tensor.name);
+        let mut location = None;
+        let mut offset = 0u64;
+        let mut length = None;
+        for entry in &tensor.external_data {
+            match entry.key.as_str() {
+                "location" => location = Some(entry.value.as_str()),
+                "offset" => offset = parse_u64(&entry.value).ok_or_else(|| bad(&what(), "offset is not a number"))?,
+                "length" => length = Some(parse_u64(&entry.value).ok_or_else(|| bad(&what(), "length is not a number"))?),
+                _ => {}
+            }
+        }
+        let location = location.ok_or_else(|| bad(&what(), "has no location"))?;
+        let relative = check_relative(location).map_err(|m| bad(&what(), &format!("location '{location}' {m}")))?;
+        let Some(canonical_dir) = &self.canonical_dir else {
+            return Err(bad(&what(), "cannot be resolved: the model has no folder"));
+        };
+        let joined = self.dir.join(relative);
+        let file = fs::canonicalize(&joined)
+            .map_err(|e| bad(&what(), &format!("file '{location}' cannot be opened: {}", io_message(&e))))?;
+        if !file.starts_with(canonical_dir) {
+            return Err(bad(&what(), &format!("location '{location}' leads outside the model's folder")));
+        }
+        let meta = fs::metadata(&file)
+            .map_err(|e| bad(&what(), &format!("file '{location}': {}", io_message(&e))))?;
+        if !meta.is_file() {
+            return Err(bad(&what(), &format!("location '{location}' is not a regular file")));
+        }
+        let size = meta.len();
+        let length = length.unwrap_or(size.saturating_sub(offset));
+        let end = offset.checked_add(length).ok_or_else(|| bad(&what(), "offset + length overflows"))?;
+        if end > size {
+            return Err(bad(
+                &what(),
+                &format!("offset {offset} + length {length} is past the end of '{location}' ({size} bytes)"),
+            ));
+        }
+        Ok(Some(ExternalRef { file, offset, length }))
+    }
+}
+
+/// Checks every tensor of the model (initializers, Constant values, also
+/// inside subgraphs) that keeps its payload in an external file.
+fn check_external_refs(model: &ModelProto, external: &ExternalData) -> Result<()> {
+    let Some(graph) = &model.graph else { return Ok(()) };
+    let mut result = Ok(());
+    tensor::for_each_tensor(graph, &mut |t| {
+        if result.is_ok() {
+            if let Err(e) = external.resolve(t) {
+                result = Err(e);
+            }
+        }
+    });
+    result
+}
+
+/// A location must be a plain relative path below the folder: no root, no
+/// drive prefix, no `..`.
+fn check_relative(location: &str) -> std::result::Result<&Path, &'static str> {
+    if location.is_empty() {
+        return Err("is empty");
+    }
+    let path = Path::new(location);
+    for component in path.components() {
+        match component {
+            Component::Normal(_) | Component::CurDir => {}
+            Component::ParentDir => return Err("contains '..'"),
+            Component::RootDir | Component::Prefix(_) => return Err("is an absolute path"),
+        }
+    }
+    // Windows-style absolute or parent paths, whatever platform reads them.
+    if location.starts_with('\\') || location.contains(":\\") || location.split(['/', '\\']).any(|p| p == "..") {
+        return Err("is not a plain relative path");
+    }
+    Ok(path)
+}
+
+fn parse_u64(s: &str) -> Option<u64> {
+    s.trim().parse().ok()
+}
+
+fn bad(what: &str, message: &str) -> Error {
+    Error::new(ErrorKind::ExternalData, format!("{what} {message}"))
+}
+
+/// An I/O error as a short lower-case phrase.
+pub(crate) fn io_message(e: &std::io::Error) -> String {
+    match e.kind() {
+        std::io::ErrorKind::NotFound => "no such file".to_owned(),
+        std::io::ErrorKind::PermissionDenied => "permission denied".to_owned(),
+        _ => {
+            let s = e.to_string();
+            // Drop the "(os error N)" tail: it helps nobody.
+            match s.find(" (os error") {
+                Some(i) => s[..i].to_owned(),
+                None => s,
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn relative_locations() {
+        assert!(check_relative("weights.bin").is_ok());
+        assert!(check_relative("sub/weights.bin").is_ok());
+        assert!(check_relative("./weights.bin").is_ok());
+        assert_eq!(check_relative("../x.bin"), Err("contains '..'"));
+        assert_eq!(check_relative("a/../../x.bin"), Err("contains '..'"));
+        assert_eq!(check_relative("/etc/passwd"), Err("is an absolute path"));
+        assert_eq!(check_relative(""), Err("is empty"));
+        assert!(check_relative("..\\x.bin").is_err());
+        assert!(check_relative("C:\\x.bin").is_err());
+    }
+
+    #[test]
+    fn decode_rejects_garbage() {
+        assert_eq!(decode(Bytes::new()).unwrap_err().kind(), ErrorKind::Decode);
+        assert_eq!(decode(Bytes::from_static(b"hello, this is text\n")).unwrap_err().kind(), ErrorKind::Decode);
+        // A valid protobuf message that is not a model: no graph.
+        let empty = ModelProto { ir_version: 8, ..Default::default() }.encode_to_vec();
+        assert!(decode(Bytes::from(empty)).unwrap_err().message().contains("no graph"));
+    }
+}

@@ -1,0 +1,341 @@
+//! The report: plain data with public fields, the stable face of the
+//! library. Renderers in this module's children turn it into text or JSON.
+//!
+//! **Invariant:** nothing here knows about graphs, protobuf or tract; every
+//! field is filled by the stage that builds reports (`scan`), and every ONNX
+//! node or tensor the report mentions is named so a user can find it.
+
+pub mod json;
+pub mod table;
+
+use std::collections::BTreeMap;
+
+use serde::{Deserialize, Serialize};
+
+/// Identifies the JSON document kind of a scan.
+pub const SCAN_SCHEMA: &str = "shunt/scan";
+/// Version of the scan JSON schema; bumped on every change of its fields.
+pub const SCAN_SCHEMA_VERSION: u32 = 1;
+
+/// The result of `shunt scan` on one model.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ScanReport {
+    /// Always [`SCAN_SCHEMA`].
+    pub schema: String,
+    /// Always [`SCAN_SCHEMA_VERSION`].
+    pub schema_version: u32,
+    /// The model file and its graph.
+    pub model: ModelInfo,
+    /// Counts over the whole model.
+    pub summary: Summary,
+    /// Runs of consecutive blocks with the same output shape.
+    pub stages: Vec<StageRow>,
+    /// Residual blocks in graph order.
+    pub blocks: Vec<BlockRow>,
+    /// Concatenative skips in graph order.
+    pub concat_skips: Vec<ConcatRow>,
+    /// Learned layers inside a stage that no shortcut spans.
+    pub bare_runs: Vec<BareRunRow>,
+    /// Merges of two or more signals that are not residual blocks.
+    pub not_blocks: Vec<NotBlockRow>,
+    /// Nodes carrying subgraphs (If, Loop, Scan): not searched for blocks.
+    pub subgraphs: Vec<SubgraphRow>,
+    /// Problems the analysis worked around.
+    pub diagnostics: Vec<DiagnosticRow>,
+}
+
+/// The model file and its main graph.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ModelInfo {
+    /// The path as given.
+    pub path: String,
+    /// Size of the model file.
+    pub file_bytes: u64,
+    /// ONNX IR version.
+    pub ir_version: i64,
+    /// Imported operator sets.
+    pub opsets: Vec<OpsetRow>,
+    /// `producer_name` and `producer_version`, joined by a space.
+    pub producer: String,
+    /// Name of the main graph.
+    pub graph_name: String,
+    /// Number of nodes in the main graph.
+    pub nodes: usize,
+    /// Number of initializers.
+    pub initializers: usize,
+    /// Total elements of all initializers.
+    pub parameters: u64,
+    /// Initializers whose payload lives in external files.
+    pub external_tensors: usize,
+    /// Total bytes of external payloads.
+    pub external_bytes: u64,
+    /// Graph inputs (initializers excluded).
+    pub inputs: Vec<TensorRow>,
+    /// Graph outputs.
+    pub outputs: Vec<TensorRow>,
+}
+
+/// One imported operator set.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct OpsetRow {
+    /// Domain; `""` is the default ONNX domain.
+    pub domain: String,
+    /// Version.
+    pub version: i64,
+}
+
+/// A named tensor with its type and shape.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TensorRow {
+    /// ONNX tensor name.
+    pub name: String,
+    /// Element type (`float32`, `int64`, …, `unknown`).
+    pub dtype: String,
+    /// Dimensions: numbers, symbol names, or `?`; `null` when the rank is unknown.
+    pub shape: Option<Vec<String>>,
+}
+
+/// A reference to one ONNX node.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct NodeRef {
+    /// The node's name, or `{op_type}#{index}` when the model leaves it unnamed.
+    pub name: String,
+    /// Position in the model's node list (0-based).
+    pub index: usize,
+    /// ONNX op type.
+    pub op_type: String,
+}
+
+/// Counts over the whole model.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Summary {
+    /// Number of residual blocks.
+    pub blocks: usize,
+    /// Blocks by shortcut kind (`identity`, `projection`, `resampled`).
+    pub by_shortcut: BTreeMap<String, usize>,
+    /// Blocks by placement.
+    pub by_placement: BTreeMap<String, usize>,
+    /// Number of concatenative skips.
+    pub concat_skips: usize,
+    /// Blocks and concatenative skips whose branch holds another of their kind.
+    pub long_skips: usize,
+    /// Blocks whose branch is dead by construction.
+    pub static_dead: usize,
+    /// Number of bare runs.
+    pub bare_runs: usize,
+    /// No residual block and no concatenative skip: a plain network.
+    pub plain: bool,
+}
+
+/// One stage.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct StageRow {
+    /// 1-based stage number.
+    pub id: usize,
+    /// Output shape of its blocks past the batch axis.
+    pub shape: Vec<String>,
+    /// Ids of its blocks.
+    pub blocks: Vec<usize>,
+}
+
+/// One residual block.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BlockRow {
+    /// 1-based block number, in graph order.
+    pub id: usize,
+    /// Stage id, or `null` when the output shape is unknown.
+    pub stage: Option<usize>,
+    /// The merge node (Add, Sum).
+    pub merge: NodeRef,
+    /// The merge's output tensor.
+    pub output: String,
+    /// Its shape, if known.
+    pub output_shape: Option<Vec<String>>,
+    /// The tensor the shortcut and the branch start from.
+    pub fork: String,
+    /// The shortcut.
+    pub shortcut: ShortcutRow,
+    /// The residual branch.
+    pub branch: BranchRow,
+    /// `post-activation`, `pre-activation`, `pre-norm`, `post-norm` or `unactivated`.
+    pub placement: String,
+    /// The node that decided the placement (the activation after the merge,
+    /// the normalisation opening the branch), if any.
+    pub placement_node: Option<NodeRef>,
+    /// Why the branch is dead by construction, if it is.
+    pub static_dead: Option<DeadRow>,
+    /// Id of the innermost block whose branch holds this one.
+    pub parent: Option<usize>,
+    /// How many blocks hold this one.
+    pub depth: usize,
+    /// How many blocks this one's branch holds directly.
+    pub children: usize,
+}
+
+/// A shortcut path.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ShortcutRow {
+    /// `identity`, `projection` or `resampled`.
+    pub kind: String,
+    /// Whether a learned linear layer is on the path.
+    pub projected: bool,
+    /// The merge input tensor it arrives at.
+    pub input: String,
+    /// Ops on the path in graph order.
+    pub ops: Vec<NodeRef>,
+}
+
+/// A residual branch.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BranchRow {
+    /// Merge input tensors fed by the branch.
+    pub inputs: Vec<String>,
+    /// Number of ops in the branch (constants excluded).
+    pub op_count: usize,
+    /// Learned layers in graph order.
+    pub layers: Vec<LayerRow>,
+    /// Normalisations in graph order.
+    pub norms: Vec<LabelledNode>,
+    /// Activations in graph order.
+    pub activations: Vec<LabelledNode>,
+    /// Multiplicative gates (squeeze-and-excitation).
+    pub gates: usize,
+    /// A constant scale at the end of the branch.
+    pub end_scale: Option<EndScaleRow>,
+}
+
+/// A learned layer.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LayerRow {
+    /// The node.
+    pub node: NodeRef,
+    /// Spatial kernel (empty for fully connected layers).
+    pub kernel: Vec<u64>,
+    /// Input channels or features.
+    pub in_channels: Option<u64>,
+    /// Output channels or features.
+    pub out_channels: Option<u64>,
+    /// Convolution strides (empty when not given).
+    pub strides: Vec<i64>,
+    /// Convolution groups.
+    pub groups: u64,
+}
+
+/// A node with a label.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LabelledNode {
+    /// The node.
+    pub node: NodeRef,
+    /// What it is (`BatchNormalization`, `LayerNormalization (decomposed)`).
+    pub label: String,
+}
+
+/// A constant scale at the end of a branch.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct EndScaleRow {
+    /// The Mul node.
+    pub node: NodeRef,
+    /// The constant tensor.
+    pub tensor: String,
+    /// Number of elements, when read.
+    pub elements: Option<u64>,
+    /// Smallest value.
+    pub min: Option<f32>,
+    /// Largest value.
+    pub max: Option<f32>,
+    /// Mean absolute value.
+    pub mean_abs: Option<f32>,
+}
+
+/// Why a branch is dead by construction.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct DeadRow {
+    /// `zero-scale`, `zero-norm-scale` or `zero-weights`.
+    pub reason: String,
+    /// The node whose constant is all zeros.
+    pub node: NodeRef,
+}
+
+/// A concatenative skip.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ConcatRow {
+    /// 1-based number in graph order.
+    pub id: usize,
+    /// The Concat node.
+    pub concat: NodeRef,
+    /// Its output tensor.
+    pub output: String,
+    /// The tensor the skip and the branch start from.
+    pub fork: String,
+    /// Ops on the skip path (empty or crops).
+    pub skip_ops: Vec<NodeRef>,
+    /// Number of ops in the branch.
+    pub branch_op_count: usize,
+    /// Number of learned layers in the branch.
+    pub branch_layers: usize,
+    /// Id of the innermost concatenative skip holding this one.
+    pub parent: Option<usize>,
+    /// How many concatenative skips hold this one.
+    pub depth: usize,
+}
+
+/// Learned layers inside a stage that no shortcut spans.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BareRunRow {
+    /// Id of the block before the run.
+    pub after_block: usize,
+    /// Id of the block after the run.
+    pub before_block: usize,
+    /// The learned layers.
+    pub layers: Vec<NodeRef>,
+}
+
+/// A merge of several signals that is not a block, and why.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct NotBlockRow {
+    /// The node.
+    pub node: NodeRef,
+    /// `independent-inputs`, `no-shortcut` or `no-learned-layer`.
+    pub reason: String,
+    /// The reason in words.
+    pub detail: String,
+}
+
+/// A node carrying subgraphs.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SubgraphRow {
+    /// The node.
+    pub node: NodeRef,
+    /// Number of subgraphs it carries.
+    pub subgraphs: usize,
+}
+
+/// A problem the analysis worked around.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct DiagnosticRow {
+    /// `note` or `warning`.
+    pub severity: String,
+    /// The node it is about, if any.
+    pub node: Option<String>,
+    /// What happened.
+    pub message: String,
+}

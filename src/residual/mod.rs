@@ -1,0 +1,308 @@
+//! Finding residual blocks: every Add or Sum whose signal inputs fork from one
+//! tensor, one of them reaching the merge as a shortcut and another through a
+//! branch with learned weights; and every Concat that joins a tensor with a
+//! path derived from it (a concatenative skip).
+//!
+//! The fork is found with dominators ([`Dominance`]), never by names: the
+//! fork of a merge is the immediate dominator of its output.
+//!
+//! **Invariant:** the shortcut path and the branch of a block share no node,
+//! and both lie strictly between the fork and the merge. Detection never
+//! fails: what it cannot decide becomes a rejected candidate with a reason.
+
+use std::collections::HashSet;
+
+use crate::graph::op::{self, Family};
+use crate::graph::{Dominance, Graph, NodeId, ValueId};
+
+/// How the shortcut reaches the merge.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub enum ShortcutKind {
+    /// The fork tensor itself, through at most reshapes, casts,
+    /// quantize/dequantize pairs or a normalisation.
+    Identity,
+    /// One learned linear layer (1x1 convolution, fully connected),
+    /// optionally with a normalisation or a folded scale and shift.
+    Projection,
+    /// Pooling, strided slicing, padding or resizing, with or without one
+    /// projection.
+    Resampled,
+}
+
+/// The shortcut path of a block.
+#[derive(Debug, Clone)]
+pub struct Shortcut {
+    /// What kind of path it is.
+    pub kind: ShortcutKind,
+    /// The merge input it arrives at.
+    pub input: ValueId,
+    /// The input slot of the merge.
+    pub slot: usize,
+    /// Ops on the path, in graph order (empty for a bare identity).
+    pub ops: Vec<NodeId>,
+    /// Whether a learned linear layer is on the path.
+    pub projected: bool,
+}
+
+/// One residual block: `merge(shortcut(fork), branch(fork))`.
+#[derive(Debug, Clone)]
+pub struct Block {
+    /// The Add, Sum or QLinearAdd node.
+    pub merge: NodeId,
+    /// The merge's output.
+    pub output: ValueId,
+    /// The tensor the shortcut and the branch start from.
+    pub fork: ValueId,
+    /// The shortcut.
+    pub shortcut: Shortcut,
+    /// Merge inputs fed by the branch.
+    pub branch_inputs: Vec<ValueId>,
+    /// Ops of the branch, in graph order.
+    pub branch: Vec<NodeId>,
+    /// Index of the innermost block whose branch holds this one.
+    pub parent: Option<usize>,
+    /// Number of blocks whose branches hold this one.
+    pub depth: usize,
+    /// Number of blocks directly inside this one's branch.
+    pub children: usize,
+}
+
+/// A Concat joining a tensor with a path derived from it (DenseNet, U-Net).
+#[derive(Debug, Clone)]
+pub struct ConcatSkip {
+    /// The Concat node.
+    pub concat: NodeId,
+    /// Its output.
+    pub output: ValueId,
+    /// The tensor the skip and the branch start from.
+    pub fork: ValueId,
+    /// The skip path (identity or a crop).
+    pub skip: Shortcut,
+    /// Concat inputs fed by the branch.
+    pub branch_inputs: Vec<ValueId>,
+    /// Ops of the branch, in graph order.
+    pub branch: Vec<NodeId>,
+    /// Index of the innermost concatenative skip whose branch holds this one.
+    pub parent: Option<usize>,
+    /// Number of concatenative skips whose branches hold this one.
+    pub depth: usize,
+}
+
+/// A merge with two or more signal inputs that is not a residual block.
+#[derive(Debug, Clone)]
+pub struct Rejected {
+    /// The Add, Sum or Concat node.
+    pub node: NodeId,
+    /// Why it is not a block.
+    pub reason: Reason,
+}
+
+/// Why a merge with several signal inputs is not a block.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Reason {
+    /// Its inputs come from independent signals (separate graph inputs).
+    Independent,
+    /// No input reaches it from the fork as a shortcut.
+    NoShortcut,
+    /// No path from the fork holds a layer with weights: elementwise arithmetic.
+    NoLearnedLayer,
+}
+
+impl Reason {
+    /// A short explanation.
+    pub fn describe(self) -> &'static str {
+        match self {
+            Reason::Independent => "its inputs come from independent signals",
+            Reason::NoShortcut => "no input reaches it from the fork as a shortcut",
+            Reason::NoLearnedLayer => "no path from the fork holds a layer with weights",
+        }
+    }
+}
+
+/// Everything detection found.
+#[derive(Debug, Clone, Default)]
+pub struct Detection {
+    /// Residual blocks, in graph order of their merges.
+    pub blocks: Vec<Block>,
+    /// Concatenative skips, in graph order.
+    pub concat_skips: Vec<ConcatSkip>,
+    /// Merges with several signal inputs that are not blocks.
+    pub rejected: Vec<Rejected>,
+}
+
+/// Finds every residual block and concatenative skip of `g`.
+pub fn find_blocks(g: &Graph, dom: &Dominance) -> Detection {
+    let mut det = Detection::default();
+    for &n in &g.order {
+        let node = g.node(n);
+        let is_merge = op::is_merge(&node.op);
+        if !is_merge && !op::is_concat(&node.op) {
+            continue;
+        }
+        let signals: Vec<(usize, ValueId)> = node
+            .inputs
+            .iter()
+            .enumerate()
+            .filter_map(|(slot, v)| v.map(|v| (slot, v)))
+            .filter(|(_, v)| !g.value(*v).is_static)
+            .collect();
+        if signals.len() < 2 {
+            continue;
+        }
+        let Some(&output) = node.outputs.first() else { continue };
+        let Some(fork) = dom.idom(output) else {
+            det.rejected.push(Rejected { node: n, reason: Reason::Independent });
+            continue;
+        };
+        match join(g, fork, &signals, is_merge) {
+            Ok((shortcut, branch_inputs, branch)) => {
+                if is_merge {
+                    det.blocks.push(Block {
+                        merge: n,
+                        output,
+                        fork,
+                        shortcut,
+                        branch_inputs,
+                        branch,
+                        parent: None,
+                        depth: 0,
+                        children: 0,
+                    });
+                } else {
+                    det.concat_skips.push(ConcatSkip {
+                        concat: n,
+                        output,
+                        fork,
+                        skip: shortcut,
+                        branch_inputs,
+                        branch,
+                        parent: None,
+                        depth: 0,
+                    });
+                }
+            }
+            Err(reason) => det.rejected.push(Rejected { node: n, reason }),
+        }
+    }
+    let block_nesting = nesting(det.blocks.iter().map(|b| (b.merge, b.branch.as_slice())));
+    for (i, (parent, depth)) in block_nesting.into_iter().enumerate() {
+        det.blocks[i].parent = parent;
+        det.blocks[i].depth = depth;
+        if let Some(p) = parent {
+            det.blocks[p].children += 1;
+        }
+    }
+    let concat_nesting = nesting(det.concat_skips.iter().map(|c| (c.concat, c.branch.as_slice())));
+    for (i, (parent, depth)) in concat_nesting.into_iter().enumerate() {
+        det.concat_skips[i].parent = parent;
+        det.concat_skips[i].depth = depth;
+    }
+    det
+}
+
+/// Splits the signal inputs of a merge into one shortcut and the branch.
+fn join(
+    g: &Graph,
+    fork: ValueId,
+    signals: &[(usize, ValueId)],
+    is_merge: bool,
+) -> Result<(Shortcut, Vec<ValueId>, Vec<NodeId>), Reason> {
+    let paths: Vec<Option<Vec<NodeId>>> = signals.iter().map(|&(_, v)| path_from(g, fork, v)).collect();
+    // The shortcut is the simplest eligible path; ties go to the fewest ops,
+    // then to the lowest slot.
+    let mut best: Option<(usize, Shortcut)> = None;
+    for (i, path) in paths.iter().enumerate() {
+        let Some(path) = path else { continue };
+        let Some((kind, projected)) = shortcut_kind(g, path, is_merge) else { continue };
+        let (slot, input) = signals[i];
+        let candidate = Shortcut { kind, input, slot, ops: path.clone(), projected };
+        let key = |s: &Shortcut| (s.kind, s.projected, s.ops.len());
+        if best.as_ref().is_none_or(|(_, b)| key(&candidate) < key(b)) {
+            best = Some((i, candidate));
+        }
+    }
+    let Some((chosen, shortcut)) = best else {
+        let any_learned = paths.iter().flatten().flatten().any(|&n| op::is_parametrised(g, n));
+        return Err(if any_learned { Reason::NoShortcut } else { Reason::NoLearnedLayer });
+    };
+    let mut branch_set: HashSet<NodeId> = HashSet::new();
+    let mut branch_inputs = Vec::new();
+    for (i, path) in paths.iter().enumerate() {
+        if i == chosen {
+            continue;
+        }
+        branch_inputs.push(signals[i].1);
+        if let Some(path) = path {
+            branch_set.extend(path.iter().copied());
+        }
+    }
+    let learned = branch_set.iter().any(|&n| op::is_parametrised(g, n));
+    if !learned {
+        return Err(Reason::NoLearnedLayer);
+    }
+    if shortcut.ops.iter().any(|n| branch_set.contains(n)) {
+        return Err(Reason::NoShortcut);
+    }
+    let mut branch: Vec<NodeId> = branch_set.into_iter().collect();
+    branch.sort_by_key(|n| g.rank[n.0 as usize]);
+    Ok((shortcut, branch_inputs, branch))
+}
+
+/// The nodes on every path from `fork` to `target`, in graph order; empty
+/// when `target` is the fork. `None` if a path reaches a graph input other
+/// than the fork (then `fork` does not dominate `target`).
+pub fn path_from(g: &Graph, fork: ValueId, target: ValueId) -> Option<Vec<NodeId>> {
+    let mut nodes: HashSet<NodeId> = HashSet::new();
+    let mut seen: HashSet<ValueId> = HashSet::new();
+    let mut stack = vec![target];
+    while let Some(v) = stack.pop() {
+        if v == fork || !seen.insert(v) || g.value(v).is_static {
+            continue;
+        }
+        let p = g.producer(v)?;
+        if nodes.insert(p) {
+            stack.extend(g.signal_inputs(p));
+        }
+    }
+    let mut out: Vec<NodeId> = nodes.into_iter().collect();
+    out.sort_by_key(|n| g.rank[n.0 as usize]);
+    Some(out)
+}
+
+/// The kind of a path if it can serve as a shortcut: pass-through ops,
+/// normalisations and folded affine ops, at most one learned linear layer,
+/// and resampling. A concatenative skip takes only pass-through ops and crops.
+fn shortcut_kind(g: &Graph, path: &[NodeId], is_merge: bool) -> Option<(ShortcutKind, bool)> {
+    let mut linear = 0;
+    let mut resampled = false;
+    for &n in path {
+        match op::family(g, n) {
+            Family::PassThrough => {}
+            Family::Norm | Family::Affine if is_merge => {}
+            Family::Linear if is_merge => linear += 1,
+            Family::Resample if is_merge => resampled = true,
+            Family::Resample if g.node(n).op == "Slice" => {}
+            _ => return None,
+        }
+    }
+    match (linear, resampled) {
+        (0, false) => Some((ShortcutKind::Identity, false)),
+        (1, false) => Some((ShortcutKind::Projection, true)),
+        (l, true) if l <= 1 => Some((ShortcutKind::Resampled, l == 1)),
+        _ => None,
+    }
+}
+
+/// Parent and depth of each item, where item `j` is inside item `i` when
+/// `i`'s branch holds `j`'s merge node.
+fn nesting<'a>(items: impl Iterator<Item = (NodeId, &'a [NodeId])>) -> Vec<(Option<usize>, usize)> {
+    let items: Vec<(NodeId, HashSet<NodeId>)> = items.map(|(m, b)| (m, b.iter().copied().collect())).collect();
+    (0..items.len())
+        .map(|j| {
+            let merge = items[j].0;
+            let enclosing: Vec<usize> = (0..items.len()).filter(|&i| i != j && items[i].1.contains(&merge)).collect();
+            let parent = enclosing.iter().copied().min_by_key(|&i| items[i].1.len());
+            (parent, enclosing.len())
+        })
+        .collect()
+}
