@@ -2,7 +2,7 @@
 
 use std::io;
 
-use comfy_table::{ContentArrangement, Table, presets};
+use comfy_table::{ContentArrangement, Table, TableComponent, presets};
 
 use crate::report::{BlockRow, LayerRow, ScanReport};
 
@@ -84,7 +84,8 @@ pub fn render_scan(r: &ScanReport, out: &mut dyn io::Write) -> io::Result<()> {
         writeln!(out, "No residual merge and no concatenative skip: this is a plain network.")?;
     } else if !r.blocks.is_empty() {
         let mut t = Table::new();
-        t.load_preset(presets::UTF8_HORIZONTAL_ONLY).set_content_arrangement(ContentArrangement::Disabled);
+        t.load_preset(presets::NOTHING).set_content_arrangement(ContentArrangement::Disabled);
+        t.set_style(TableComponent::HeaderLines, '─').set_style(TableComponent::MiddleHeaderIntersections, '─');
         t.set_header(vec!["#", "stage", "merge", "shortcut", "placement", "branch", "notes"]);
         for b in &r.blocks {
             let stage = match (b.stage, &b.output_shape) {
