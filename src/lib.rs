@@ -18,10 +18,12 @@ pub mod classify;
 pub mod error;
 pub mod graph;
 pub mod load;
+pub mod probe;
 pub mod proto;
 pub mod report;
 pub mod residual;
 pub mod scan;
+pub mod stats;
 #[doc(hidden)]
 pub mod testkit;
 

@@ -1,0 +1,464 @@
+//! What to feed a model: seeded synthetic inputs built from the graph's
+//! input declarations, or arrays from a `.npy`/`.npz` file.
+//!
+//! Values come from a ChaCha8 stream per input (`set_stream(input index)`),
+//! drawn sample after sample, so the same seed gives the same values on every
+//! platform and however the samples are split into passes.
+
+use std::collections::BTreeMap;
+use std::fs::File;
+use std::io::Read;
+use std::path::{Path, PathBuf};
+
+use ndarray::ArrayD;
+use ndarray_npy::{NpzReader, ReadNpyExt};
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use rand_distr::StandardNormal;
+use sha2::{Digest, Sha256};
+
+use crate::error::{Error, ErrorKind, Result};
+use crate::graph::{Dim, Graph, Source};
+use crate::proto::tensor_proto::DataType;
+
+/// The distribution of synthetic float inputs.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Dist {
+    /// Normal with mean 0 and standard deviation `scale`.
+    Normal,
+    /// Uniform on `[-scale, scale]`.
+    Uniform,
+}
+
+/// How inputs are made.
+#[derive(Debug, Clone)]
+pub struct InputConfig {
+    /// Number of samples to run.
+    pub samples: usize,
+    /// Seed of the generator.
+    pub seed: u64,
+    /// Distribution of float inputs.
+    pub dist: Dist,
+    /// Scale of the distribution.
+    pub scale: f32,
+    /// Values of symbolic dimensions other than the batch, by name.
+    pub dims: BTreeMap<String, u64>,
+    /// Whole shapes of inputs, by input name (the batch axis included).
+    pub shapes: BTreeMap<String, Vec<u64>>,
+    /// Inputs filled with one constant value, by name.
+    pub fills: BTreeMap<String, f64>,
+    /// A `.npy` (single-input models) or `.npz` (entries named after inputs) file.
+    pub feed: Option<PathBuf>,
+}
+
+/// One graph input as the graph declares it.
+#[derive(Debug, Clone)]
+pub struct InputSpec {
+    /// ONNX name.
+    pub name: String,
+    /// ONNX element type.
+    pub dtype: i32,
+    /// Declared shape (`None` when the rank is unknown).
+    pub shape: Option<Vec<Dim>>,
+    /// Rows of the embedding table this input indexes, if it feeds one.
+    pub vocab: Option<u64>,
+}
+
+/// The graph inputs of `g` with what is known of them.
+pub fn input_specs(g: &Graph) -> Vec<InputSpec> {
+    g.inputs
+        .iter()
+        .map(|&v| {
+            let value = g.value(v);
+            let vocab = g.value(v).consumers.iter().find_map(|&(n, slot)| {
+                let node = g.node(n);
+                if node.op != "Gather" || slot != 1 {
+                    return None;
+                }
+                let table = node.inputs.first().copied().flatten()?;
+                if g.value(table).source != Source::Initializer {
+                    return None;
+                }
+                let dims = g.constant_dims(table)?;
+                dims.first().and_then(|&d| u64::try_from(d).ok())
+            });
+            InputSpec { name: value.name.clone(), dtype: value.fact.dtype, shape: value.fact.shape.clone(), vocab }
+        })
+        .collect()
+}
+
+/// Values of one input for one pass.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Values {
+    /// 32-bit floats.
+    F32(Vec<f32>),
+    /// 64-bit integers.
+    I64(Vec<i64>),
+    /// 32-bit integers.
+    I32(Vec<i32>),
+    /// Booleans.
+    Bool(Vec<bool>),
+}
+
+/// How one input is fed.
+#[derive(Debug, Clone)]
+pub struct Fed {
+    /// ONNX name.
+    pub name: String,
+    /// ONNX element type.
+    pub dtype: i32,
+    /// Shape of one pass, the batch axis first.
+    pub pass_shape: Vec<u64>,
+    /// What values it gets, in words (`normal(0, 1)`, `token ids uniform in [0, 50)`).
+    pub how: String,
+    source: Fill,
+}
+
+#[derive(Debug, Clone)]
+enum Fill {
+    Random(Dist, f32),
+    Tokens(u64),
+    Constant(f64),
+    Array(ArrayD<f64>),
+}
+
+/// Everything about what is fed, pass by pass.
+#[derive(Debug, Clone)]
+pub struct Feeding {
+    /// Inputs in graph order.
+    pub inputs: Vec<Fed>,
+    /// Samples per pass.
+    pub pass_batch: usize,
+    /// Number of passes.
+    pub passes: usize,
+    /// Samples in all (`pass_batch * passes`).
+    pub samples: usize,
+    /// The seed used.
+    pub seed: u64,
+    /// The feed file and its SHA-256 digest, when one was given.
+    pub feed: Option<(PathBuf, String)>,
+}
+
+/// Decides shapes, batching and values of every input.
+pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
+    if config.samples == 0 {
+        return Err(usage("--batch must be at least 1"));
+    }
+    let mut arrays: BTreeMap<String, ArrayD<f64>> = BTreeMap::new();
+    let mut feed = None;
+    if let Some(path) = &config.feed {
+        arrays = read_feed(path, specs)?;
+        feed = Some((path.clone(), sha256_of(path)?));
+    }
+    for name in config.shapes.keys().chain(config.fills.keys()) {
+        if !specs.iter().any(|s| &s.name == name) {
+            let names: Vec<&str> = specs.iter().map(|s| s.name.as_str()).collect();
+            return Err(usage(format!("the model has no input named '{name}' (inputs: {})", names.join(", "))));
+        }
+    }
+    // The batch of one pass: fixed when an input declares a concrete
+    // leading dimension, otherwise all samples at once.
+    let fixed_batch = specs.iter().find_map(|s| match s.shape.as_ref()?.first()? {
+        Dim::Known(k) if !config.shapes.contains_key(&s.name) && !arrays.contains_key(&s.name) => Some(*k as usize),
+        _ => None,
+    });
+    let fed_batch = arrays.values().next().and_then(|a| a.shape().first().copied());
+    let samples = fed_batch.unwrap_or(config.samples);
+    let pass_batch = match (fixed_batch, fed_batch) {
+        (Some(k), _) if k > 0 => k,
+        (_, Some(n)) => n,
+        _ => config.shapes.values().next().and_then(|s| s.first().map(|&d| d as usize)).unwrap_or(samples),
+    };
+    if pass_batch == 0 {
+        return Err(usage("an input declares a batch of 0"));
+    }
+    let passes = samples.div_ceil(pass_batch);
+    let mut inputs = Vec::with_capacity(specs.len());
+    for s in specs {
+        let (pass_shape, source, how) = if let Some(a) = arrays.remove(&s.name) {
+            let mut shape: Vec<u64> = a.shape().iter().map(|&d| d as u64).collect();
+            if let Some(first) = shape.first_mut() {
+                *first = pass_batch as u64;
+            }
+            let how = format!("from {}", config.feed.as_deref().map_or(String::new(), |p| p.display().to_string()));
+            (shape, Fill::Array(a), how)
+        } else {
+            let shape = resolve_shape(s, pass_batch, config)?;
+            let (source, how) = match config.fills.get(&s.name) {
+                Some(&v) => (Fill::Constant(v), format!("constant {v}")),
+                None if is_float(s.dtype) => {
+                    let how = match config.dist {
+                        Dist::Normal => format!("normal(0, {})", config.scale),
+                        Dist::Uniform => format!("uniform(-{0}, {0})", config.scale),
+                    };
+                    (Fill::Random(config.dist, config.scale), how)
+                }
+                None => match s.vocab {
+                    Some(v) if v > 0 => (Fill::Tokens(v), format!("token ids uniform in [0, {v})")),
+                    _ => (Fill::Constant(1.0), "ones (mask-like)".to_owned()),
+                },
+            };
+            (shape, source, how)
+        };
+        inputs.push(Fed { name: s.name.clone(), dtype: s.dtype, pass_shape, how, source });
+    }
+    Ok(Feeding { inputs, pass_batch, passes, samples: pass_batch * passes, seed: config.seed, feed })
+}
+
+fn resolve_shape(s: &InputSpec, pass_batch: usize, config: &InputConfig) -> Result<Vec<u64>> {
+    if let Some(shape) = config.shapes.get(&s.name) {
+        let mut shape = shape.clone();
+        if let Some(first) = shape.first_mut() {
+            *first = pass_batch as u64;
+        }
+        return Ok(shape);
+    }
+    let Some(declared) = &s.shape else {
+        return Err(usage(format!(
+            "input '{}' declares no shape; give one with --input {}=D1xD2x...",
+            s.name, s.name
+        )));
+    };
+    declared
+        .iter()
+        .enumerate()
+        .map(|(axis, d)| match d {
+            Dim::Known(k) => Ok(if axis == 0 { pass_batch as u64 } else { *k }),
+            Dim::Symbol(sym) => match config.dims.get(sym) {
+                Some(&v) if axis > 0 => Ok(v),
+                _ if axis == 0 => Ok(pass_batch as u64),
+                _ => Err(usage(format!(
+                    "input '{}' has symbolic dimension '{sym}' at axis {axis}; set it with --dim {sym}=VALUE",
+                    s.name
+                ))),
+            },
+            Dim::Unknown if axis == 0 => Ok(pass_batch as u64),
+            Dim::Unknown => Err(usage(format!(
+                "input '{}' has an unknown dimension at axis {axis}; give the shape with --input {}=D1xD2x...",
+                s.name, s.name
+            ))),
+        })
+        .collect()
+}
+
+/// The values of every input for pass `pass` (0-based).
+pub fn values(feeding: &Feeding, pass: usize) -> Vec<Values> {
+    feeding
+        .inputs
+        .iter()
+        .enumerate()
+        .map(|(index, fed)| {
+            let n: u64 = fed.pass_shape.iter().product();
+            let n = n as usize;
+            let per_sample = if feeding.pass_batch > 0 { n / feeding.pass_batch } else { n };
+            let as_f64: Vec<f64> = match &fed.source {
+                Fill::Constant(v) => vec![*v; n],
+                Fill::Array(a) => {
+                    let flat: Vec<f64> = a.iter().copied().collect();
+                    let start = (pass * n).min(flat.len());
+                    let mut chunk = flat[start..(start + n).min(flat.len())].to_vec();
+                    // A last pass past the end of the fed samples repeats the first ones.
+                    while chunk.len() < n {
+                        let more = (n - chunk.len()).min(flat.len());
+                        chunk.extend_from_slice(&flat[..more]);
+                    }
+                    chunk
+                }
+                Fill::Random(..) | Fill::Tokens(_) => {
+                    let mut rng = ChaCha8Rng::seed_from_u64(feeding.seed);
+                    rng.set_stream(index as u64);
+                    // Skip the samples of earlier passes, draw this pass's.
+                    let mut out = Vec::with_capacity(n);
+                    for i in 0..(pass * per_sample * feeding.pass_batch + n) {
+                        let v = match &fed.source {
+                            Fill::Random(Dist::Normal, s) => {
+                                let z: f32 = rng.sample(StandardNormal);
+                                (z * s) as f64
+                            }
+                            Fill::Random(Dist::Uniform, s) => rng.random_range(-1.0f32..=1.0) as f64 * *s as f64,
+                            Fill::Tokens(v) => rng.random_range(0..*v) as f64,
+                            _ => unreachable!("only random fills are drawn"),
+                        };
+                        if i >= pass * per_sample * feeding.pass_batch {
+                            out.push(v);
+                        }
+                    }
+                    out
+                }
+            };
+            match DataType::try_from(fed.dtype) {
+                Ok(DataType::Int64) => Values::I64(as_f64.iter().map(|&v| v as i64).collect()),
+                Ok(DataType::Int32) => Values::I32(as_f64.iter().map(|&v| v as i32).collect()),
+                Ok(DataType::Bool) => Values::Bool(as_f64.iter().map(|&v| v != 0.0).collect()),
+                _ => Values::F32(as_f64.iter().map(|&v| v as f32).collect()),
+            }
+        })
+        .collect()
+}
+
+fn is_float(dtype: i32) -> bool {
+    matches!(
+        DataType::try_from(dtype),
+        Ok(DataType::Float | DataType::Double | DataType::Float16 | DataType::Bfloat16) | Err(_)
+    ) || dtype == 0
+}
+
+fn read_feed(path: &Path, specs: &[InputSpec]) -> Result<BTreeMap<String, ArrayD<f64>>> {
+    let bad = |m: String| Error::new(ErrorKind::Usage, m).at(path);
+    let is_npz = path.extension().is_some_and(|e| e.eq_ignore_ascii_case("npz"));
+    let mut out = BTreeMap::new();
+    if is_npz {
+        let file = File::open(path).map_err(|e| bad(crate::load::io_message(&e)))?;
+        let mut npz = NpzReader::new(file).map_err(|e| bad(format!("not a readable .npz file ({e})")))?;
+        let names = npz.names().map_err(|e| bad(format!("not a readable .npz file ({e})")))?;
+        for s in specs {
+            let entry = names.iter().find(|n| n.as_str() == s.name || n.strip_suffix(".npy") == Some(s.name.as_str()));
+            let Some(entry) = entry else {
+                return Err(bad(format!("has no entry for input '{}' (entries: {})", s.name, names.join(", "))));
+            };
+            let entry = entry.clone();
+            let array = read_npz_entry(&mut npz, &entry).map_err(|m| bad(format!("entry '{entry}': {m}")))?;
+            out.insert(s.name.clone(), array);
+        }
+    } else {
+        if specs.len() != 1 {
+            return Err(bad(format!(
+                "a .npy file feeds a model with one input; this one has {} (use a .npz with one entry per input)",
+                specs.len()
+            )));
+        }
+        let bytes = std::fs::read(path).map_err(|e| bad(crate::load::io_message(&e)))?;
+        let array = read_npy_any(&bytes).map_err(|m| bad(m))?;
+        out.insert(specs[0].name.clone(), array);
+    }
+    let batches: Vec<usize> = out.values().filter_map(|a| a.shape().first().copied()).collect();
+    if batches.windows(2).any(|w| w[0] != w[1]) {
+        return Err(bad("its arrays disagree on the number of samples (the first axis)".to_owned()));
+    }
+    Ok(out)
+}
+
+fn read_npy_any(bytes: &[u8]) -> std::result::Result<ArrayD<f64>, String> {
+    if let Ok(a) = ArrayD::<f32>::read_npy(bytes) {
+        return Ok(a.mapv(|v| v as f64));
+    }
+    if let Ok(a) = ArrayD::<f64>::read_npy(bytes) {
+        return Ok(a);
+    }
+    if let Ok(a) = ArrayD::<i64>::read_npy(bytes) {
+        return Ok(a.mapv(|v| v as f64));
+    }
+    if let Ok(a) = ArrayD::<i32>::read_npy(bytes) {
+        return Ok(a.mapv(|v| v as f64));
+    }
+    match ArrayD::<bool>::read_npy(bytes) {
+        Ok(a) => Ok(a.mapv(|v| if v { 1.0 } else { 0.0 })),
+        Err(e) => Err(format!("not a readable .npy array of float32, float64, int64, int32 or bool ({e})")),
+    }
+}
+
+fn read_npz_entry<R: std::io::Read + std::io::Seek>(npz: &mut NpzReader<R>, name: &str) -> std::result::Result<ArrayD<f64>, String> {
+    if let Ok(a) = npz.by_name::<ndarray::OwnedRepr<f32>, ndarray::IxDyn>(name) {
+        return Ok(a.mapv(|v| v as f64));
+    }
+    if let Ok(a) = npz.by_name::<ndarray::OwnedRepr<f64>, ndarray::IxDyn>(name) {
+        return Ok(a);
+    }
+    if let Ok(a) = npz.by_name::<ndarray::OwnedRepr<i64>, ndarray::IxDyn>(name) {
+        return Ok(a.mapv(|v| v as f64));
+    }
+    if let Ok(a) = npz.by_name::<ndarray::OwnedRepr<i32>, ndarray::IxDyn>(name) {
+        return Ok(a.mapv(|v| v as f64));
+    }
+    match npz.by_name::<ndarray::OwnedRepr<bool>, ndarray::IxDyn>(name) {
+        Ok(a) => Ok(a.mapv(|v| if v { 1.0 } else { 0.0 })),
+        Err(e) => Err(format!("not an array of float32, float64, int64, int32 or bool ({e})")),
+    }
+}
+
+fn sha256_of(path: &Path) -> Result<String> {
+    let mut file = File::open(path).map_err(|e| Error::new(ErrorKind::Usage, crate::load::io_message(&e)).at(path))?;
+    let mut hasher = Sha256::new();
+    let mut buf = vec![0u8; 1 << 16];
+    loop {
+        let n = file.read(&mut buf).map_err(|e| Error::new(ErrorKind::Io, crate::load::io_message(&e)).at(path))?;
+        if n == 0 {
+            break;
+        }
+        hasher.update(&buf[..n]);
+    }
+    Ok(hasher.finalize().iter().map(|b| format!("{b:02x}")).collect())
+}
+
+fn usage(message: impl Into<String>) -> Error {
+    Error::new(ErrorKind::Usage, message)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn spec(name: &str, dims: Vec<Dim>) -> InputSpec {
+        InputSpec { name: name.into(), dtype: DataType::Float as i32, shape: Some(dims), vocab: None }
+    }
+
+    fn config(samples: usize) -> InputConfig {
+        InputConfig {
+            samples,
+            seed: 7,
+            dist: Dist::Normal,
+            scale: 1.0,
+            dims: BTreeMap::new(),
+            shapes: BTreeMap::new(),
+            fills: BTreeMap::new(),
+            feed: None,
+        }
+    }
+
+    #[test]
+    fn same_seed_same_values_whatever_the_passes() {
+        let sym = spec("x", vec![Dim::Symbol("N".into()), Dim::Known(3)]);
+        let one = plan(&[sym.clone()], &config(4)).unwrap();
+        assert_eq!((one.pass_batch, one.passes), (4, 1));
+        let all = match &values(&one, 0)[0] {
+            Values::F32(v) => v.clone(),
+            other => panic!("{other:?}"),
+        };
+        assert_eq!(all.len(), 12);
+        // A fixed batch of 2 runs the same samples as two passes.
+        let fixed = spec("x", vec![Dim::Known(2), Dim::Known(3)]);
+        let two = plan(&[fixed], &config(4)).unwrap();
+        assert_eq!((two.pass_batch, two.passes), (2, 2));
+        let mut joined = Vec::new();
+        for p in 0..2 {
+            match &values(&two, p)[0] {
+                Values::F32(v) => joined.extend_from_slice(v),
+                other => panic!("{other:?}"),
+            }
+        }
+        assert_eq!(joined, all);
+    }
+
+    #[test]
+    fn symbolic_dims_need_values() {
+        let s = spec("x", vec![Dim::Symbol("N".into()), Dim::Symbol("seq".into())]);
+        let e = plan(&[s.clone()], &config(2)).unwrap_err();
+        assert!(e.message().contains("--dim seq=VALUE"), "{e}");
+        let mut c = config(2);
+        c.dims.insert("seq".into(), 5);
+        assert_eq!(plan(&[s], &c).unwrap().inputs[0].pass_shape, vec![2, 5]);
+    }
+
+    #[test]
+    fn tokens_and_masks() {
+        let ids = InputSpec { name: "ids".into(), dtype: DataType::Int64 as i32, shape: Some(vec![Dim::Symbol("N".into()), Dim::Known(8)]), vocab: Some(50) };
+        let mask = InputSpec { name: "mask".into(), dtype: DataType::Int64 as i32, shape: Some(vec![Dim::Symbol("N".into()), Dim::Known(8)]), vocab: None };
+        let f = plan(&[ids, mask], &config(3)).unwrap();
+        let v = values(&f, 0);
+        let Values::I64(ids) = &v[0] else { panic!() };
+        assert!(ids.iter().all(|&t| (0..50).contains(&t)));
+        assert!(ids.iter().any(|&t| t != ids[0]));
+        assert_eq!(v[1], Values::I64(vec![1; 24]));
+        assert!(f.inputs[1].how.contains("mask"));
+    }
+}

@@ -1,0 +1,412 @@
+//! Running the model on the CPU with tract and measuring every block as its
+//! tensors appear. The only module that knows tract.
+//!
+//! The recipe (see DEVELOPERS.md): every watched tensor becomes an extra model
+//! output before optimising, so the optimiser cannot fuse it away and output
+//! position `i` stays a handle on watched tensor `i`; after optimising, the
+//! outputs are reset to the model's own, so watched tensors are freed after
+//! their last consumer as usual; the plan is run with an evaluation callback
+//! that computes statistics on each watched tensor while it is hot and keeps
+//! nothing but a reference to a merge input until the other one arrives.
+//!
+//! **Invariant:** memory stays near one plain forward pass: per block, at most
+//! the shortcut and branch tensors are held, and only until both are seen.
+
+pub mod inputs;
+
+use std::collections::HashMap;
+use std::panic::{AssertUnwindSafe, catch_unwind};
+use std::path::Path;
+
+use tract_onnx::prelude::*;
+
+use crate::error::{Error, ErrorKind, Result};
+use crate::stats;
+use inputs::{Feeding, Values};
+
+/// What to watch for one block, by ONNX tensor name.
+#[derive(Debug, Clone)]
+pub struct Watch {
+    /// The block's input (the fork).
+    pub fork: String,
+    /// The merge input fed by the shortcut.
+    pub shortcut: String,
+    /// The merge inputs fed by the branch.
+    pub branch: Vec<String>,
+    /// The merge output.
+    pub output: String,
+    /// Where the channels are: axis 1 (convolutions) or the last axis.
+    pub channels_first: bool,
+    /// Whether to measure the fraction of outputs a ReLU after the merge zeroes.
+    pub relu_after: bool,
+}
+
+/// Per-sample measurements of one block.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct BlockSamples {
+    /// RMS of the fork tensor, per sample.
+    pub fork_rms: Vec<f64>,
+    /// RMS of the shortcut at the merge, per sample.
+    pub shortcut_rms: Vec<f64>,
+    /// RMS of the branch at the merge, per sample.
+    pub branch_rms: Vec<f64>,
+    /// RMS of the merge output, per sample.
+    pub output_rms: Vec<f64>,
+    /// Cosine of branch and shortcut, per sample (when shapes match and neither is zero).
+    pub cosine: Vec<f64>,
+    /// Fraction of merge outputs that are not positive, per sample (ReLU after the merge).
+    pub zeroed: Vec<f64>,
+    /// Sum over samples of the shortcut's per-channel sum of squares.
+    pub channel_shortcut: Vec<f64>,
+    /// Sum over samples of the branch's per-channel sum of squares.
+    pub channel_branch: Vec<f64>,
+    /// NaN values seen in the block's watched tensors.
+    pub nan: u64,
+    /// Infinite values seen in the block's watched tensors.
+    pub inf: u64,
+}
+
+/// The outcome of probing.
+#[derive(Debug, Clone)]
+pub struct ProbeResult {
+    /// Measurements per watched block, in the order of the watches.
+    pub blocks: Vec<BlockSamples>,
+    /// The final outputs of every pass, flattened per output (float outputs only).
+    pub outputs: Vec<Vec<f32>>,
+}
+
+/// Reports progress of long steps; the command line draws a bar.
+pub trait Progress {
+    /// A step starts (`preparing the model`, `running`).
+    fn step(&self, message: &str, total: u64);
+    /// One unit of the current step is done.
+    fn advance(&self);
+    /// All done.
+    fn finish(&self);
+}
+
+/// A [`Progress`] that reports nothing.
+pub struct Silent;
+
+impl Progress for Silent {
+    fn step(&self, _: &str, _: u64) {}
+    fn advance(&self) {}
+    fn finish(&self) {}
+}
+
+/// Where tract reads the model from.
+pub enum ModelSource<'a> {
+    /// A file; external data resolves against its folder.
+    Path(&'a Path),
+    /// Encoded bytes (no external data).
+    Bytes(&'a [u8]),
+}
+
+#[derive(Debug, Clone, Copy)]
+enum Role {
+    Fork,
+    Shortcut,
+    Branch(usize),
+    Output,
+}
+
+/// Runs the model over every pass of `feeding` and measures every watch.
+pub fn run(source: ModelSource<'_>, watches: &[Watch], feeding: &Feeding, progress: &dyn Progress) -> Result<ProbeResult> {
+    match catch_unwind(AssertUnwindSafe(|| run_inner(source, watches, feeding, progress))) {
+        Ok(r) => r,
+        Err(panic) => {
+            let what = panic
+                .downcast_ref::<String>()
+                .map(String::as_str)
+                .or_else(|| panic.downcast_ref::<&str>().copied())
+                .unwrap_or("unknown cause");
+            Err(Error::new(ErrorKind::Probe, format!("the inference engine (tract) failed while running the model: {what}")))
+        }
+    }
+}
+
+fn tract_err(what: &str, e: &anyhow::Error) -> Error {
+    let chain: Vec<String> = e.chain().map(|c| c.to_string()).collect();
+    Error::new(ErrorKind::Probe, format!("{what}: {}", chain.join(": ")))
+}
+
+fn run_inner(source: ModelSource<'_>, watches: &[Watch], feeding: &Feeding, progress: &dyn Progress) -> Result<ProbeResult> {
+    progress.step("preparing the model", 1);
+    let onnx = tract_onnx::onnx();
+    let (proto, dir) = match source {
+        ModelSource::Path(p) => {
+            let proto = onnx.proto_model_for_path(p).map_err(|e| tract_err("tract could not read the model", &e))?;
+            let dir = p.parent().map(|d| if d.as_os_str().is_empty() { Path::new(".") } else { d });
+            (proto, dir.and_then(|d| d.to_str()).map(str::to_owned))
+        }
+        ModelSource::Bytes(b) => {
+            let proto = onnx.proto_model_for_read(&mut &b[..]).map_err(|e| tract_err("tract could not read the model", &e))?;
+            (proto, None)
+        }
+    };
+    let parsed = onnx.parse(&proto, dir.as_deref()).map_err(|e| tract_err("tract could not load the model", &e))?;
+    drop(proto);
+    if !parsed.unresolved_inputs.is_empty() {
+        return Err(Error::new(
+            ErrorKind::Probe,
+            format!("tract could not resolve inputs: {}", parsed.unresolved_inputs.join(", ")),
+        ));
+    }
+    let mut model = parsed.model;
+
+    // Concrete input facts for one pass.
+    let input_outlets = model.input_outlets().map_err(|e| tract_err("tract", &e))?.to_vec();
+    let mut order = Vec::with_capacity(input_outlets.len());
+    for (i, outlet) in input_outlets.iter().enumerate() {
+        let name = model.node(outlet.node).name.clone();
+        let fed = feeding
+            .inputs
+            .iter()
+            .position(|f| f.name == name)
+            .ok_or_else(|| Error::new(ErrorKind::Probe, format!("tract sees an input '{name}' the graph does not declare")))?;
+        let shape: Vec<usize> = feeding.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
+        let dt = datum_type(&feeding.inputs[fed]);
+        model
+            .set_input_fact(i, InferenceFact::dt_shape(dt, shape))
+            .map_err(|e| tract_err(&format!("tract rejects the shape of input '{name}'"), &e))?;
+        order.push(fed);
+    }
+
+    // Protect watched tensors as extra outputs.
+    let originals = model.output_outlets().map_err(|e| tract_err("tract", &e))?.to_vec();
+    let mut names: Vec<(&str, usize, Role)> = Vec::new();
+    for (b, w) in watches.iter().enumerate() {
+        names.push((&w.fork, b, Role::Fork));
+        names.push((&w.shortcut, b, Role::Shortcut));
+        for (k, br) in w.branch.iter().enumerate() {
+            names.push((br, b, Role::Branch(k)));
+        }
+        names.push((&w.output, b, Role::Output));
+    }
+    let mut outs = originals.clone();
+    let mut roles_by_position: Vec<(usize, Role)> = Vec::new();
+    for (name, b, role) in &names {
+        let outlet = parsed.outlets_by_name.get(*name).ok_or_else(|| {
+            Error::new(ErrorKind::Probe, format!("tract has no tensor named '{name}' to measure"))
+        })?;
+        outs.push(*outlet);
+        roles_by_position.push((*b, *role));
+    }
+    model.select_output_outlets(&outs).map_err(|e| tract_err("tract", &e))?;
+    let mut typed = model.into_optimized().map_err(|e| tract_err("tract could not prepare the model", &e))?;
+    let final_outs = typed.output_outlets().map_err(|e| tract_err("tract", &e))?.to_vec();
+    let mut watch_map: HashMap<(usize, usize), Vec<(usize, Role)>> = HashMap::new();
+    for (i, (b, role)) in roles_by_position.iter().enumerate() {
+        let o = final_outs[originals.len() + i];
+        watch_map.entry((o.node, o.slot)).or_default().push((*b, *role));
+    }
+    // Sources are not evaluated by the callback: watch them from the inputs.
+    let mut source_roles: Vec<(usize, Vec<(usize, Role)>)> = Vec::new();
+    let typed_inputs = typed.input_outlets().map_err(|e| tract_err("tract", &e))?.to_vec();
+    for (i, outlet) in typed_inputs.iter().enumerate() {
+        if let Some(roles) = watch_map.remove(&(outlet.node, outlet.slot)) {
+            source_roles.push((i, roles));
+        }
+    }
+    typed.select_output_outlets(&final_outs[..originals.len()]).map_err(|e| tract_err("tract", &e))?;
+    let plan = typed.into_runnable().map_err(|e| tract_err("tract could not plan the model", &e))?;
+    let mut state = tract_onnx::tract_core::plan::SimpleState::new(&plan).map_err(|e| tract_err("tract", &e))?;
+    progress.advance();
+
+    progress.step("running", feeding.passes as u64);
+    let mut acc: Vec<BlockSamples> = vec![BlockSamples::default(); watches.len()];
+    let mut outputs: Vec<Vec<f32>> = vec![Vec::new(); originals.len()];
+    for pass in 0..feeding.passes {
+        let values = inputs::values(feeding, pass);
+        let mut tensors: TVec<TValue> = tvec![];
+        for &fed in &order {
+            let shape: Vec<usize> = feeding.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
+            let t = to_tensor(&values[fed], &shape).map_err(|e| tract_err("tract", &e))?;
+            tensors.push(t.into_tvalue());
+        }
+        let mut pending = Pending::new(watches);
+        for (i, roles) in &source_roles {
+            for &(b, role) in roles {
+                observe(&mut acc[b], &mut pending.slots[b], &watches[b], role, &tensors[*i], feeding.pass_batch)?;
+            }
+        }
+        let result = state.run_plan_with_eval(tensors, |ctx, op_state, node, ins| -> TractResult<TVec<TValue>> {
+            let out = tract_onnx::tract_core::plan::eval(ctx, op_state, node, ins)?;
+            for (slot, value) in out.iter().enumerate() {
+                if let Some(roles) = watch_map.get(&(node.id, slot)) {
+                    for &(b, role) in roles {
+                        observe(&mut acc[b], &mut pending.slots[b], &watches[b], role, value, feeding.pass_batch)
+                            .map_err(|e| anyhow::anyhow!("{e}"))?;
+                    }
+                }
+            }
+            Ok(out)
+        });
+        let result = result.map_err(|e| tract_err("tract failed while running the model", &e))?;
+        for (i, t) in result.iter().enumerate() {
+            if let Ok(f) = t.cast_to::<f32>() {
+                if let Ok(view) = f.try_as_plain_ram() {
+                    if let Ok(s) = view.as_slice::<f32>() {
+                        outputs[i].extend_from_slice(s);
+                    }
+                }
+            }
+        }
+        progress.advance();
+    }
+    progress.finish();
+    Ok(ProbeResult { blocks: acc, outputs })
+}
+
+/// Merge inputs of one block held until both sides have been seen.
+#[derive(Default)]
+struct Slot {
+    shortcut: Option<TValue>,
+    branch: Vec<Option<TValue>>,
+}
+
+struct Pending {
+    slots: Vec<Slot>,
+}
+
+impl Pending {
+    fn new(watches: &[Watch]) -> Pending {
+        Pending {
+            slots: watches.iter().map(|w| Slot { shortcut: None, branch: vec![None; w.branch.len()] }).collect(),
+        }
+    }
+}
+
+fn datum_type(fed: &inputs::Fed) -> DatumType {
+    use crate::proto::tensor_proto::DataType;
+    match DataType::try_from(fed.dtype) {
+        Ok(DataType::Int64) => i64::datum_type(),
+        Ok(DataType::Int32) => i32::datum_type(),
+        Ok(DataType::Bool) => bool::datum_type(),
+        _ => f32::datum_type(),
+    }
+}
+
+fn to_tensor(values: &Values, shape: &[usize]) -> TractResult<Tensor> {
+    match values {
+        Values::F32(v) => Tensor::from_shape(shape, v),
+        Values::I64(v) => Tensor::from_shape(shape, v),
+        Values::I32(v) => Tensor::from_shape(shape, v),
+        Values::Bool(v) => Tensor::from_shape(shape, v),
+    }
+}
+
+/// A tensor's values as `f32`, and its shape.
+fn floats(t: &Tensor) -> Result<(Vec<usize>, std::borrow::Cow<'_, [f32]>)> {
+    let shape = t.shape().to_vec();
+    let err = |e: anyhow::Error| Error::new(ErrorKind::Probe, format!("a watched tensor cannot be read as float32: {e}"));
+    if t.datum_type() == f32::datum_type() {
+        let view = t.try_as_plain_ram().map_err(err)?;
+        let s = view.as_slice::<f32>().map_err(err)?;
+        return Ok((shape, std::borrow::Cow::Borrowed(s)));
+    }
+    let cast = t.cast_to::<f32>().map_err(err)?;
+    let view = cast.try_as_plain_ram().map_err(err)?;
+    Ok((shape, std::borrow::Cow::Owned(view.as_slice::<f32>().map_err(err)?.to_vec())))
+}
+
+/// Splits `x` into per-sample slices when its length is a multiple of the
+/// pass batch (the batch is the outermost axis in memory), else one slice.
+fn samples(x: &[f32], batch: usize) -> std::slice::Chunks<'_, f32> {
+    let n = if batch > 0 && !x.is_empty() && x.len() % batch == 0 { x.len() / batch } else { x.len().max(1) };
+    x.chunks(n)
+}
+
+fn observe(acc: &mut BlockSamples, slot: &mut Slot, w: &Watch, role: Role, value: &TValue, batch: usize) -> Result<()> {
+    match role {
+        Role::Fork => {
+            let (_, x) = floats(value)?;
+            acc.fork_rms.extend(samples(&x, batch).map(stats::rms));
+        }
+        Role::Output => {
+            let (_, x) = floats(value)?;
+            count_non_finite(acc, &x);
+            acc.output_rms.extend(samples(&x, batch).map(stats::rms));
+            if w.relu_after {
+                acc.zeroed.extend(samples(&x, batch).map(stats::fraction_not_positive));
+            }
+        }
+        Role::Shortcut => {
+            let (_, x) = floats(value)?;
+            count_non_finite(acc, &x);
+            acc.shortcut_rms.extend(samples(&x, batch).map(stats::rms));
+            slot.shortcut = Some(value.clone());
+            pair(acc, slot, w, batch)?;
+        }
+        Role::Branch(k) => {
+            slot.branch[k] = Some(value.clone());
+            if slot.branch.iter().all(Option::is_some) {
+                let (_, sum) = branch_sum(slot)?;
+                count_non_finite(acc, &sum);
+                acc.branch_rms.extend(samples(&sum, batch).map(stats::rms));
+                pair(acc, slot, w, batch)?;
+            }
+        }
+    }
+    Ok(())
+}
+
+fn count_non_finite(acc: &mut BlockSamples, x: &[f32]) {
+    let (nan, inf) = stats::non_finite(x);
+    acc.nan += nan;
+    acc.inf += inf;
+}
+
+/// The branch at the merge: the one branch input, or the sum of several.
+fn branch_sum(slot: &Slot) -> Result<(Vec<usize>, Vec<f32>)> {
+    let mut shape = Vec::new();
+    let mut sum: Vec<f32> = Vec::new();
+    for b in slot.branch.iter().flatten() {
+        let (s, x) = floats(b)?;
+        if sum.is_empty() {
+            shape = s;
+            sum = x.into_owned();
+        } else if x.len() == sum.len() {
+            for (a, v) in sum.iter_mut().zip(x.iter()) {
+                *a += v;
+            }
+        }
+    }
+    Ok((shape, sum))
+}
+
+/// Statistics that need shortcut and branch together; drops both afterwards.
+fn pair(acc: &mut BlockSamples, slot: &mut Slot, w: &Watch, batch: usize) -> Result<()> {
+    if slot.shortcut.is_none() || slot.branch.iter().any(Option::is_none) {
+        return Ok(());
+    }
+    let sc = slot.shortcut.take().expect("checked above");
+    let (shape, br) = branch_sum(slot)?;
+    for b in &mut slot.branch {
+        *b = None;
+    }
+    let (sc_shape, sc) = floats(&sc)?;
+    if sc.len() != br.len() || sc_shape != shape {
+        return Ok(());
+    }
+    for (a, b) in samples(&sc, batch).zip(samples(&br, batch)) {
+        if let Some(c) = stats::cosine(a, b) {
+            acc.cosine.push(c);
+        }
+    }
+    // Per-channel sums of squares of one sample: [outer, channels, inner].
+    if shape.len() >= 2 {
+        let axis = if w.channels_first { 1 } else { shape.len() - 1 };
+        let channels = shape[axis];
+        let inner: usize = shape[axis + 1..].iter().product();
+        if acc.channel_shortcut.is_empty() {
+            acc.channel_shortcut = vec![0.0; channels];
+            acc.channel_branch = vec![0.0; channels];
+        }
+        if acc.channel_shortcut.len() == channels {
+            stats::channel_sum_sq(&sc, channels, inner, &mut acc.channel_shortcut);
+            stats::channel_sum_sq(&br, channels, inner, &mut acc.channel_branch);
+        }
+    }
+    Ok(())
+}
