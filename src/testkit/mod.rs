@@ -1,13 +1,15 @@
 //! Builders for small ONNX models used by tests, fixtures and benchmarks.
 //!
 //! [`builder`] writes graphs op by op on the prost types of [`crate::proto`],
-//! and [`zoo`] assembles whole architectures from it.
+//! [`zoo`] assembles whole architectures from it, and [`fixtures`] lists the
+//! models committed under `fixtures/` with the census each one should give.
 //! Everything here is deterministic: the same calls give the same bytes.
 
 pub mod builder;
+pub mod fixtures;
 pub mod zoo;
 
 pub use builder::{
-    Attention, Attr, BatchNorm, Conv, Dim, Form, Init, ModelBuilder, reorder_nodes, strip_node_names,
-    strip_value_info,
+    Attention, Attr, BatchNorm, Conv, Dim, Form, Init, ModelBuilder, reorder_nodes,
+    strip_node_names, strip_value_info,
 };
