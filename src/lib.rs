@@ -2,7 +2,7 @@
 //!
 //! The pipeline runs one way: [`load`] decodes the file, [`graph`] builds
 //! the dataflow graph, [`residual`] finds the blocks, [`classify`] says what
-//! kind each is, [`scan`] puts it together into a [`report::ScanReport`], and
+//! kind each is, [`scan`] puts it together into a [`report::Report`], and
 //! [`report`] renders it.
 //!
 //! ```no_run
@@ -14,8 +14,10 @@
 //! ```
 #![deny(missing_docs)]
 
+pub mod audit;
 pub mod classify;
 pub mod error;
+pub mod findings;
 pub mod graph;
 pub mod load;
 pub mod probe;

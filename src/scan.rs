@@ -7,6 +7,7 @@ use std::path::Path;
 
 use crate::classify::{self, BareRun, ClassifyConfig, Kind, Stage, StaticDead};
 use crate::error::{Diagnostic, Result, Severity};
+use crate::findings::{self, BlockFacts, FindingConfig, Run};
 use crate::graph::{self, BuildConfig, Dim, Dominance, Graph, NodeId, ValueId};
 use crate::load::{self, ExternalData, LoadConfig, tensor};
 use crate::proto::ModelProto;
@@ -60,14 +61,18 @@ pub fn analyse(model: ModelProto, external: ExternalData, config: &ScanConfig) -
     let (graph, mut diagnostics) = graph::build(model, external, &config.build)?;
     let dom = Dominance::compute(&graph);
     let detection = residual::find_blocks(&graph, &dom);
-    let kinds: Vec<Kind> = detection.blocks.iter().map(|b| classify::classify(&graph, b, &config.classify)).collect();
+    let kinds: Vec<Kind> =
+        detection.blocks.iter().map(|b| classify::classify(&graph, b, &config.classify)).collect();
     let (stages, stage_of) = classify::stages(&graph, &detection.blocks);
     let bare_runs = classify::bare_runs(&graph, &detection.blocks, &stage_of);
     for (i, n) in graph.nodes.iter().enumerate() {
         if n.subgraphs > 0 {
             diagnostics.push(Diagnostic::note(
                 Some(&n.name),
-                format!("{} carries {} subgraph(s) that were not searched for blocks", n.op, n.subgraphs),
+                format!(
+                    "{} carries {} subgraph(s) that were not searched for blocks",
+                    n.op, n.subgraphs
+                ),
             ));
         }
         let _ = i;
@@ -76,22 +81,28 @@ pub fn analyse(model: ModelProto, external: ExternalData, config: &ScanConfig) -
 }
 
 /// Reads, decodes and analyses a model file.
-pub fn scan_file(path: &Path, config: &ScanConfig) -> Result<ScanReport> {
+pub fn scan_file(path: &Path, config: &ScanConfig) -> Result<Report> {
     let loaded = load::load(path, &config.load)?;
-    let info = model_info(&path.display().to_string(), loaded.file_bytes, &loaded.model, &loaded.external);
+    let info =
+        model_info(&path.display().to_string(), loaded.file_bytes, &loaded.model, &loaded.external);
     let analysis = analyse(loaded.model, loaded.external, config).map_err(|e| e.at(path))?;
     Ok(report_of(info, &analysis))
 }
 
 /// Analyses an in-memory model (tests, benchmarks); `label` stands for the path.
-pub fn scan_model(model: ModelProto, label: &str, config: &ScanConfig) -> Result<ScanReport> {
+pub fn scan_model(model: ModelProto, label: &str, config: &ScanConfig) -> Result<Report> {
     let external = ExternalData::none();
     let info = model_info(label, 0, &model, &external);
     let analysis = analyse(model, external, config)?;
     Ok(report_of(info, &analysis))
 }
 
-fn model_info(path: &str, file_bytes: u64, model: &ModelProto, external: &ExternalData) -> ModelInfo {
+pub(crate) fn model_info(
+    path: &str,
+    file_bytes: u64,
+    model: &ModelProto,
+    external: &ExternalData,
+) -> ModelInfo {
     let graph = model.graph.as_ref();
     let inits = graph.map_or(&[][..], |g| g.initializer.as_slice());
     let mut external_tensors = 0;
@@ -102,7 +113,8 @@ fn model_info(path: &str, file_bytes: u64, model: &ModelProto, external: &Extern
             external_bytes += r.length;
         }
     }
-    let init_names: std::collections::HashSet<&str> = inits.iter().map(|t| t.name.as_str()).collect();
+    let init_names: std::collections::HashSet<&str> =
+        inits.iter().map(|t| t.name.as_str()).collect();
     let tensor_rows = |list: &[crate::proto::ValueInfoProto], skip_inits: bool| -> Vec<TensorRow> {
         list.iter()
             .filter(|vi| !(skip_inits && init_names.contains(vi.name.as_str())))
@@ -132,12 +144,19 @@ fn model_info(path: &str, file_bytes: u64, model: &ModelProto, external: &Extern
         path: path.to_owned(),
         file_bytes,
         ir_version: model.ir_version,
-        opsets: model.opset_import.iter().map(|o| OpsetRow { domain: o.domain.clone(), version: o.version }).collect(),
+        opsets: model
+            .opset_import
+            .iter()
+            .map(|o| OpsetRow { domain: o.domain.clone(), version: o.version })
+            .collect(),
         producer,
         graph_name: graph.map_or(String::new(), |g| g.name.clone()),
         nodes: graph.map_or(0, |g| g.node.len()),
         initializers: inits.len(),
-        parameters: inits.iter().filter_map(|t| tensor::element_count(&t.dims)).fold(0u64, u64::saturating_add),
+        parameters: inits
+            .iter()
+            .filter_map(|t| tensor::element_count(&t.dims))
+            .fold(0u64, u64::saturating_add),
         external_tensors,
         external_bytes,
         inputs: graph.map_or(Vec::new(), |g| tensor_rows(&g.input, true)),
@@ -167,12 +186,69 @@ pub fn shortcut_name(kind: ShortcutKind) -> &'static str {
     }
 }
 
-/// Builds the report of an analysis.
-pub fn report_of(model: ModelInfo, a: &Analysis) -> ScanReport {
+/// Builds the report of an analysis, with its structural findings.
+pub fn report_of(model: ModelInfo, a: &Analysis) -> Report {
+    let mut report = structure_report(model, a);
+    let facts = block_facts(&report);
+    set_findings(&mut report, &facts, &standard_findings());
+    report
+}
+
+/// The default thresholds of findings (see the README).
+pub fn standard_findings() -> FindingConfig {
+    FindingConfig {
+        dead_below: 0.01,
+        dominant_above: 10.0,
+        dead_channels_above: 0.5,
+        depth_factor: 100.0,
+    }
+}
+
+/// The structural facts findings need, one per block of the report.
+pub fn block_facts(report: &Report) -> Vec<BlockFacts> {
+    report
+        .blocks
+        .iter()
+        .map(|b| BlockFacts {
+            static_dead: b
+                .static_dead
+                .as_ref()
+                .map(|d| format!("{} at node '{}'", d.reason, d.node.name)),
+            depth: b.depth,
+            ..BlockFacts::default()
+        })
+        .collect()
+}
+
+/// Computes the findings of `facts` and stores them in the report.
+pub fn set_findings(report: &mut Report, facts: &[BlockFacts], config: &FindingConfig) {
+    let runs: Vec<Run> = report
+        .bare_runs
+        .iter()
+        .map(|r| Run {
+            after: r.after_block,
+            before: r.before_block,
+            layers: r.layers.iter().map(|l| l.name.clone()).collect(),
+        })
+        .collect();
+    report.findings = findings::findings(facts, &runs, config)
+        .into_iter()
+        .map(|f| FindingRow {
+            code: f.code.as_str().to_owned(),
+            block: f.block,
+            node: f.block.and_then(|id| report.blocks.get(id - 1)).map(|b| b.merge.clone()),
+            message: f.message,
+        })
+        .collect();
+}
+
+fn structure_report(model: ModelInfo, a: &Analysis) -> Report {
     let g = &a.graph;
     let det = &a.detection;
     let labelled = |list: &[(NodeId, String)]| -> Vec<LabelledNode> {
-        list.iter().map(|(n, label)| LabelledNode { node: node_ref(g, *n), label: label.clone() }).collect()
+        list.iter()
+            .map(|(n, label)| LabelledNode { node: node_ref(g, *n), label: label.clone() })
+            .collect()
     };
     let blocks: Vec<BlockRow> = det
         .blocks
@@ -232,6 +308,7 @@ pub fn report_of(model: ModelInfo, a: &Analysis) -> ScanReport {
             parent: b.parent.map(|p| p + 1),
             depth: b.depth,
             children: b.children,
+            stats: None,
         })
         .collect();
     let concat_skips: Vec<ConcatRow> = det
@@ -245,7 +322,11 @@ pub fn report_of(model: ModelInfo, a: &Analysis) -> ScanReport {
             fork: value_name(g, c.fork),
             skip_ops: c.skip.ops.iter().map(|&n| node_ref(g, n)).collect(),
             branch_op_count: c.branch.len(),
-            branch_layers: c.branch.iter().filter(|&&n| crate::graph::op::is_parametrised(g, n)).count(),
+            branch_layers: c
+                .branch
+                .iter()
+                .filter(|&&n| crate::graph::op::is_parametrised(g, n))
+                .count(),
             parent: c.parent.map(|p| p + 1),
             depth: c.depth,
         })
@@ -256,7 +337,8 @@ pub fn report_of(model: ModelInfo, a: &Analysis) -> ScanReport {
         *by_shortcut.entry(b.shortcut.kind.clone()).or_insert(0) += 1;
         *by_placement.entry(b.placement.clone()).or_insert(0) += 1;
     }
-    let concat_parents: std::collections::HashSet<usize> = concat_skips.iter().filter_map(|c| c.parent).collect();
+    let concat_parents: std::collections::HashSet<usize> =
+        concat_skips.iter().filter_map(|c| c.parent).collect();
     let summary = Summary {
         blocks: blocks.len(),
         by_shortcut,
@@ -267,16 +349,24 @@ pub fn report_of(model: ModelInfo, a: &Analysis) -> ScanReport {
         bare_runs: a.bare_runs.len(),
         plain: blocks.is_empty() && concat_skips.is_empty(),
     };
-    ScanReport {
-        schema: report::SCAN_SCHEMA.to_owned(),
-        schema_version: report::SCAN_SCHEMA_VERSION,
+    Report {
+        schema: report::REPORT_SCHEMA.to_owned(),
+        schema_version: report::REPORT_SCHEMA_VERSION,
+        command: "scan".to_owned(),
         model,
+        run: None,
+        run_error: None,
+        findings: Vec::new(),
         summary,
         stages: a
             .stages
             .iter()
             .enumerate()
-            .map(|(i, s)| StageRow { id: i + 1, shape: dims(&s.shape), blocks: s.blocks.iter().map(|b| b + 1).collect() })
+            .map(|(i, s)| StageRow {
+                id: i + 1,
+                shape: dims(&s.shape),
+                blocks: s.blocks.iter().map(|b| b + 1).collect(),
+            })
             .collect(),
         blocks,
         concat_skips,
@@ -308,7 +398,10 @@ pub fn report_of(model: ModelInfo, a: &Analysis) -> ScanReport {
             .iter()
             .enumerate()
             .filter(|(_, n)| n.subgraphs > 0)
-            .map(|(i, n)| SubgraphRow { node: node_ref(g, NodeId(i as u32)), subgraphs: n.subgraphs })
+            .map(|(i, n)| SubgraphRow {
+                node: node_ref(g, NodeId(i as u32)),
+                subgraphs: n.subgraphs,
+            })
             .collect(),
         diagnostics: a
             .diagnostics

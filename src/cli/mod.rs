@@ -1,15 +1,22 @@
 //! Command-line front end. The only place that prints or picks exit codes:
-//! 0 success, 1 findings or differences (later commands), 2 errors.
+//! 0 success, 1 a finding named by `--fail-on` occurred, 2 errors.
 #![allow(clippy::print_stdout, clippy::print_stderr)]
 
 mod output;
+mod progress;
 
+use std::collections::BTreeMap;
 use std::io::Write;
 use std::path::PathBuf;
 use std::process::ExitCode;
 
+use anyhow::{Context, bail};
 use clap::{Parser, Subcommand, ValueEnum};
 
+use shunt::audit::{self, AuditConfig};
+use shunt::findings::{Code, FindingConfig};
+use shunt::probe::inputs::{Dist, InputConfig};
+use shunt::report::Report;
 use shunt::scan::{self, ScanConfig};
 
 /// Audit the residual structure of ONNX models.
@@ -24,21 +31,94 @@ struct Args {
 enum Command {
     /// Find every residual block of a model and say what kind it is, without running it.
     Scan(ScanArgs),
+    /// Scan, then run the model on the CPU and measure every block's branch against its shortcut.
+    Audit(AuditArgs),
 }
 
 #[derive(Debug, clap::Args)]
 struct ScanArgs {
     /// The ONNX model file.
     model: PathBuf,
+    #[command(flatten)]
+    out: OutputArgs,
+    #[command(flatten)]
+    limits: Limits,
+}
+
+#[derive(Debug, clap::Args)]
+struct OutputArgs {
     /// Output format.
     #[arg(long, value_enum, default_value_t = Format::Table)]
     format: Format,
     /// Write the report to this file instead of standard output (written
-    /// atomically; never the model itself).
+    /// atomically; never over the model).
     #[arg(long, short = 'o', value_name = "FILE")]
     output: Option<PathBuf>,
+    /// Exit with code 1 when any of these findings occurs: a comma-separated
+    /// list of codes (static-dead, lost-shortcut, dead, dominant,
+    /// dead-channels, non-finite, exploding-signal, vanishing-signal) or `any`.
+    #[arg(long, value_name = "LIST")]
+    fail_on: Option<String>,
+}
+
+#[derive(Debug, clap::Args)]
+struct AuditArgs {
+    /// The ONNX model file.
+    model: PathBuf,
+    #[command(flatten)]
+    out: OutputArgs,
+    /// Number of samples to run (models with a fixed batch run it in passes of that batch).
+    #[arg(long, value_name = "N", default_value_t = 8)]
+    batch: usize,
+    /// Seed of the input generator.
+    #[arg(long, value_name = "N", default_value_t = 0)]
+    seed: u64,
+    /// Distribution of float inputs.
+    #[arg(long, value_enum, default_value_t = DistArg::Normal)]
+    dist: DistArg,
+    /// Scale of the distribution (standard deviation, or half-width for uniform).
+    #[arg(long, value_name = "X", default_value_t = 1.0)]
+    scale: f32,
+    /// Value of a symbolic dimension other than the batch, e.g. `--dim seq=128` (repeatable).
+    #[arg(long = "dim", value_name = "NAME=VALUE")]
+    dims: Vec<String>,
+    /// Whole shape of an input, e.g. `--input pixels=1x3x224x224` (repeatable).
+    #[arg(long = "input", value_name = "NAME=D1xD2x...")]
+    shapes: Vec<String>,
+    /// Fill an input with one value, e.g. `--fill attention_mask=1` (repeatable).
+    #[arg(long = "fill", value_name = "NAME=VALUE")]
+    fills: Vec<String>,
+    /// Feed real inputs from a .npy file (one-input models) or a .npz file
+    /// (one entry per input name); the first axis is the sample axis.
+    #[arg(long, value_name = "FILE")]
+    feed: Option<PathBuf>,
+    /// Do not run the model: report the structure and structural findings only.
+    #[arg(long)]
+    no_run: bool,
+    /// `dead` when RMS(branch)/RMS(shortcut) is below this.
+    #[arg(long, value_name = "X", default_value_t = 0.01)]
+    dead_below: f64,
+    /// `dominant` when RMS(branch)/RMS(shortcut) is above this.
+    #[arg(long, value_name = "X", default_value_t = 10.0)]
+    dominant_above: f64,
+    /// `dead-channels` when more than this fraction of channels is dead.
+    #[arg(long, value_name = "F", default_value_t = 0.5)]
+    dead_channels_above: f64,
+    /// `exploding-signal`/`vanishing-signal` when output RMS changes by more
+    /// than this factor from the first block to the last.
+    #[arg(long, value_name = "X", default_value_t = 100.0)]
+    depth_factor: f64,
+    /// No progress bar.
+    #[arg(long, short = 'q')]
+    quiet: bool,
     #[command(flatten)]
     limits: Limits,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+enum DistArg {
+    Normal,
+    Uniform,
 }
 
 /// Limits checked before anything large is read.
@@ -80,18 +160,34 @@ pub fn main() -> ExitCode {
         Err(e) => {
             let _ = e.print();
             return match e.kind() {
-                clap::error::ErrorKind::DisplayHelp | clap::error::ErrorKind::DisplayVersion => ExitCode::SUCCESS,
+                clap::error::ErrorKind::DisplayHelp | clap::error::ErrorKind::DisplayVersion => {
+                    ExitCode::SUCCESS
+                }
                 _ => ExitCode::from(2),
             };
         }
     };
-    match run(args) {
-        Ok(code) => code,
-        Err(e) => {
+    // A panic anywhere (the inference engine is known to panic on some
+    // inputs) is caught and reported as one line, never as a backtrace.
+    std::panic::set_hook(Box::new(|_| {}));
+    let outcome = std::panic::catch_unwind(|| run(args));
+    match outcome {
+        Ok(Ok(code)) => code,
+        Ok(Err(e)) => {
             if is_broken_pipe(&e) {
                 return ExitCode::SUCCESS;
             }
             let _ = writeln!(std::io::stderr(), "shunt: error: {e:#}");
+            ExitCode::from(2)
+        }
+        Err(panic) => {
+            let what = panic
+                .downcast_ref::<String>()
+                .map(String::as_str)
+                .or_else(|| panic.downcast_ref::<&str>().copied())
+                .unwrap_or("unknown cause");
+            let _ =
+                writeln!(std::io::stderr(), "shunt: internal error: {what} (please report this)");
             ExitCode::from(2)
         }
     }
@@ -100,16 +196,110 @@ pub fn main() -> ExitCode {
 fn run(args: Args) -> anyhow::Result<ExitCode> {
     match args.command {
         Command::Scan(a) => {
+            let fail_on = parse_fail_on(a.out.fail_on.as_deref())?;
             let report = scan::scan_file(&a.model, &a.limits.config())?;
-            output::write(a.output.as_deref(), &[a.model.as_path()], |out| match a.format {
-                Format::Table => shunt::report::table::render_scan(&report, out),
-                Format::Json => shunt::report::json::render(&report, out),
-            })?;
-            Ok(ExitCode::SUCCESS)
+            emit(&a.out, &a.model, &report)?;
+            Ok(verdict(&report, &fail_on))
+        }
+        Command::Audit(a) => {
+            let fail_on = parse_fail_on(a.out.fail_on.as_deref())?;
+            let findings = FindingConfig {
+                dead_below: a.dead_below,
+                dominant_above: a.dominant_above,
+                dead_channels_above: a.dead_channels_above,
+                depth_factor: a.depth_factor,
+            };
+            if a.no_run {
+                let mut report = scan::scan_file(&a.model, &a.limits.config())?;
+                report.command = "audit".to_owned();
+                let facts = scan::block_facts(&report);
+                scan::set_findings(&mut report, &facts, &findings);
+                emit(&a.out, &a.model, &report)?;
+                return Ok(verdict(&report, &fail_on));
+            }
+            let config = AuditConfig {
+                scan: a.limits.config(),
+                inputs: InputConfig {
+                    samples: a.batch,
+                    seed: a.seed,
+                    dist: match a.dist {
+                        DistArg::Normal => Dist::Normal,
+                        DistArg::Uniform => Dist::Uniform,
+                    },
+                    scale: a.scale,
+                    dims: parse_pairs(&a.dims, "--dim", |v| v.parse::<u64>().ok())?,
+                    shapes: parse_pairs(&a.shapes, "--input", parse_shape)?,
+                    fills: parse_pairs(&a.fills, "--fill", |v| v.parse::<f64>().ok())?,
+                    feed: a.feed.clone(),
+                },
+                findings,
+            };
+            let bar = progress::Bar::new(a.quiet);
+            let outcome = audit::audit_file(&a.model, &config, &bar)?;
+            bar.clear();
+            emit(&a.out, &a.model, &outcome.report)?;
+            if let Some(e) = outcome.run_error {
+                return Err(anyhow::Error::new(e));
+            }
+            Ok(verdict(&outcome.report, &fail_on))
         }
     }
 }
 
+fn emit(out: &OutputArgs, model: &std::path::Path, report: &Report) -> anyhow::Result<()> {
+    output::write(out.output.as_deref(), &[model], |w| match out.format {
+        Format::Table => shunt::report::table::render(report, w),
+        Format::Json => shunt::report::json::render(report, w),
+    })
+}
+
+fn verdict(report: &Report, fail_on: &[Code]) -> ExitCode {
+    let hit =
+        report.findings.iter().any(|f| Code::parse(&f.code).is_some_and(|c| fail_on.contains(&c)));
+    if hit { ExitCode::from(1) } else { ExitCode::SUCCESS }
+}
+
+fn parse_fail_on(list: Option<&str>) -> anyhow::Result<Vec<Code>> {
+    let Some(list) = list else { return Ok(Vec::new()) };
+    let mut codes = Vec::new();
+    for item in list.split(',').map(str::trim).filter(|s| !s.is_empty()) {
+        if item == "any" {
+            return Ok(Code::ALL.to_vec());
+        }
+        match Code::parse(item) {
+            Some(c) => codes.push(c),
+            None => {
+                let known: Vec<&str> = Code::ALL.iter().map(|c| c.as_str()).collect();
+                bail!("--fail-on: unknown finding '{item}' (known: {}, or any)", known.join(", "))
+            }
+        }
+    }
+    Ok(codes)
+}
+
+fn parse_pairs<T>(
+    items: &[String],
+    flag: &str,
+    value: impl Fn(&str) -> Option<T>,
+) -> anyhow::Result<BTreeMap<String, T>> {
+    let mut out = BTreeMap::new();
+    for item in items {
+        let (name, v) =
+            item.split_once('=').with_context(|| format!("{flag} {item}: expected NAME=VALUE"))?;
+        let parsed = value(v.trim())
+            .with_context(|| format!("{flag} {item}: '{v}' is not a valid value"))?;
+        out.insert(name.trim().to_owned(), parsed);
+    }
+    Ok(out)
+}
+
+fn parse_shape(s: &str) -> Option<Vec<u64>> {
+    s.split(['x', 'X', ',']).map(|d| d.trim().parse::<u64>().ok().filter(|&d| d > 0)).collect()
+}
+
 fn is_broken_pipe(e: &anyhow::Error) -> bool {
-    e.chain().any(|c| c.downcast_ref::<std::io::Error>().is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe))
+    e.chain().any(|c| {
+        c.downcast_ref::<std::io::Error>()
+            .is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe)
+    })
 }

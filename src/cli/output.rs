@@ -38,12 +38,14 @@ pub fn write(
     let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
     let tmp = dir.join(format!(".{name}.shunt-{}.tmp", std::process::id()));
     let result = (|| -> anyhow::Result<()> {
-        let file = fs::File::create(&tmp).with_context(|| format!("{}: cannot create the output file", path.display()))?;
+        let file = fs::File::create(&tmp)
+            .with_context(|| format!("{}: cannot create the output file", path.display()))?;
         let mut out = BufWriter::new(file);
         render(&mut out)?;
         let file = out.into_inner().map_err(|e| e.into_error())?;
         file.sync_all()?;
-        fs::rename(&tmp, path).with_context(|| format!("{}: cannot write the output file", path.display()))?;
+        fs::rename(&tmp, path)
+            .with_context(|| format!("{}: cannot write the output file", path.display()))?;
         Ok(())
     })();
     if result.is_err() {

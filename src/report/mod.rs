@@ -12,21 +12,30 @@ use std::collections::BTreeMap;
 
 use serde::{Deserialize, Serialize};
 
-/// Identifies the JSON document kind of a scan.
-pub const SCAN_SCHEMA: &str = "shunt/scan";
-/// Version of the scan JSON schema; bumped on every change of its fields.
-pub const SCAN_SCHEMA_VERSION: u32 = 1;
+/// Identifies the JSON document of a report.
+pub const REPORT_SCHEMA: &str = "shunt/report";
+/// Version of the report JSON schema; bumped on every change of its fields.
+/// Version 1 was the scan-only document `shunt/scan`.
+pub const REPORT_SCHEMA_VERSION: u32 = 2;
 
-/// The result of `shunt scan` on one model.
+/// The result of `shunt scan` or `shunt audit` on one model.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct ScanReport {
-    /// Always [`SCAN_SCHEMA`].
+pub struct Report {
+    /// Always [`REPORT_SCHEMA`].
     pub schema: String,
-    /// Always [`SCAN_SCHEMA_VERSION`].
+    /// Always [`REPORT_SCHEMA_VERSION`].
     pub schema_version: u32,
+    /// `scan` (structure only) or `audit` (structure and measurements).
+    pub command: String,
     /// The model file and its graph.
     pub model: ModelInfo,
+    /// What was fed and how, when the model was run.
+    pub run: Option<RunRow>,
+    /// Why running the model failed, if it did (the structure is still reported).
+    pub run_error: Option<String>,
+    /// Findings, structural ones first, then by block.
+    pub findings: Vec<FindingRow>,
     /// Counts over the whole model.
     pub summary: Summary,
     /// Runs of consecutive blocks with the same output shape.
@@ -178,6 +187,119 @@ pub struct BlockRow {
     pub depth: usize,
     /// How many blocks this one's branch holds directly.
     pub children: usize,
+    /// Measurements, when the model was run.
+    pub stats: Option<StatsRow>,
+}
+
+/// Measurements of one block over all samples.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct StatsRow {
+    /// Samples measured.
+    pub samples: usize,
+    /// RMS of the block input (the fork tensor).
+    pub fork_rms: Option<Spread>,
+    /// RMS of the shortcut at the merge.
+    pub shortcut_rms: Option<Spread>,
+    /// RMS of the branch at the merge.
+    pub branch_rms: Option<Spread>,
+    /// RMS of the merge output.
+    pub output_rms: Option<Spread>,
+    /// RMS(branch) / RMS(shortcut), per sample.
+    pub ratio: Option<Spread>,
+    /// Cosine similarity of branch and shortcut, per sample.
+    pub cosine: Option<Spread>,
+    /// RMS(output) / RMS(block input), per sample.
+    pub growth: Option<Spread>,
+    /// Fraction of merge outputs the ReLU after the merge sets to zero, per sample.
+    pub zeroed: Option<Spread>,
+    /// Number of channels measured.
+    pub channels: Option<usize>,
+    /// Fraction of channels whose branch RMS is below `dead_below` times the
+    /// shortcut's RMS in that channel (over all samples).
+    pub dead_channel_fraction: Option<f64>,
+    /// NaN values seen in the block's tensors.
+    pub nan: u64,
+    /// Infinite values seen in the block's tensors.
+    pub inf: u64,
+}
+
+/// Mean, standard deviation (over samples), minimum and maximum.
+pub type Spread = crate::stats::Spread;
+
+/// What was fed to the model.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RunRow {
+    /// The inference engine and its version.
+    pub engine: String,
+    /// Samples run.
+    pub samples: usize,
+    /// Samples per forward pass.
+    pub pass_batch: usize,
+    /// Forward passes.
+    pub passes: usize,
+    /// Seed of the input generator.
+    pub seed: u64,
+    /// Every input with the shape of one pass and how its values were made.
+    pub inputs: Vec<FedRow>,
+    /// The feed file and its SHA-256 digest, when one was given.
+    pub feed: Option<FeedRow>,
+    /// The thresholds findings were judged by.
+    pub thresholds: ThresholdsRow,
+}
+
+/// One fed input.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct FedRow {
+    /// ONNX name.
+    pub name: String,
+    /// Element type.
+    pub dtype: String,
+    /// Shape of one pass.
+    pub shape: Vec<u64>,
+    /// How the values were made.
+    pub values: String,
+}
+
+/// A feed file.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct FeedRow {
+    /// The path as given.
+    pub path: String,
+    /// SHA-256 of the file, hex.
+    pub sha256: String,
+}
+
+/// The thresholds of the findings.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ThresholdsRow {
+    /// `--dead-below`.
+    pub dead_below: f64,
+    /// `--dominant-above`.
+    pub dominant_above: f64,
+    /// `--dead-channels-above`.
+    pub dead_channels_above: f64,
+    /// `--depth-factor`.
+    pub depth_factor: f64,
+}
+
+/// One finding.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct FindingRow {
+    /// `static-dead`, `lost-shortcut`, `dead`, `dominant`, `dead-channels`,
+    /// `non-finite`, `exploding-signal` or `vanishing-signal`.
+    pub code: String,
+    /// The block it is about, if any.
+    pub block: Option<usize>,
+    /// The merge node of that block.
+    pub node: Option<NodeRef>,
+    /// What was seen, with the numbers.
+    pub message: String,
 }
 
 /// A shortcut path.

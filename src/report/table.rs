@@ -4,7 +4,7 @@ use std::io;
 
 use comfy_table::{ContentArrangement, Table, TableComponent, presets};
 
-use crate::report::{BlockRow, LayerRow, ScanReport};
+use crate::report::{BlockRow, LayerRow, Report};
 
 /// Makes a name from a model safe for a terminal: control characters,
 /// escape sequences and bidirectional overrides become visible `\u{..}` escapes.
@@ -24,7 +24,13 @@ pub fn terminal_safe(s: &str) -> String {
 /// A compact label for a learned layer: `conv3x3 8→16 /2`, `dw3x3 96`, `fc 64→256`.
 pub fn layer_label(l: &LayerRow) -> String {
     let ch = |c: Option<u64>| c.map_or("?".to_owned(), |c| c.to_string());
-    let stride = l.strides.iter().copied().max().filter(|&s| s > 1).map_or(String::new(), |s| format!(" /{s}"));
+    let stride = l
+        .strides
+        .iter()
+        .copied()
+        .max()
+        .filter(|&s| s > 1)
+        .map_or(String::new(), |s| format!(" /{s}"));
     if l.kernel.is_empty() {
         return format!("fc {}→{}", ch(l.in_channels), ch(l.out_channels));
     }
@@ -38,13 +44,21 @@ pub fn layer_label(l: &LayerRow) -> String {
 
 fn shortcut_cell(b: &BlockRow) -> String {
     let ops: Vec<&str> = b.shortcut.ops.iter().map(|o| o.op_type.as_str()).collect();
-    if ops.is_empty() { b.shortcut.kind.clone() } else { format!("{} ({})", b.shortcut.kind, ops.join("→")) }
+    if ops.is_empty() {
+        b.shortcut.kind.clone()
+    } else {
+        format!("{} ({})", b.shortcut.kind, ops.join("→"))
+    }
 }
 
 fn notes_cell(b: &BlockRow) -> String {
     let mut notes = Vec::new();
     if let Some(d) = &b.static_dead {
-        notes.push(format!("dead by construction: {} at {}", d.reason, terminal_safe(&d.node.name)));
+        notes.push(format!(
+            "dead by construction: {} at {}",
+            d.reason,
+            terminal_safe(&d.node.name)
+        ));
     }
     if let Some(e) = &b.branch.end_scale {
         match (e.min, e.max) {
@@ -65,8 +79,28 @@ fn notes_cell(b: &BlockRow) -> String {
     notes.join("; ")
 }
 
-/// Renders a scan report as a table and a summary.
-pub fn render_scan(r: &ScanReport, out: &mut dyn io::Write) -> io::Result<()> {
+/// Renders a report: the structure table for a scan, the measurement table
+/// for an audit, then the summary and the findings.
+pub fn render(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
+    header(r, out)?;
+    if r.summary.plain {
+        writeln!(out, "No residual merge and no concatenative skip: this is a plain network.")?;
+    } else if !r.blocks.is_empty() {
+        let t = if r.run.is_some() && r.run_error.is_none() {
+            measurement_table(r)
+        } else {
+            structure_table(r)
+        };
+        writeln!(out, "{t}")?;
+    }
+    if r.run.is_some() && r.run_error.is_none() {
+        profile(r, out)?;
+    }
+    summary(r, out)?;
+    findings(r, out)
+}
+
+fn header(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
     let m = &r.model;
     writeln!(out, "{}", terminal_safe(&m.path))?;
     writeln!(
@@ -76,22 +110,61 @@ pub fn render_scan(r: &ScanReport, out: &mut dyn io::Write) -> io::Result<()> {
         m.nodes,
         m.parameters,
         m.ir_version,
-        m.opsets.iter().find(|o| o.domain.is_empty() || o.domain == "ai.onnx").map_or("?".to_owned(), |o| o.version.to_string()),
-        if m.producer.is_empty() { "an unnamed producer".to_owned() } else { terminal_safe(&m.producer) },
+        m.opsets
+            .iter()
+            .find(|o| o.domain.is_empty() || o.domain == "ai.onnx")
+            .map_or("?".to_owned(), |o| o.version.to_string()),
+        if m.producer.is_empty() {
+            "an unnamed producer".to_owned()
+        } else {
+            terminal_safe(&m.producer)
+        },
     )?;
-    writeln!(out)?;
-    if r.summary.plain {
-        writeln!(out, "No residual merge and no concatenative skip: this is a plain network.")?;
-    } else if !r.blocks.is_empty() {
-        let mut t = Table::new();
-        t.load_preset(presets::NOTHING).set_content_arrangement(ContentArrangement::Disabled);
-        t.set_style(TableComponent::HeaderLines, '─').set_style(TableComponent::MiddleHeaderIntersections, '─');
-        t.set_header(vec!["#", "stage", "merge", "shortcut", "placement", "branch", "notes"]);
+    if let Some(run) = &r.run {
+        writeln!(
+            out,
+            "  ran {} sample(s) in {} pass(es) of {} with {}, seed {}",
+            run.samples, run.passes, run.pass_batch, run.engine, run.seed
+        )?;
+        for i in &run.inputs {
+            let shape: Vec<String> = i.shape.iter().map(u64::to_string).collect();
+            writeln!(
+                out,
+                "  input '{}' {} [{}]: {}",
+                terminal_safe(&i.name),
+                i.dtype,
+                shape.join("x"),
+                terminal_safe(&i.values)
+            )?;
+        }
+        if let Some(f) = &run.feed {
+            writeln!(out, "  fed from {} (sha256 {})", terminal_safe(&f.path), f.sha256)?;
+        }
+    }
+    writeln!(out)
+}
+
+fn new_table(columns: &[&str]) -> Table {
+    let mut t = Table::new();
+    t.load_preset(presets::NOTHING).set_content_arrangement(ContentArrangement::Disabled);
+    t.set_style(TableComponent::HeaderLines, '─')
+        .set_style(TableComponent::MiddleHeaderIntersections, '─');
+    t.set_header(columns.to_vec());
+    t
+}
+
+fn stage_cell(b: &BlockRow) -> String {
+    match (b.stage, &b.output_shape) {
+        (Some(s), Some(shape)) => format!("{s} ({})", shape[1..].join("x")),
+        _ => "unknown".to_owned(),
+    }
+}
+
+fn structure_table(r: &Report) -> Table {
+    {
+        let mut t = new_table(&["#", "stage", "merge", "shortcut", "placement", "branch", "notes"]);
         for b in &r.blocks {
-            let stage = match (b.stage, &b.output_shape) {
-                (Some(s), Some(shape)) => format!("{s} ({})", shape[1..].join("x")),
-                _ => "unknown".to_owned(),
-            };
+            let stage = stage_cell(b);
             let layers: Vec<String> = b.branch.layers.iter().map(layer_label).collect();
             t.add_row(vec![
                 b.id.to_string(),
@@ -103,12 +176,124 @@ pub fn render_scan(r: &ScanReport, out: &mut dyn io::Write) -> io::Result<()> {
                 notes_cell(b),
             ]);
         }
-        writeln!(out, "{t}")?;
+        t
     }
+}
+
+fn block_findings(r: &Report, id: usize) -> String {
+    let codes: Vec<&str> =
+        r.findings.iter().filter(|f| f.block == Some(id)).map(|f| f.code.as_str()).collect();
+    codes.join(", ")
+}
+
+fn measurement_table(r: &Report) -> Table {
+    let mut t = new_table(&[
+        "#",
+        "stage",
+        "merge",
+        "shortcut",
+        "placement",
+        "rms short",
+        "rms branch",
+        "ratio (±sd)",
+        "cos",
+        "growth",
+        "findings",
+    ]);
+    for b in &r.blocks {
+        let s = b.stats.as_ref();
+        let num = |v: Option<f64>| v.map_or("-".to_owned(), |v| format!("{v:.3e}"));
+        let ratio = s
+            .and_then(|s| s.ratio)
+            .map_or("-".to_owned(), |r| format!("{:.3e} (±{:.1e})", r.mean, r.std));
+        t.add_row(vec![
+            b.id.to_string(),
+            stage_cell(b),
+            terminal_safe(&b.merge.name),
+            b.shortcut.kind.clone(),
+            b.placement.clone(),
+            num(s.and_then(|s| s.shortcut_rms).map(|x| x.mean)),
+            num(s.and_then(|s| s.branch_rms).map(|x| x.mean)),
+            ratio,
+            s.and_then(|s| s.cosine).map_or("-".to_owned(), |c| format!("{:+.2}", c.mean)),
+            s.and_then(|s| s.growth).map_or("-".to_owned(), |g| format!("{:.2}", g.mean)),
+            block_findings(r, b.id),
+        ]);
+    }
+    t
+}
+
+/// One character per block: the log of `values` scaled between their extremes.
+pub fn sparkline(values: &[f64]) -> String {
+    const BARS: [char; 8] = ['▁', '▂', '▃', '▄', '▅', '▆', '▇', '█'];
+    let logs: Vec<Option<f64>> =
+        values.iter().map(|&v| (v > 0.0 && v.is_finite()).then(|| v.log10())).collect();
+    let known: Vec<f64> = logs.iter().flatten().copied().collect();
+    let (lo, hi) = known
+        .iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &v| (lo.min(v), hi.max(v)));
+    logs.iter()
+        .map(|l| match l {
+            None => '·',
+            Some(_) if hi - lo < 1e-12 => BARS[3],
+            Some(v) => BARS[(((v - lo) / (hi - lo)) * 7.0).round() as usize],
+        })
+        .collect()
+}
+
+fn profile(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
+    let pick = |f: fn(&crate::report::StatsRow) -> Option<crate::report::Spread>| -> Vec<f64> {
+        r.blocks.iter().map(|b| b.stats.as_ref().and_then(f).map_or(f64::NAN, |s| s.mean)).collect()
+    };
+    let output = pick(|s| s.output_rms);
+    let ratio = pick(|s| s.ratio);
+    let ends = |v: &[f64]| {
+        let known: Vec<f64> = v.iter().copied().filter(|x| x.is_finite()).collect();
+        match (known.first(), known.last()) {
+            (Some(a), Some(b)) => format!("{a:.2e} → {b:.2e}"),
+            _ => "-".to_owned(),
+        }
+    };
+    writeln!(out)?;
+    writeln!(out, "signal profile across depth (log scale, one mark per block):")?;
+    writeln!(out, "  output RMS  {}  {}", sparkline(&output), ends(&output))?;
+    writeln!(out, "  ratio       {}  {}", sparkline(&ratio), ends(&ratio))?;
+    Ok(())
+}
+
+fn findings(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
+    if let Some(e) = &r.run_error {
+        writeln!(
+            out,
+            "the model could not be run, so only its structure is reported: {}",
+            terminal_safe(e)
+        )?;
+    }
+    if r.findings.is_empty() {
+        writeln!(out, "findings: none")?;
+        return Ok(());
+    }
+    writeln!(out, "findings: {}", r.findings.len())?;
+    for f in &r.findings {
+        let place = match (&f.block, &f.node) {
+            (Some(id), Some(n)) => format!("block #{id} ({})", terminal_safe(&n.name)),
+            (Some(id), None) => format!("block #{id}"),
+            _ => "model".to_owned(),
+        };
+        writeln!(out, "  {:<17} {place}: {}", f.code, terminal_safe(&f.message))?;
+    }
+    Ok(())
+}
+
+fn summary(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
     let s = &r.summary;
     writeln!(out)?;
     let kinds = |m: &std::collections::BTreeMap<String, usize>| {
-        if m.is_empty() { "none".to_owned() } else { m.iter().map(|(k, v)| format!("{k} {v}")).collect::<Vec<_>>().join(", ") }
+        if m.is_empty() {
+            "none".to_owned()
+        } else {
+            m.iter().map(|(k, v)| format!("{k} {v}")).collect::<Vec<_>>().join(", ")
+        }
     };
     writeln!(out, "residual blocks: {}", s.blocks)?;
     writeln!(out, "  shortcuts: {}", kinds(&s.by_shortcut))?;
@@ -116,20 +301,6 @@ pub fn render_scan(r: &ScanReport, out: &mut dyn io::Write) -> io::Result<()> {
     writeln!(out, "stages: {}", r.stages.len())?;
     writeln!(out, "concatenative skips: {}", s.concat_skips)?;
     writeln!(out, "long skips: {}", s.long_skips)?;
-    if s.static_dead > 0 {
-        writeln!(out, "dead by construction: {}", s.static_dead)?;
-    }
-    for run in &r.bare_runs {
-        let names: Vec<String> = run.layers.iter().map(|l| terminal_safe(&l.name)).collect();
-        writeln!(
-            out,
-            "bare run between blocks #{} and #{}: {} learned layer(s) no shortcut spans ({}): a lost shortcut?",
-            run.after_block,
-            run.before_block,
-            run.layers.len(),
-            names.join(", ")
-        )?;
-    }
     if !r.not_blocks.is_empty() {
         writeln!(out, "merges that are not blocks: {}", r.not_blocks.len())?;
     }

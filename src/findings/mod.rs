@@ -1,0 +1,277 @@
+//! Findings: what the measurements and the structure say is worth a look.
+//! Every threshold is relative (a ratio of magnitudes, a fraction, a growth
+//! factor): at random initialisation some networks carry signals of 1e-7 and
+//! less, so no absolute magnitude may decide that a branch is zero.
+//!
+//! **Invariant:** findings are a pure function of the per-block summaries and
+//! the configuration; they never look at tensors or graphs.
+
+use std::fmt;
+
+/// Thresholds, all relative.
+#[derive(Debug, Clone)]
+pub struct FindingConfig {
+    /// `dead` when RMS(branch)/RMS(shortcut) is below this.
+    pub dead_below: f64,
+    /// `dominant` when RMS(branch)/RMS(shortcut) is above this.
+    pub dominant_above: f64,
+    /// `dead-channels` when more than this fraction of channels has a branch
+    /// RMS below `dead_below` times the shortcut's RMS in that channel.
+    pub dead_channels_above: f64,
+    /// `exploding-signal` / `vanishing-signal` when the output RMS of the
+    /// last block is more than this factor above / below the first block's.
+    pub depth_factor: f64,
+}
+
+/// What kind of finding.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub enum Code {
+    /// The branch is negligible next to its shortcut.
+    Dead,
+    /// The branch dominates its shortcut.
+    Dominant,
+    /// Many channels of the branch are negligible next to the shortcut's.
+    DeadChannels,
+    /// NaN or infinite values in a block.
+    NonFinite,
+    /// The branch cannot depend on its input (all-zero constants).
+    StaticDead,
+    /// Learned layers inside a stage that no shortcut spans.
+    LostShortcut,
+    /// The signal grows by more than the depth factor across the blocks.
+    ExplodingSignal,
+    /// The signal shrinks by more than the depth factor across the blocks.
+    VanishingSignal,
+}
+
+impl Code {
+    /// Every code, in report order.
+    pub const ALL: [Code; 8] = [
+        Code::StaticDead,
+        Code::LostShortcut,
+        Code::Dead,
+        Code::Dominant,
+        Code::DeadChannels,
+        Code::NonFinite,
+        Code::ExplodingSignal,
+        Code::VanishingSignal,
+    ];
+
+    /// The name used in reports and on the command line.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Code::Dead => "dead",
+            Code::Dominant => "dominant",
+            Code::DeadChannels => "dead-channels",
+            Code::NonFinite => "non-finite",
+            Code::StaticDead => "static-dead",
+            Code::LostShortcut => "lost-shortcut",
+            Code::ExplodingSignal => "exploding-signal",
+            Code::VanishingSignal => "vanishing-signal",
+        }
+    }
+
+    /// Parses a name from [`Code::as_str`].
+    pub fn parse(s: &str) -> Option<Code> {
+        Code::ALL.into_iter().find(|c| c.as_str() == s)
+    }
+}
+
+impl fmt::Display for Code {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+/// What findings need to know of one block (block ids are 1-based).
+#[derive(Debug, Clone, Default)]
+pub struct BlockFacts {
+    /// Mean over samples of RMS(branch)/RMS(shortcut), if measured.
+    pub ratio: Option<f64>,
+    /// Fraction of dead channels, if measured.
+    pub dead_channel_fraction: Option<f64>,
+    /// Channels measured.
+    pub channels: Option<usize>,
+    /// NaN plus infinite values seen.
+    pub non_finite: u64,
+    /// Mean output RMS, if measured.
+    pub output_rms: Option<f64>,
+    /// Why the branch is dead by construction, if it is.
+    pub static_dead: Option<String>,
+    /// Nesting depth (0 for top-level blocks).
+    pub depth: usize,
+}
+
+/// One finding.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Finding {
+    /// What kind.
+    pub code: Code,
+    /// The block it is about (1-based), if any.
+    pub block: Option<usize>,
+    /// What was seen, with the numbers.
+    pub message: String,
+}
+
+/// A bare run: learned layers between blocks `after` and `before` (1-based).
+#[derive(Debug, Clone)]
+pub struct Run {
+    /// Block before the run.
+    pub after: usize,
+    /// Block after the run.
+    pub before: usize,
+    /// Names of its learned layers.
+    pub layers: Vec<String>,
+}
+
+/// All findings for a model, in block order, structure first.
+pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> Vec<Finding> {
+    let mut out = Vec::new();
+    for r in runs {
+        out.push(Finding {
+            code: Code::LostShortcut,
+            block: Some(r.before),
+            message: format!(
+                "{} learned layer(s) between blocks #{} and #{} of one stage are spanned by no shortcut ({})",
+                r.layers.len(),
+                r.after,
+                r.before,
+                r.layers.join(", ")
+            ),
+        });
+    }
+    for (i, b) in blocks.iter().enumerate() {
+        let id = i + 1;
+        if let Some(reason) = &b.static_dead {
+            out.push(Finding {
+                code: Code::StaticDead,
+                block: Some(id),
+                message: format!("the branch cannot depend on its input: {reason}"),
+            });
+        }
+        if let Some(r) = b.ratio {
+            if r < config.dead_below {
+                out.push(Finding {
+                    code: Code::Dead,
+                    block: Some(id),
+                    message: format!(
+                        "branch/shortcut RMS ratio {r:.3e} is below {}",
+                        config.dead_below
+                    ),
+                });
+            } else if r > config.dominant_above {
+                out.push(Finding {
+                    code: Code::Dominant,
+                    block: Some(id),
+                    message: format!(
+                        "branch/shortcut RMS ratio {r:.3e} is above {}",
+                        config.dominant_above
+                    ),
+                });
+            }
+        }
+        if let (Some(f), Some(c)) = (b.dead_channel_fraction, b.channels) {
+            let already_dead = b.ratio.is_some_and(|r| r < config.dead_below);
+            if f > config.dead_channels_above && !already_dead {
+                out.push(Finding {
+                    code: Code::DeadChannels,
+                    block: Some(id),
+                    message: format!(
+                        "{:.0}% of {c} channels have a branch below {} of the shortcut",
+                        f * 100.0,
+                        config.dead_below
+                    ),
+                });
+            }
+        }
+        if b.non_finite > 0 {
+            out.push(Finding {
+                code: Code::NonFinite,
+                block: Some(id),
+                message: format!("{} NaN or infinite values in the block's tensors", b.non_finite),
+            });
+        }
+    }
+    let top: Vec<(usize, f64)> = blocks
+        .iter()
+        .enumerate()
+        .filter(|(_, b)| b.depth == 0)
+        .filter_map(|(i, b)| b.output_rms.filter(|v| v.is_finite() && *v > 0.0).map(|v| (i + 1, v)))
+        .collect();
+    if let (Some(&(first_id, first)), Some(&(last_id, last))) = (top.first(), top.last()) {
+        if top.len() >= 2 {
+            let growth = last / first;
+            if growth > config.depth_factor {
+                out.push(Finding {
+                    code: Code::ExplodingSignal,
+                    block: None,
+                    message: format!(
+                        "output RMS grows {growth:.3e}-fold from block #{first_id} to block #{last_id} (limit {})",
+                        config.depth_factor
+                    ),
+                });
+            } else if growth < 1.0 / config.depth_factor {
+                out.push(Finding {
+                    code: Code::VanishingSignal,
+                    block: None,
+                    message: format!(
+                        "output RMS shrinks to {growth:.3e} of its value from block #{first_id} to block #{last_id} (limit 1/{})",
+                        config.depth_factor
+                    ),
+                });
+            }
+        }
+    }
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn config() -> FindingConfig {
+        FindingConfig {
+            dead_below: 0.01,
+            dominant_above: 10.0,
+            dead_channels_above: 0.5,
+            depth_factor: 100.0,
+        }
+    }
+
+    #[test]
+    fn thresholds_are_relative_and_strict() {
+        let blocks = vec![
+            BlockFacts { ratio: Some(1e-7), output_rms: Some(1e-9), ..Default::default() },
+            BlockFacts { ratio: Some(0.01), output_rms: Some(1e-9), ..Default::default() },
+            BlockFacts { ratio: Some(40.0), output_rms: Some(1e-9), ..Default::default() },
+        ];
+        let f = findings(&blocks, &[], &config());
+        let codes: Vec<(Code, Option<usize>)> = f.iter().map(|f| (f.code, f.block)).collect();
+        // Tiny absolute magnitudes decide nothing; only the ratios do.
+        assert_eq!(codes, vec![(Code::Dead, Some(1)), (Code::Dominant, Some(3))]);
+    }
+
+    #[test]
+    fn depth_profile() {
+        let mut blocks: Vec<BlockFacts> = (0..5)
+            .map(|i| BlockFacts {
+                ratio: Some(1.0),
+                output_rms: Some(10f64.powi(i)),
+                ..Default::default()
+            })
+            .collect();
+        let f = findings(&blocks, &[], &config());
+        assert_eq!(f.iter().map(|f| f.code).collect::<Vec<_>>(), vec![Code::ExplodingSignal]);
+        blocks.reverse();
+        let f = findings(&blocks, &[], &config());
+        assert_eq!(f.iter().map(|f| f.code).collect::<Vec<_>>(), vec![Code::VanishingSignal]);
+    }
+
+    #[test]
+    fn codes_round_trip() {
+        for c in Code::ALL {
+            assert_eq!(Code::parse(c.as_str()), Some(c));
+        }
+        assert_eq!(Code::parse("nope"), None);
+    }
+}
