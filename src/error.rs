@@ -121,6 +121,10 @@ impl Diagnostic {
 
     /// A note about `node`.
     pub fn note(node: Option<&str>, message: impl Into<String>) -> Diagnostic {
-        Diagnostic { severity: Severity::Note, node: node.map(str::to_owned), message: message.into() }
+        Diagnostic {
+            severity: Severity::Note,
+            node: node.map(str::to_owned),
+            message: message.into(),
+        }
     }
 }

@@ -5,21 +5,30 @@ use std::path::Path;
 
 use prost::Message;
 use shunt::proto::{
-    AttributeProto, GraphProto, ModelProto, NodeProto, OperatorSetIdProto, StringStringEntryProto, TensorProto,
-    TypeProto, ValueInfoProto, attribute_proto::AttributeType, tensor_proto, type_proto,
+    AttributeProto, GraphProto, ModelProto, NodeProto, OperatorSetIdProto, StringStringEntryProto,
+    TensorProto, TypeProto, ValueInfoProto, attribute_proto::AttributeType, tensor_proto,
+    type_proto,
 };
 
 use crate::util::{shunt, tempdir};
 
 fn input(name: &str, dims: &[i64]) -> ValueInfoProto {
-    use shunt::proto::{TensorShapeProto, tensor_shape_proto::Dimension, tensor_shape_proto::dimension::Value};
+    use shunt::proto::{
+        TensorShapeProto, tensor_shape_proto::Dimension, tensor_shape_proto::dimension::Value,
+    };
     ValueInfoProto {
         name: name.into(),
         r#type: Some(TypeProto {
             value: Some(type_proto::Value::TensorType(type_proto::Tensor {
                 elem_type: tensor_proto::DataType::Float as i32,
                 shape: Some(TensorShapeProto {
-                    dim: dims.iter().map(|&d| Dimension { value: Some(Value::DimValue(d)), ..Default::default() }).collect(),
+                    dim: dims
+                        .iter()
+                        .map(|&d| Dimension {
+                            value: Some(Value::DimValue(d)),
+                            ..Default::default()
+                        })
+                        .collect(),
                 }),
             })),
             ..Default::default()
@@ -68,13 +77,24 @@ fn model(nodes: Vec<NodeProto>, inits: Vec<TensorProto>, out: &str) -> ModelProt
 
 /// x -> Conv -> Relu -> Conv -> Add(x) -> Relu: one identity block.
 fn one_block() -> ModelProto {
-    let pads = AttributeProto { name: "pads".into(), r#type: AttributeType::Ints as i32, ints: vec![1; 4], ..Default::default() };
+    let pads = AttributeProto {
+        name: "pads".into(),
+        r#type: AttributeType::Ints as i32,
+        ints: vec![1; 4],
+        ..Default::default()
+    };
     let mut c1 = node("Conv", &["x", "w1"], "c1");
     c1.attribute.push(pads.clone());
     let mut c2 = node("Conv", &["r1", "w2"], "c2");
     c2.attribute.push(pads);
     model(
-        vec![c1, node("Relu", &["c1"], "r1"), c2, node("Add", &["c2", "x"], "sum"), node("Relu", &["sum"], "y")],
+        vec![
+            c1,
+            node("Relu", &["c1"], "r1"),
+            c2,
+            node("Add", &["c2", "x"], "sum"),
+            node("Relu", &["sum"], "y"),
+        ],
         vec![weight("w1", &[4, 4, 3, 3]), weight("w2", &[4, 4, 3, 3])],
         "y",
     )
@@ -215,7 +235,11 @@ fn output_file_is_written_and_never_over_the_model() {
     assert!(run.stdout.is_empty());
     let json: serde_json::Value = serde_json::from_slice(&fs::read(&out).unwrap()).unwrap();
     assert_eq!(json["summary"]["blocks"], 1);
-    let leftovers: Vec<_> = fs::read_dir(dir.path()).unwrap().filter_map(Result::ok).filter(|e| e.file_name().to_string_lossy().ends_with(".tmp")).collect();
+    let leftovers: Vec<_> = fs::read_dir(dir.path())
+        .unwrap()
+        .filter_map(Result::ok)
+        .filter(|e| e.file_name().to_string_lossy().ends_with(".tmp"))
+        .collect();
     assert!(leftovers.is_empty(), "no temporary file left behind");
 }
 

@@ -15,7 +15,10 @@ pub struct Run {
 
 /// Runs the built `shunt` binary with `args`.
 pub fn shunt(args: &[&str]) -> Run {
-    let out = Command::new(env!("CARGO_BIN_EXE_shunt")).args(args).output().expect("the shunt binary runs");
+    let out = Command::new(env!("CARGO_BIN_EXE_shunt"))
+        .args(args)
+        .output()
+        .expect("the shunt binary runs");
     Run {
         code: out.status.code().unwrap_or(-1),
         stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
@@ -46,11 +49,17 @@ pub fn reference_python() -> &'static Path {
         let requirements = root.join("tests").join("reference").join("requirements.txt");
         let stamp = venv.join("requirements.txt");
         let wanted = std::fs::read_to_string(&requirements).expect("requirements file");
-        if std::fs::read_to_string(&stamp).ok().as_deref() == Some(wanted.as_str()) && python.exists() {
+        if std::fs::read_to_string(&stamp).ok().as_deref() == Some(wanted.as_str())
+            && python.exists()
+        {
             return python;
         }
         let base = std::env::var("SHUNT_BASE_PYTHON").unwrap_or_else(|_| "python3".to_owned());
-        let ok = Command::new(&base).args(["-m", "venv", "--clear"]).arg(&venv).status().is_ok_and(|s| s.success());
+        let ok = Command::new(&base)
+            .args(["-m", "venv", "--clear"])
+            .arg(&venv)
+            .status()
+            .is_ok_and(|s| s.success());
         assert!(ok, "could not create a Python venv at {} with {base}", venv.display());
         let ok = Command::new(&python)
             .args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check", "-r"])
@@ -66,7 +75,12 @@ pub fn reference_python() -> &'static Path {
 /// Runs a Python snippet with the reference interpreter; panics with its
 /// output when it fails.
 pub fn python(script: &str, args: &[&str]) -> String {
-    let out = Command::new(reference_python()).arg("-c").arg(script).args(args).output().expect("python runs");
+    let out = Command::new(reference_python())
+        .arg("-c")
+        .arg(script)
+        .args(args)
+        .output()
+        .expect("python runs");
     assert!(
         out.status.success(),
         "python failed:\n{}\n{}",

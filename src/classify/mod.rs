@@ -145,7 +145,13 @@ pub struct Kind {
 pub fn classify(g: &Graph, block: &Block, config: &ClassifyConfig) -> Kind {
     let branch: HashSet<NodeId> = block.branch.iter().copied().collect();
     let (placement, placement_node) = placement(g, block, &branch);
-    let layers = block.branch.iter().copied().filter(|&n| op::is_parametrised(g, n)).map(|n| layer(g, n)).collect();
+    let layers = block
+        .branch
+        .iter()
+        .copied()
+        .filter(|&n| op::is_parametrised(g, n))
+        .map(|n| layer(g, n))
+        .collect();
     let mut norms = Vec::new();
     let mut activations = Vec::new();
     let mut gates = 0;
@@ -166,7 +172,8 @@ pub fn classify(g: &Graph, block: &Block, config: &ClassifyConfig) -> Kind {
         }
         if node.op == "Mul" && op::signal_arity(g, n) == 2 {
             let gated = g.signal_inputs(n).any(|v| {
-                g.producer(v).is_some_and(|p| matches!(g.node(p).op.as_str(), "Sigmoid" | "HardSigmoid"))
+                g.producer(v)
+                    .is_some_and(|p| matches!(g.node(p).op.as_str(), "Sigmoid" | "HardSigmoid"))
             });
             if gated {
                 gates += 1;
@@ -187,8 +194,8 @@ fn placement(g: &Graph, block: &Block, branch: &HashSet<NodeId>) -> (Placement, 
     if let Some(n) = decomposed_layer_norm(g, block.fork, Some(branch)) {
         return (Placement::PreNorm, Some(n));
     }
-    let opens_with_norm_or_act =
-        !entries.is_empty() && entries.iter().all(|&n| matches!(op::family(g, n), Family::Norm | Family::Activation));
+    let opens_with_norm_or_act = !entries.is_empty()
+        && entries.iter().all(|&n| matches!(op::family(g, n), Family::Norm | Family::Activation));
     if opens_with_norm_or_act {
         return (Placement::PreActivation, entries.first().copied());
     }
@@ -249,7 +256,10 @@ fn openings(g: &Graph, fork: ValueId, branch: &HashSet<NodeId>) -> Vec<NodeId> {
 fn follow_pass_through(g: &Graph, mut v: ValueId) -> (ValueId, Vec<NodeId>) {
     loop {
         let consumers: Vec<NodeId> = g.consumers(v).collect();
-        if consumers.len() == 1 && op::family(g, consumers[0]) == Family::PassThrough && !g.is_output(v) {
+        if consumers.len() == 1
+            && op::family(g, consumers[0]) == Family::PassThrough
+            && !g.is_output(v)
+        {
             v = g.node(consumers[0]).outputs[0];
             continue;
         }
@@ -260,7 +270,11 @@ fn follow_pass_through(g: &Graph, mut v: ValueId) -> (ValueId, Vec<NodeId>) {
 /// A layer or RMS normalisation spelled out as arithmetic on `v`:
 /// `Sub(v, ReduceMean(v))` (layer norm) or `ReduceMean(Pow(v, 2))` feeding a
 /// `Div` or `Mul` of `v` (RMS norm). Returns the node that opens it.
-pub fn decomposed_layer_norm(g: &Graph, v: ValueId, within: Option<&HashSet<NodeId>>) -> Option<NodeId> {
+pub fn decomposed_layer_norm(
+    g: &Graph,
+    v: ValueId,
+    within: Option<&HashSet<NodeId>>,
+) -> Option<NodeId> {
     let ok = |n: NodeId| within.is_none_or(|w| w.contains(&n));
     let consumers: Vec<NodeId> = g.consumers(v).filter(|&n| ok(n)).collect();
     for &r in &consumers {
@@ -270,7 +284,9 @@ pub fn decomposed_layer_norm(g: &Graph, v: ValueId, within: Option<&HashSet<Node
         let mean = g.node(r).outputs[0];
         let centred = consumers.iter().any(|&s| {
             let node = g.node(s);
-            node.op == "Sub" && node.inputs.first() == Some(&Some(v)) && node.inputs.get(1) == Some(&Some(mean))
+            node.op == "Sub"
+                && node.inputs.first() == Some(&Some(v))
+                && node.inputs.get(1) == Some(&Some(mean))
         });
         if centred {
             return Some(r);
@@ -279,7 +295,10 @@ pub fn decomposed_layer_norm(g: &Graph, v: ValueId, within: Option<&HashSet<Node
     for &p in &consumers {
         let node = g.node(p);
         let squares = match node.op.as_str() {
-            "Pow" => node.inputs.get(1).copied().flatten().and_then(|e| g.constant_f32(e, 64)) == Some(vec![2.0]),
+            "Pow" => {
+                node.inputs.get(1).copied().flatten().and_then(|e| g.constant_f32(e, 64))
+                    == Some(vec![2.0])
+            }
             "Mul" => node.inputs.first() == node.inputs.get(1),
             _ => false,
         };
@@ -292,7 +311,9 @@ pub fn decomposed_layer_norm(g: &Graph, v: ValueId, within: Option<&HashSet<Node
 
 fn layer(g: &Graph, n: NodeId) -> Layer {
     let node = g.node(n);
-    let weight = op::weight_slot(g, n).and_then(|s| g.input(n, s)).and_then(|w| g.shape(w).map(<[_]>::to_vec));
+    let weight = op::weight_slot(g, n)
+        .and_then(|s| g.input(n, s))
+        .and_then(|w| g.shape(w).map(<[_]>::to_vec));
     let dims: Vec<Option<u64>> = weight
         .unwrap_or_default()
         .iter()
@@ -321,7 +342,8 @@ fn layer(g: &Graph, n: NodeId) -> Layer {
             groups,
         },
         _ => {
-            let transposed = node.op.starts_with("Gemm") && attr::int(&node.attrs, "transB") == Some(1);
+            let transposed =
+                node.op.starts_with("Gemm") && attr::int(&node.attrs, "transB") == Some(1);
             let slot = op::weight_slot(g, n).unwrap_or(1);
             let (k, m) = match dims.len() {
                 r if r >= 2 => (dims[r - 2], dims[r - 1]),
@@ -335,7 +357,14 @@ fn layer(g: &Graph, n: NodeId) -> Layer {
             } else {
                 (k, m)
             };
-            Layer { node: n, kernel: Vec::new(), in_channels: in_c, out_channels: out_c, strides: Vec::new(), groups: 1 }
+            Layer {
+                node: n,
+                kernel: Vec::new(),
+                in_channels: in_c,
+                out_channels: out_c,
+                strides: Vec::new(),
+                groups: 1,
+            }
         }
     }
 }
@@ -348,8 +377,10 @@ fn end_scale(g: &Graph, block: &Block) -> Option<EndScale> {
             match op::family(g, p) {
                 Family::PassThrough => v = node.inputs[0]?,
                 Family::Affine if node.op == "Mul" => {
-                    let tensor = node.inputs.iter().flatten().copied().find(|&i| g.value(i).is_static)?;
-                    let summary = g.constant_f32(tensor, 1 << 20).map(|vals| ValueSummary::of(&vals));
+                    let tensor =
+                        node.inputs.iter().flatten().copied().find(|&i| g.value(i).is_static)?;
+                    let summary =
+                        g.constant_f32(tensor, 1 << 20).map(|vals| ValueSummary::of(&vals));
                     return Some(EndScale { node: p, tensor, summary });
                 }
                 _ => break,
@@ -360,10 +391,16 @@ fn end_scale(g: &Graph, block: &Block) -> Option<EndScale> {
 }
 
 fn all_zero(g: &Graph, v: Option<ValueId>, config: &ClassifyConfig) -> bool {
-    v.and_then(|v| g.constant_f32(v, config.max_inspect_bytes)).is_some_and(|vals| !vals.is_empty() && vals.iter().all(|&x| x == 0.0))
+    v.and_then(|v| g.constant_f32(v, config.max_inspect_bytes))
+        .is_some_and(|vals| !vals.is_empty() && vals.iter().all(|&x| x == 0.0))
 }
 
-fn static_dead(g: &Graph, block: &Block, end: Option<&EndScale>, config: &ClassifyConfig) -> Option<StaticDead> {
+fn static_dead(
+    g: &Graph,
+    block: &Block,
+    end: Option<&EndScale>,
+    config: &ClassifyConfig,
+) -> Option<StaticDead> {
     if let Some(EndScale { node, summary: Some(s), .. }) = end {
         if s.min == 0.0 && s.max == 0.0 {
             return Some(StaticDead::ZeroScale(*node));
@@ -381,7 +418,8 @@ fn static_dead(g: &Graph, block: &Block, end: Option<&EndScale>, config: &Classi
             match op::family(g, p) {
                 Family::PassThrough => {}
                 Family::Affine => {
-                    let konst = node.inputs.iter().flatten().copied().find(|&i| g.value(i).is_static);
+                    let konst =
+                        node.inputs.iter().flatten().copied().find(|&i| g.value(i).is_static);
                     if node.op == "Mul" && all_zero(g, konst, config) {
                         found = Some(StaticDead::ZeroScale(p));
                         break;

@@ -71,7 +71,8 @@ pub fn bare_runs(g: &Graph, blocks: &[Block], stage_of: &[Option<usize>]) -> Vec
             continue;
         }
         let Some(nodes) = between(g, a, b.fork) else { continue };
-        let layers: Vec<NodeId> = nodes.into_iter().filter(|&n| op::is_parametrised(g, n)).collect();
+        let layers: Vec<NodeId> =
+            nodes.into_iter().filter(|&n| op::is_parametrised(g, n)).collect();
         if !layers.is_empty() {
             runs.push(BareRun { after: i - 1, before: i, layers });
         }

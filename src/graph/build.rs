@@ -18,7 +18,11 @@ pub struct BuildConfig {
 }
 
 /// Builds the dataflow graph of the model's main graph.
-pub fn build(model: ModelProto, external: ExternalData, config: &BuildConfig) -> Result<(Graph, Vec<Diagnostic>)> {
+pub fn build(
+    model: ModelProto,
+    external: ExternalData,
+    config: &BuildConfig,
+) -> Result<(Graph, Vec<Diagnostic>)> {
     let mut diagnostics = Vec::new();
     let graph = model.graph.ok_or_else(|| invalid("the model has no graph"))?;
     if graph.node.len() > config.max_nodes {
@@ -65,11 +69,14 @@ pub fn build(model: ModelProto, external: ExternalData, config: &BuildConfig) ->
         let Some(v) = s.values else { continue };
         let name = v.name.clone();
         if name.is_empty() || by_name.contains_key(&name) {
-            return Err(invalid(format!("sparse initializer '{name}' has an empty or repeated name")));
+            return Err(invalid(format!(
+                "sparse initializer '{name}' has an empty or repeated name"
+            )));
         }
         let id = new_value(&mut values, &name, Source::Initializer);
         values[id.0 as usize].is_static = true;
-        values[id.0 as usize].fact = Fact { dtype: v.data_type, shape: Some(s.dims.iter().map(|&d| dim_of(d)).collect()) };
+        values[id.0 as usize].fact =
+            Fact { dtype: v.data_type, shape: Some(s.dims.iter().map(|&d| dim_of(d)).collect()) };
         by_name.insert(name, id);
     }
 
@@ -106,12 +113,17 @@ pub fn build(model: ModelProto, external: ExternalData, config: &BuildConfig) ->
             }
             if let Some(&prev) = by_name.get(out) {
                 let by = match values[prev.0 as usize].source {
-                    Source::Node(p, _) => format!("node '{}'", nodes.get(p.0 as usize).map_or("?", |p: &Node| &p.name)),
+                    Source::Node(p, _) => format!(
+                        "node '{}'",
+                        nodes.get(p.0 as usize).map_or("?", |p: &Node| &p.name)
+                    ),
                     Source::Initializer => "an initializer".to_owned(),
                     Source::Input => "a graph input".to_owned(),
                     Source::Missing => "nothing".to_owned(),
                 };
-                return Err(invalid(format!("tensor '{out}' is produced twice: by {by} and by node '{name}'")));
+                return Err(invalid(format!(
+                    "tensor '{out}' is produced twice: by {by} and by node '{name}'"
+                )));
             }
             let id = new_value(&mut values, out, Source::Node(node_id, slot));
             by_name.insert(out.clone(), id);
@@ -212,7 +224,12 @@ pub fn build(model: ModelProto, external: ExternalData, config: &BuildConfig) ->
 fn topological_order(nodes: &[Node], values: &[Value]) -> Result<Vec<NodeId>> {
     let mut pending = vec![0usize; nodes.len()];
     for (i, n) in nodes.iter().enumerate() {
-        pending[i] = n.inputs.iter().flatten().filter(|v| matches!(values[v.0 as usize].source, Source::Node(..))).count();
+        pending[i] = n
+            .inputs
+            .iter()
+            .flatten()
+            .filter(|v| matches!(values[v.0 as usize].source, Source::Node(..)))
+            .count();
     }
     let mut ready: BinaryHeap<Reverse<u32>> =
         (0..nodes.len()).filter(|&i| pending[i] == 0).map(|i| Reverse(i as u32)).collect();
@@ -230,7 +247,8 @@ fn topological_order(nodes: &[Node], values: &[Value]) -> Result<Vec<NodeId>> {
     }
     if order.len() < nodes.len() {
         let stuck = (0..nodes.len()).find(|&i| pending[i] > 0).map(|i| &nodes[i]);
-        let what = stuck.map_or(String::new(), |n| format!(" through node '{}' ({})", n.name, n.op));
+        let what =
+            stuck.map_or(String::new(), |n| format!(" through node '{}' ({})", n.name, n.op));
         return Err(invalid(format!("the graph has a cycle{what}")));
     }
     Ok(order)
@@ -269,7 +287,9 @@ fn fact_of(t: Option<&TypeProto>) -> Fact {
             .iter()
             .map(|d| match &d.value {
                 Some(crate::proto::tensor_shape_proto::dimension::Value::DimValue(v)) => dim_of(*v),
-                Some(crate::proto::tensor_shape_proto::dimension::Value::DimParam(p)) if !p.is_empty() => {
+                Some(crate::proto::tensor_shape_proto::dimension::Value::DimParam(p))
+                    if !p.is_empty() =>
+                {
                     Dim::Symbol(p.clone())
                 }
                 _ => Dim::Unknown,
@@ -278,4 +298,3 @@ fn fact_of(t: Option<&TypeProto>) -> Fact {
     });
     Fact { dtype: tt.elem_type, shape }
 }
-

@@ -230,7 +230,10 @@ impl Graph {
         for (i, v) in self.values.iter().enumerate() {
             if let Source::Node(n, slot) = v.source {
                 if self.node(n).outputs.get(slot) != Some(&ValueId(i as u32)) {
-                    return Err(format!("value '{}' names a producer that does not list it", v.name));
+                    return Err(format!(
+                        "value '{}' names a producer that does not list it",
+                        v.name
+                    ));
                 }
             }
         }
@@ -241,7 +244,11 @@ impl Graph {
             for v in self.node(n).inputs.iter().flatten() {
                 if let Some(p) = self.producer(*v) {
                     if self.rank[p.0 as usize] >= self.rank[n.0 as usize] {
-                        return Err(format!("node '{}' comes before its input '{}'", self.node(n).name, self.value(*v).name));
+                        return Err(format!(
+                            "node '{}' comes before its input '{}'",
+                            self.node(n).name,
+                            self.value(*v).name
+                        ));
                     }
                 }
             }

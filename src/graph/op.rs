@@ -147,15 +147,27 @@ pub fn family(g: &Graph, n: NodeId) -> Family {
     let op = node.op.as_str();
     let arity = signal_arity(g, n);
     match op {
-        "Identity" | "Reshape" | "Flatten" | "Squeeze" | "Unsqueeze" | "Cast" | "CastLike" | "QuantizeLinear"
-        | "DequantizeLinear" | "DynamicQuantizeLinear" | "Dropout" | "Transpose" | "Expand" => {
+        "Identity"
+        | "Reshape"
+        | "Flatten"
+        | "Squeeze"
+        | "Unsqueeze"
+        | "Cast"
+        | "CastLike"
+        | "QuantizeLinear"
+        | "DequantizeLinear"
+        | "DynamicQuantizeLinear"
+        | "Dropout"
+        | "Transpose"
+        | "Expand" => {
             if arity == 1 {
                 Family::PassThrough
             } else {
                 Family::Other
             }
         }
-        "MaxPool" | "AveragePool" | "LpPool" | "Pad" | "Resize" | "Upsample" | "SpaceToDepth" | "DepthToSpace" => {
+        "MaxPool" | "AveragePool" | "LpPool" | "Pad" | "Resize" | "Upsample" | "SpaceToDepth"
+        | "DepthToSpace" => {
             if arity == 1 {
                 Family::Resample
             } else {

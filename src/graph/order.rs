@@ -33,7 +33,11 @@ impl Dominance {
             for input in g.signal_inputs(n) {
                 for &out in &node.outputs {
                     if !g.value(out).is_static {
-                        dg.add_edge(NodeIndex::new(input.0 as usize), NodeIndex::new(out.0 as usize), ());
+                        dg.add_edge(
+                            NodeIndex::new(input.0 as usize),
+                            NodeIndex::new(out.0 as usize),
+                            (),
+                        );
                         has_pred[out.0 as usize] = true;
                     }
                 }
@@ -47,7 +51,9 @@ impl Dominance {
         let doms = dominators::simple_fast(&dg, root);
         let idom = (0..n_values)
             .map(|i| {
-                doms.immediate_dominator(NodeIndex::new(i)).filter(|d| *d != root).map(|d| ValueId(d.index() as u32))
+                doms.immediate_dominator(NodeIndex::new(i))
+                    .filter(|d| *d != root)
+                    .map(|d| ValueId(d.index() as u32))
             })
             .collect();
         Dominance { idom }

@@ -56,17 +56,53 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
     let node = g.node(n);
     let attrs = &node.attrs;
     match node.op.as_str() {
-        "Relu" | "LeakyRelu" | "Elu" | "Selu" | "Celu" | "Sigmoid" | "HardSigmoid" | "Tanh" | "Softplus"
-        | "Softsign" | "Gelu" | "HardSwish" | "Mish" | "Clip" | "Erf" | "Sqrt" | "Neg" | "Exp" | "Log" | "Abs"
-        | "Reciprocal" | "Identity" | "Cast" | "CastLike" | "Dropout" | "BatchNormalization"
-        | "InstanceNormalization" | "GroupNormalization" | "LayerNormalization" | "RMSNormalization"
-        | "SimplifiedLayerNormalization" | "Softmax" | "LogSoftmax" | "QuantizeLinear" | "DequantizeLinear"
-        | "Not" | "Floor" | "Ceil" | "Round" | "Sign" | "LpNormalization" | "ThresholdedRelu" | "Swish" => {
-            shape_of(g, n, 0)
-        }
-        "Add" | "Sub" | "Mul" | "Div" | "Pow" | "Max" | "Min" | "Sum" | "Mean" | "Equal" | "Greater" | "Less"
-        | "And" | "Or" | "Where" | "PRelu" | "BiasGelu" => {
-            let shapes: Option<Vec<Vec<Dim>>> = node.inputs.iter().flatten().map(|&v| g.shape(v).map(<[Dim]>::to_vec)).collect();
+        "Relu"
+        | "LeakyRelu"
+        | "Elu"
+        | "Selu"
+        | "Celu"
+        | "Sigmoid"
+        | "HardSigmoid"
+        | "Tanh"
+        | "Softplus"
+        | "Softsign"
+        | "Gelu"
+        | "HardSwish"
+        | "Mish"
+        | "Clip"
+        | "Erf"
+        | "Sqrt"
+        | "Neg"
+        | "Exp"
+        | "Log"
+        | "Abs"
+        | "Reciprocal"
+        | "Identity"
+        | "Cast"
+        | "CastLike"
+        | "Dropout"
+        | "BatchNormalization"
+        | "InstanceNormalization"
+        | "GroupNormalization"
+        | "LayerNormalization"
+        | "RMSNormalization"
+        | "SimplifiedLayerNormalization"
+        | "Softmax"
+        | "LogSoftmax"
+        | "QuantizeLinear"
+        | "DequantizeLinear"
+        | "Not"
+        | "Floor"
+        | "Ceil"
+        | "Round"
+        | "Sign"
+        | "LpNormalization"
+        | "ThresholdedRelu"
+        | "Swish" => shape_of(g, n, 0),
+        "Add" | "Sub" | "Mul" | "Div" | "Pow" | "Max" | "Min" | "Sum" | "Mean" | "Equal"
+        | "Greater" | "Less" | "And" | "Or" | "Where" | "PRelu" | "BiasGelu" => {
+            let shapes: Option<Vec<Vec<Dim>>> =
+                node.inputs.iter().flatten().map(|&v| g.shape(v).map(<[Dim]>::to_vec)).collect();
             broadcast(&shapes?)
         }
         "Conv" | "ConvInteger" | "FusedConv" => {
@@ -82,7 +118,8 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
         "MaxPool" | "AveragePool" | "LpPool" => {
             let x = shape_of(g, n, 0)?;
             let channels = known(x.get(1)?)?;
-            let kernel: Vec<Dim> = attr::ints(attrs, "kernel_shape")?.iter().map(|&k| Dim::Known(k as u64)).collect();
+            let kernel: Vec<Dim> =
+                attr::ints(attrs, "kernel_shape")?.iter().map(|&k| Dim::Known(k as u64)).collect();
             let ceil = attr::int(attrs, "ceil_mode") == Some(1);
             spatial(&x, channels, &kernel, attrs, ceil)
         }
@@ -116,7 +153,9 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
                 if dims.len() == 1 {
                     return dims[0].clone();
                 }
-                dims.iter().try_fold(1u64, |acc, d| known(d).map(|k| acc * k)).map_or(Dim::Unknown, Dim::Known)
+                dims.iter()
+                    .try_fold(1u64, |acc, d| known(d).map(|k| acc * k))
+                    .map_or(Dim::Unknown, Dim::Known)
             };
             let head = if axis == 0 { Dim::Known(1) } else { product(&x[..axis]) };
             let tail = if axis == x.len() { Dim::Known(1) } else { product(&x[axis..]) };
@@ -136,8 +175,12 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
             perm.iter().map(|&i| x.get(i).cloned()).collect()
         }
         "Concat" => {
-            let shapes: Vec<Vec<Dim>> =
-                node.inputs.iter().flatten().map(|&v| g.shape(v).map(<[Dim]>::to_vec)).collect::<Option<_>>()?;
+            let shapes: Vec<Vec<Dim>> = node
+                .inputs
+                .iter()
+                .flatten()
+                .map(|&v| g.shape(v).map(<[Dim]>::to_vec))
+                .collect::<Option<_>>()?;
             let first = shapes.first()?.clone();
             let axis = norm_axis(attr::int(attrs, "axis")?, first.len())?;
             let total: Option<u64> = shapes.iter().map(|s| s.get(axis).and_then(known)).sum();
@@ -149,7 +192,8 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
             let x = shape_of(g, n, 0)?;
             let axes = ints_attr_or_input(g, n, "axes", 1)?;
             let rank = x.len() + axes.len();
-            let mut axes: Vec<usize> = axes.iter().map(|&a| norm_axis(a, rank)).collect::<Option<_>>()?;
+            let mut axes: Vec<usize> =
+                axes.iter().map(|&a| norm_axis(a, rank)).collect::<Option<_>>()?;
             axes.sort_unstable();
             let mut out = x;
             for a in axes {
@@ -164,11 +208,23 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
             let x = shape_of(g, n, 0)?;
             let axes: Vec<usize> = match ints_attr_or_input(g, n, "axes", 1) {
                 Some(a) => a.iter().map(|&a| norm_axis(a, x.len())).collect::<Option<_>>()?,
-                None => x.iter().enumerate().filter(|(_, d)| **d == Dim::Known(1)).map(|(i, _)| i).collect(),
+                None => x
+                    .iter()
+                    .enumerate()
+                    .filter(|(_, d)| **d == Dim::Known(1))
+                    .map(|(i, _)| i)
+                    .collect(),
             };
-            Some(x.into_iter().enumerate().filter(|(i, _)| !axes.contains(i)).map(|(_, d)| d).collect())
+            Some(
+                x.into_iter()
+                    .enumerate()
+                    .filter(|(i, _)| !axes.contains(i))
+                    .map(|(_, d)| d)
+                    .collect(),
+            )
         }
-        "ReduceMean" | "ReduceSum" | "ReduceMax" | "ReduceMin" | "ReduceProd" | "ReduceL2" | "ReduceSumSquare" => {
+        "ReduceMean" | "ReduceSum" | "ReduceMax" | "ReduceMin" | "ReduceProd" | "ReduceL2"
+        | "ReduceSumSquare" => {
             let x = shape_of(g, n, 0)?;
             let keep = attr::int(attrs, "keepdims").unwrap_or(1) == 1;
             let axes: Vec<usize> = match ints_attr_or_input(g, n, "axes", 1) {
@@ -188,7 +244,8 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
         }
         "Resize" | "Upsample" => {
             let x = shape_of(g, n, 0)?;
-            let (scales_slot, sizes_slot) = if node.op == "Upsample" { (1, usize::MAX) } else { (2, 3) };
+            let (scales_slot, sizes_slot) =
+                if node.op == "Upsample" { (1, usize::MAX) } else { (2, 3) };
             if let Some(sizes) = g.input(n, sizes_slot).and_then(|v| g.constant_i64(v)) {
                 if sizes.len() == x.len() {
                     return Some(sizes.iter().map(|&s| Dim::Known(s.max(0) as u64)).collect());
@@ -230,8 +287,12 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
             let x = shape_of(g, n, 0)?;
             let starts = ints_attr_or_input(g, n, "starts", 1)?;
             let ends = ints_attr_or_input(g, n, "ends", 2)?;
-            let axes = ints_attr_or_input(g, n, "axes", 3).unwrap_or_else(|| (0..starts.len() as i64).collect());
-            let steps = g.input(n, 4).and_then(|v| g.constant_i64(v)).unwrap_or_else(|| vec![1; starts.len()]);
+            let axes = ints_attr_or_input(g, n, "axes", 3)
+                .unwrap_or_else(|| (0..starts.len() as i64).collect());
+            let steps = g
+                .input(n, 4)
+                .and_then(|v| g.constant_i64(v))
+                .unwrap_or_else(|| vec![1; starts.len()]);
             let mut out = x.clone();
             for (i, &axis) in axes.iter().enumerate() {
                 let a = norm_axis(axis, x.len())?;
@@ -239,7 +300,12 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
                     out[a] = Dim::Unknown;
                     continue;
                 };
-                out[a] = Dim::Known(slice_len(len as i64, *starts.get(i)?, *ends.get(i)?, *steps.get(i)?)?);
+                out[a] = Dim::Known(slice_len(
+                    len as i64,
+                    *starts.get(i)?,
+                    *ends.get(i)?,
+                    *steps.get(i)?,
+                )?);
             }
             Some(out)
         }
@@ -274,13 +340,21 @@ fn slice_len(len: i64, start: i64, end: i64, step: i64) -> Option<u64> {
 
 /// `[N, C, spatial…]` of a convolution or pooling: [O2] in the ONNX operator
 /// specification, floor((in + pad_begin + pad_end - dilation*(kernel-1) - 1) / stride) + 1.
-fn spatial(x: &[Dim], channels: u64, kernel: &[Dim], attrs: &[crate::proto::AttributeProto], ceil: bool) -> Option<Vec<Dim>> {
+fn spatial(
+    x: &[Dim],
+    channels: u64,
+    kernel: &[Dim],
+    attrs: &[crate::proto::AttributeProto],
+    ceil: bool,
+) -> Option<Vec<Dim>> {
     let rank = x.len().checked_sub(2)?;
     if kernel.len() != rank {
         return None;
     }
-    let strides = attr::ints(attrs, "strides").map(<[i64]>::to_vec).unwrap_or_else(|| vec![1; rank]);
-    let dilations = attr::ints(attrs, "dilations").map(<[i64]>::to_vec).unwrap_or_else(|| vec![1; rank]);
+    let strides =
+        attr::ints(attrs, "strides").map(<[i64]>::to_vec).unwrap_or_else(|| vec![1; rank]);
+    let dilations =
+        attr::ints(attrs, "dilations").map(<[i64]>::to_vec).unwrap_or_else(|| vec![1; rank]);
     let pads = attr::ints(attrs, "pads").map(<[i64]>::to_vec).unwrap_or_else(|| vec![0; 2 * rank]);
     let auto_pad = attr::string(attrs, "auto_pad").unwrap_or("NOTSET");
     let mut out = vec![x[0].clone(), Dim::Known(channels)];
@@ -364,7 +438,8 @@ fn reshape(x: &[Dim], target: &[i64], allow_zero: bool) -> Option<Vec<Dim>> {
     }
     if let Some(i) = infer_at {
         let total: Option<u64> = x.iter().map(known).product();
-        let rest: Option<u64> = out.iter().enumerate().filter(|(j, _)| *j != i).map(|(_, d)| known(d)).product();
+        let rest: Option<u64> =
+            out.iter().enumerate().filter(|(j, _)| *j != i).map(|(_, d)| known(d)).product();
         if let (Some(total), Some(rest)) = (total, rest) {
             if rest > 0 && total % rest == 0 {
                 out[i] = Dim::Known(total / rest);
@@ -396,17 +471,36 @@ mod tests {
     fn conv_output_size_follows_the_spec() {
         // [O2]: floor((32 + 1 + 1 - 1*(3-1) - 1) / 2) + 1 = 16.
         let attrs = vec![
-            crate::proto::AttributeProto { name: "strides".into(), ints: vec![2, 2], ..Default::default() },
-            crate::proto::AttributeProto { name: "pads".into(), ints: vec![1, 1, 1, 1], ..Default::default() },
+            crate::proto::AttributeProto {
+                name: "strides".into(),
+                ints: vec![2, 2],
+                ..Default::default()
+            },
+            crate::proto::AttributeProto {
+                name: "pads".into(),
+                ints: vec![1, 1, 1, 1],
+                ..Default::default()
+            },
         ];
         let out = spatial(&k(&[1, 3, 32, 32]), 8, &k(&[3, 3]), &attrs, false).unwrap();
         assert_eq!(out, k(&[1, 8, 16, 16]));
         // 7x7 stride 2 pad 3 on 224: floor((224 + 6 - 6 - 1) / 2) + 1 = 112.
         let attrs7 = vec![
-            crate::proto::AttributeProto { name: "strides".into(), ints: vec![2, 2], ..Default::default() },
-            crate::proto::AttributeProto { name: "pads".into(), ints: vec![3, 3, 3, 3], ..Default::default() },
+            crate::proto::AttributeProto {
+                name: "strides".into(),
+                ints: vec![2, 2],
+                ..Default::default()
+            },
+            crate::proto::AttributeProto {
+                name: "pads".into(),
+                ints: vec![3, 3, 3, 3],
+                ..Default::default()
+            },
         ];
-        assert_eq!(spatial(&k(&[1, 3, 224, 224]), 64, &k(&[7, 7]), &attrs7, false).unwrap(), k(&[1, 64, 112, 112]));
+        assert_eq!(
+            spatial(&k(&[1, 3, 224, 224]), 64, &k(&[7, 7]), &attrs7, false).unwrap(),
+            k(&[1, 64, 112, 112])
+        );
     }
 
     #[test]
@@ -423,6 +517,9 @@ mod tests {
         assert_eq!(slice_len(8, -1, i64::MIN, -1), Some(8));
         assert_eq!(reshape(&k(&[2, 3, 4]), &[0, -1], false).unwrap(), k(&[2, 12]));
         let sym = vec![Dim::Symbol("N".into()), Dim::Known(3), Dim::Known(4)];
-        assert_eq!(reshape(&sym, &[0, -1], false).unwrap(), vec![Dim::Symbol("N".into()), Dim::Known(12)]);
+        assert_eq!(
+            reshape(&sym, &[0, -1], false).unwrap(),
+            vec![Dim::Symbol("N".into()), Dim::Known(12)]
+        );
     }
 }

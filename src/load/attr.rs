@@ -36,5 +36,7 @@ pub fn tensor<'a>(attrs: &'a [AttributeProto], name: &str) -> Option<&'a TensorP
 /// Every subgraph a node carries (If branches, Loop and Scan bodies), with
 /// the attribute that holds it.
 pub fn subgraphs(node: &NodeProto) -> impl Iterator<Item = (&str, &GraphProto)> {
-    node.attribute.iter().flat_map(|a| a.g.iter().chain(a.graphs.iter()).map(move |g| (a.name.as_str(), g)))
+    node.attribute
+        .iter()
+        .flat_map(|a| a.g.iter().chain(a.graphs.iter()).map(move |g| (a.name.as_str(), g)))
 }

@@ -160,21 +160,34 @@ impl ExternalData {
         for entry in &tensor.external_data {
             match entry.key.as_str() {
                 "location" => location = Some(entry.value.as_str()),
-                "offset" => offset = parse_u64(&entry.value).ok_or_else(|| bad(&what(), "offset is not a number"))?,
-                "length" => length = Some(parse_u64(&entry.value).ok_or_else(|| bad(&what(), "length is not a number"))?),
+                "offset" => {
+                    offset = parse_u64(&entry.value)
+                        .ok_or_else(|| bad(&what(), "offset is not a number"))?
+                }
+                "length" => {
+                    length = Some(
+                        parse_u64(&entry.value)
+                            .ok_or_else(|| bad(&what(), "length is not a number"))?,
+                    )
+                }
                 _ => {}
             }
         }
         let location = location.ok_or_else(|| bad(&what(), "has no location"))?;
-        let relative = check_relative(location).map_err(|m| bad(&what(), &format!("location '{location}' {m}")))?;
+        let relative = check_relative(location)
+            .map_err(|m| bad(&what(), &format!("location '{location}' {m}")))?;
         let Some(canonical_dir) = &self.canonical_dir else {
             return Err(bad(&what(), "cannot be resolved: the model has no folder"));
         };
         let joined = self.dir.join(relative);
-        let file = fs::canonicalize(&joined)
-            .map_err(|e| bad(&what(), &format!("file '{location}' cannot be opened: {}", io_message(&e))))?;
+        let file = fs::canonicalize(&joined).map_err(|e| {
+            bad(&what(), &format!("file '{location}' cannot be opened: {}", io_message(&e)))
+        })?;
         if !file.starts_with(canonical_dir) {
-            return Err(bad(&what(), &format!("location '{location}' leads outside the model's folder")));
+            return Err(bad(
+                &what(),
+                &format!("location '{location}' leads outside the model's folder"),
+            ));
         }
         let meta = fs::metadata(&file)
             .map_err(|e| bad(&what(), &format!("file '{location}': {}", io_message(&e))))?;
@@ -183,11 +196,14 @@ impl ExternalData {
         }
         let size = meta.len();
         let length = length.unwrap_or(size.saturating_sub(offset));
-        let end = offset.checked_add(length).ok_or_else(|| bad(&what(), "offset + length overflows"))?;
+        let end =
+            offset.checked_add(length).ok_or_else(|| bad(&what(), "offset + length overflows"))?;
         if end > size {
             return Err(bad(
                 &what(),
-                &format!("offset {offset} + length {length} is past the end of '{location}' ({size} bytes)"),
+                &format!(
+                    "offset {offset} + length {length} is past the end of '{location}' ({size} bytes)"
+                ),
             ));
         }
         Ok(Some(ExternalRef { file, offset, length }))
@@ -224,7 +240,10 @@ fn check_relative(location: &str) -> std::result::Result<&Path, &'static str> {
         }
     }
     // Windows-style absolute or parent paths, whatever platform reads them.
-    if location.starts_with('\\') || location.contains(":\\") || location.split(['/', '\\']).any(|p| p == "..") {
+    if location.starts_with('\\')
+        || location.contains(":\\")
+        || location.split(['/', '\\']).any(|p| p == "..")
+    {
         return Err("is not a plain relative path");
     }
     Ok(path)
@@ -274,7 +293,10 @@ mod tests {
     #[test]
     fn decode_rejects_garbage() {
         assert_eq!(decode(Bytes::new()).unwrap_err().kind(), ErrorKind::Decode);
-        assert_eq!(decode(Bytes::from_static(b"hello, this is text\n")).unwrap_err().kind(), ErrorKind::Decode);
+        assert_eq!(
+            decode(Bytes::from_static(b"hello, this is text\n")).unwrap_err().kind(),
+            ErrorKind::Decode
+        );
         // A valid protobuf message that is not a model: no graph.
         let empty = ModelProto { ir_version: 8, ..Default::default() }.encode_to_vec();
         assert!(decode(Bytes::from(empty)).unwrap_err().message().contains("no graph"));

@@ -42,7 +42,10 @@ pub fn dtype_name(data_type: i32) -> &'static str {
 pub fn dtype_bits(data_type: i32) -> Option<u64> {
     Some(match DataType::try_from(data_type).ok()? {
         DataType::Bool | DataType::Uint8 | DataType::Int8 => 8,
-        DataType::Float8e4m3fn | DataType::Float8e4m3fnuz | DataType::Float8e5m2 | DataType::Float8e5m2fnuz => 8,
+        DataType::Float8e4m3fn
+        | DataType::Float8e4m3fnuz
+        | DataType::Float8e5m2
+        | DataType::Float8e5m2fnuz => 8,
         DataType::Uint16 | DataType::Int16 | DataType::Float16 | DataType::Bfloat16 => 16,
         DataType::Float | DataType::Int32 | DataType::Uint32 => 32,
         DataType::Double | DataType::Int64 | DataType::Uint64 | DataType::Complex64 => 64,
@@ -96,7 +99,11 @@ pub fn for_each_tensor<'a>(graph: &'a GraphProto, f: &mut dyn FnMut(&'a TensorPr
 
 /// The raw little-endian payload of a tensor stored as `raw_data` or in an
 /// external file; `None` when the values live in the typed `*_data` fields.
-fn raw_payload(tensor: &TensorProto, external: &ExternalData, max_bytes: u64) -> Result<Option<Vec<u8>>> {
+fn raw_payload(
+    tensor: &TensorProto,
+    external: &ExternalData,
+    max_bytes: u64,
+) -> Result<Option<Vec<u8>>> {
     if let Some(r) = external.resolve(tensor)? {
         if r.length > max_bytes {
             return Err(too_big(tensor, r.length, max_bytes));
@@ -125,19 +132,35 @@ pub fn read_f32(tensor: &TensorProto, external: &ExternalData, max_bytes: u64) -
             check_len(tensor, raw.len() as u64)?;
             match dtype {
                 DataType::Float => chunks::<4>(&raw).map(f32::from_le_bytes).collect(),
-                DataType::Double => chunks::<8>(&raw).map(|b| f64::from_le_bytes(b) as f32).collect(),
-                DataType::Float16 => chunks::<2>(&raw).map(|b| f16_to_f32(u16::from_le_bytes(b))).collect(),
-                DataType::Bfloat16 => {
-                    chunks::<2>(&raw).map(|b| f32::from_bits((u16::from_le_bytes(b) as u32) << 16)).collect()
+                DataType::Double => {
+                    chunks::<8>(&raw).map(|b| f64::from_le_bytes(b) as f32).collect()
                 }
+                DataType::Float16 => {
+                    chunks::<2>(&raw).map(|b| f16_to_f32(u16::from_le_bytes(b))).collect()
+                }
+                DataType::Bfloat16 => chunks::<2>(&raw)
+                    .map(|b| f32::from_bits((u16::from_le_bytes(b) as u32) << 16))
+                    .collect(),
                 DataType::Int8 => raw.iter().map(|&b| b as i8 as f32).collect(),
                 DataType::Uint8 | DataType::Bool => raw.iter().map(|&b| b as f32).collect(),
-                DataType::Int16 => chunks::<2>(&raw).map(|b| i16::from_le_bytes(b) as f32).collect(),
-                DataType::Uint16 => chunks::<2>(&raw).map(|b| u16::from_le_bytes(b) as f32).collect(),
-                DataType::Int32 => chunks::<4>(&raw).map(|b| i32::from_le_bytes(b) as f32).collect(),
-                DataType::Uint32 => chunks::<4>(&raw).map(|b| u32::from_le_bytes(b) as f32).collect(),
-                DataType::Int64 => chunks::<8>(&raw).map(|b| i64::from_le_bytes(b) as f32).collect(),
-                DataType::Uint64 => chunks::<8>(&raw).map(|b| u64::from_le_bytes(b) as f32).collect(),
+                DataType::Int16 => {
+                    chunks::<2>(&raw).map(|b| i16::from_le_bytes(b) as f32).collect()
+                }
+                DataType::Uint16 => {
+                    chunks::<2>(&raw).map(|b| u16::from_le_bytes(b) as f32).collect()
+                }
+                DataType::Int32 => {
+                    chunks::<4>(&raw).map(|b| i32::from_le_bytes(b) as f32).collect()
+                }
+                DataType::Uint32 => {
+                    chunks::<4>(&raw).map(|b| u32::from_le_bytes(b) as f32).collect()
+                }
+                DataType::Int64 => {
+                    chunks::<8>(&raw).map(|b| i64::from_le_bytes(b) as f32).collect()
+                }
+                DataType::Uint64 => {
+                    chunks::<8>(&raw).map(|b| u64::from_le_bytes(b) as f32).collect()
+                }
                 _ => return Err(unsupported(tensor)),
             }
         }
@@ -145,7 +168,9 @@ pub fn read_f32(tensor: &TensorProto, external: &ExternalData, max_bytes: u64) -
             DataType::Float => tensor.float_data.clone(),
             DataType::Double => tensor.double_data.iter().map(|&v| v as f32).collect(),
             DataType::Float16 => tensor.int32_data.iter().map(|&v| f16_to_f32(v as u16)).collect(),
-            DataType::Bfloat16 => tensor.int32_data.iter().map(|&v| f32::from_bits((v as u32) << 16)).collect(),
+            DataType::Bfloat16 => {
+                tensor.int32_data.iter().map(|&v| f32::from_bits((v as u32) << 16)).collect()
+            }
             DataType::Int8
             | DataType::Uint8
             | DataType::Int16
@@ -153,14 +178,21 @@ pub fn read_f32(tensor: &TensorProto, external: &ExternalData, max_bytes: u64) -
             | DataType::Int32
             | DataType::Bool => tensor.int32_data.iter().map(|&v| v as f32).collect(),
             DataType::Int64 => tensor.int64_data.iter().map(|&v| v as f32).collect(),
-            DataType::Uint32 | DataType::Uint64 => tensor.uint64_data.iter().map(|&v| v as f32).collect(),
+            DataType::Uint32 | DataType::Uint64 => {
+                tensor.uint64_data.iter().map(|&v| v as f32).collect()
+            }
             _ => return Err(unsupported(tensor)),
         },
     };
     if values.len() as u64 != n {
         return Err(Error::new(
             ErrorKind::Invalid,
-            format!("tensor '{}' holds {} values but its dims {:?} need {n}", tensor.name, values.len(), tensor.dims),
+            format!(
+                "tensor '{}' holds {} values but its dims {:?} need {n}",
+                tensor.name,
+                values.len(),
+                tensor.dims
+            ),
         ));
     }
     Ok(values)
@@ -175,7 +207,9 @@ pub fn read_i64(tensor: &TensorProto, external: &ExternalData, max_bytes: u64) -
             check_len(tensor, raw.len() as u64)?;
             match dtype {
                 DataType::Int64 => chunks::<8>(&raw).map(i64::from_le_bytes).collect(),
-                DataType::Int32 => chunks::<4>(&raw).map(|b| i32::from_le_bytes(b) as i64).collect(),
+                DataType::Int32 => {
+                    chunks::<4>(&raw).map(|b| i32::from_le_bytes(b) as i64).collect()
+                }
                 _ => return Err(unsupported(tensor)),
             }
         }
@@ -188,7 +222,12 @@ pub fn read_i64(tensor: &TensorProto, external: &ExternalData, max_bytes: u64) -
     if values.len() as u64 != n {
         return Err(Error::new(
             ErrorKind::Invalid,
-            format!("tensor '{}' holds {} values but its dims {:?} need {n}", tensor.name, values.len(), tensor.dims),
+            format!(
+                "tensor '{}' holds {} values but its dims {:?} need {n}",
+                tensor.name,
+                values.len(),
+                tensor.dims
+            ),
         ));
     }
     Ok(values)
@@ -238,18 +277,28 @@ fn check_len(tensor: &TensorProto, len: u64) -> Result<()> {
 }
 
 fn bad_dims(tensor: &TensorProto) -> Error {
-    Error::new(ErrorKind::Invalid, format!("tensor '{}' has invalid dims {:?}", tensor.name, tensor.dims))
+    Error::new(
+        ErrorKind::Invalid,
+        format!("tensor '{}' has invalid dims {:?}", tensor.name, tensor.dims),
+    )
 }
 
 fn unsupported(tensor: &TensorProto) -> Error {
     Error::new(
         ErrorKind::Invalid,
-        format!("tensor '{}' has element type {} which cannot be read as numbers", tensor.name, dtype_name(tensor.data_type)),
+        format!(
+            "tensor '{}' has element type {} which cannot be read as numbers",
+            tensor.name,
+            dtype_name(tensor.data_type)
+        ),
     )
 }
 
 fn too_big(tensor: &TensorProto, len: u64, max: u64) -> Error {
-    Error::new(ErrorKind::Limit, format!("tensor '{}' payload is {len} bytes, above the limit of {max}", tensor.name))
+    Error::new(
+        ErrorKind::Limit,
+        format!("tensor '{}' payload is {len} bytes, above the limit of {max}", tensor.name),
+    )
 }
 
 fn io_err(tensor: &TensorProto, e: &std::io::Error) -> Error {
@@ -284,12 +333,27 @@ mod tests {
 
     #[test]
     fn reads_inline_values() {
-        let t = TensorProto { dims: vec![2], data_type: DataType::Float as i32, float_data: vec![1.5, -2.0], ..Default::default() };
+        let t = TensorProto {
+            dims: vec![2],
+            data_type: DataType::Float as i32,
+            float_data: vec![1.5, -2.0],
+            ..Default::default()
+        };
         assert_eq!(read_f32(&t, &ExternalData::none(), 1 << 20).unwrap(), vec![1.5, -2.0]);
         let raw: Vec<u8> = [3i64, -1].iter().flat_map(|v| v.to_le_bytes()).collect();
-        let t = TensorProto { dims: vec![2], data_type: DataType::Int64 as i32, raw_data: raw.into(), ..Default::default() };
+        let t = TensorProto {
+            dims: vec![2],
+            data_type: DataType::Int64 as i32,
+            raw_data: raw.into(),
+            ..Default::default()
+        };
         assert_eq!(read_i64(&t, &ExternalData::none(), 1 << 20).unwrap(), vec![3, -1]);
-        let short = TensorProto { dims: vec![3], data_type: DataType::Float as i32, float_data: vec![1.0], ..Default::default() };
+        let short = TensorProto {
+            dims: vec![3],
+            data_type: DataType::Float as i32,
+            float_data: vec![1.0],
+            ..Default::default()
+        };
         assert!(read_f32(&short, &ExternalData::none(), 1 << 20).is_err());
     }
 }

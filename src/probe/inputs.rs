@@ -82,7 +82,12 @@ pub fn input_specs(g: &Graph) -> Vec<InputSpec> {
                 let dims = g.constant_dims(table)?;
                 dims.first().and_then(|&d| u64::try_from(d).ok())
             });
-            InputSpec { name: value.name.clone(), dtype: value.fact.dtype, shape: value.fact.shape.clone(), vocab }
+            InputSpec {
+                name: value.name.clone(),
+                dtype: value.fact.dtype,
+                shape: value.fact.shape.clone(),
+                vocab,
+            }
         })
         .collect()
 }
@@ -153,13 +158,18 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
     for name in config.shapes.keys().chain(config.fills.keys()) {
         if !specs.iter().any(|s| &s.name == name) {
             let names: Vec<&str> = specs.iter().map(|s| s.name.as_str()).collect();
-            return Err(usage(format!("the model has no input named '{name}' (inputs: {})", names.join(", "))));
+            return Err(usage(format!(
+                "the model has no input named '{name}' (inputs: {})",
+                names.join(", ")
+            )));
         }
     }
     // The batch of one pass: fixed when an input declares a concrete
     // leading dimension, otherwise all samples at once.
     let fixed_batch = specs.iter().find_map(|s| match s.shape.as_ref()?.first()? {
-        Dim::Known(k) if !config.shapes.contains_key(&s.name) && !arrays.contains_key(&s.name) => Some(*k as usize),
+        Dim::Known(k) if !config.shapes.contains_key(&s.name) && !arrays.contains_key(&s.name) => {
+            Some(*k as usize)
+        }
         _ => None,
     });
     let fed_batch = arrays.values().next().and_then(|a| a.shape().first().copied());
@@ -167,7 +177,12 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
     let pass_batch = match (fixed_batch, fed_batch) {
         (Some(k), _) if k > 0 => k,
         (_, Some(n)) => n,
-        _ => config.shapes.values().next().and_then(|s| s.first().map(|&d| d as usize)).unwrap_or(samples),
+        _ => config
+            .shapes
+            .values()
+            .next()
+            .and_then(|s| s.first().map(|&d| d as usize))
+            .unwrap_or(samples),
     };
     if pass_batch == 0 {
         return Err(usage("an input declares a batch of 0"));
@@ -180,7 +195,10 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
             if let Some(first) = shape.first_mut() {
                 *first = pass_batch as u64;
             }
-            let how = format!("from {}", config.feed.as_deref().map_or(String::new(), |p| p.display().to_string()));
+            let how = format!(
+                "from {}",
+                config.feed.as_deref().map_or(String::new(), |p| p.display().to_string())
+            );
             (shape, Fill::Array(a), how)
         } else {
             let shape = resolve_shape(s, pass_batch, config)?;
@@ -202,7 +220,14 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
         };
         inputs.push(Fed { name: s.name.clone(), dtype: s.dtype, pass_shape, how, source });
     }
-    Ok(Feeding { inputs, pass_batch, passes, samples: pass_batch * passes, seed: config.seed, feed })
+    Ok(Feeding {
+        inputs,
+        pass_batch,
+        passes,
+        samples: pass_batch * passes,
+        seed: config.seed,
+        feed,
+    })
 }
 
 fn resolve_shape(s: &InputSpec, pass_batch: usize, config: &InputConfig) -> Result<Vec<u64>> {
@@ -275,7 +300,9 @@ pub fn values(feeding: &Feeding, pass: usize) -> Vec<Values> {
                                 let z: f32 = rng.sample(StandardNormal);
                                 (z * s) as f64
                             }
-                            Fill::Random(Dist::Uniform, s) => rng.random_range(-1.0f32..=1.0) as f64 * *s as f64,
+                            Fill::Random(Dist::Uniform, s) => {
+                                rng.random_range(-1.0f32..=1.0) as f64 * *s as f64
+                            }
                             Fill::Tokens(v) => rng.random_range(0..*v) as f64,
                             _ => unreachable!("only random fills are drawn"),
                         };
@@ -309,15 +336,23 @@ fn read_feed(path: &Path, specs: &[InputSpec]) -> Result<BTreeMap<String, ArrayD
     let mut out = BTreeMap::new();
     if is_npz {
         let file = File::open(path).map_err(|e| bad(crate::load::io_message(&e)))?;
-        let mut npz = NpzReader::new(file).map_err(|e| bad(format!("not a readable .npz file ({e})")))?;
+        let mut npz =
+            NpzReader::new(file).map_err(|e| bad(format!("not a readable .npz file ({e})")))?;
         let names = npz.names().map_err(|e| bad(format!("not a readable .npz file ({e})")))?;
         for s in specs {
-            let entry = names.iter().find(|n| n.as_str() == s.name || n.strip_suffix(".npy") == Some(s.name.as_str()));
+            let entry = names
+                .iter()
+                .find(|n| n.as_str() == s.name || n.strip_suffix(".npy") == Some(s.name.as_str()));
             let Some(entry) = entry else {
-                return Err(bad(format!("has no entry for input '{}' (entries: {})", s.name, names.join(", "))));
+                return Err(bad(format!(
+                    "has no entry for input '{}' (entries: {})",
+                    s.name,
+                    names.join(", ")
+                )));
             };
             let entry = entry.clone();
-            let array = read_npz_entry(&mut npz, &entry).map_err(|m| bad(format!("entry '{entry}': {m}")))?;
+            let array = read_npz_entry(&mut npz, &entry)
+                .map_err(|m| bad(format!("entry '{entry}': {m}")))?;
             out.insert(s.name.clone(), array);
         }
     } else {
@@ -333,7 +368,9 @@ fn read_feed(path: &Path, specs: &[InputSpec]) -> Result<BTreeMap<String, ArrayD
     }
     let batches: Vec<usize> = out.values().filter_map(|a| a.shape().first().copied()).collect();
     if batches.windows(2).any(|w| w[0] != w[1]) {
-        return Err(bad("its arrays disagree on the number of samples (the first axis)".to_owned()));
+        return Err(
+            bad("its arrays disagree on the number of samples (the first axis)".to_owned()),
+        );
     }
     Ok(out)
 }
@@ -353,11 +390,16 @@ fn read_npy_any(bytes: &[u8]) -> std::result::Result<ArrayD<f64>, String> {
     }
     match ArrayD::<bool>::read_npy(bytes) {
         Ok(a) => Ok(a.mapv(|v| if v { 1.0 } else { 0.0 })),
-        Err(e) => Err(format!("not a readable .npy array of float32, float64, int64, int32 or bool ({e})")),
+        Err(e) => Err(format!(
+            "not a readable .npy array of float32, float64, int64, int32 or bool ({e})"
+        )),
     }
 }
 
-fn read_npz_entry<R: std::io::Read + std::io::Seek>(npz: &mut NpzReader<R>, name: &str) -> std::result::Result<ArrayD<f64>, String> {
+fn read_npz_entry<R: std::io::Read + std::io::Seek>(
+    npz: &mut NpzReader<R>,
+    name: &str,
+) -> std::result::Result<ArrayD<f64>, String> {
     if let Ok(a) = npz.by_name::<ndarray::OwnedRepr<f32>, ndarray::IxDyn>(name) {
         return Ok(a.mapv(|v| v as f64));
     }
@@ -377,11 +419,14 @@ fn read_npz_entry<R: std::io::Read + std::io::Seek>(npz: &mut NpzReader<R>, name
 }
 
 fn sha256_of(path: &Path) -> Result<String> {
-    let mut file = File::open(path).map_err(|e| Error::new(ErrorKind::Usage, crate::load::io_message(&e)).at(path))?;
+    let mut file = File::open(path)
+        .map_err(|e| Error::new(ErrorKind::Usage, crate::load::io_message(&e)).at(path))?;
     let mut hasher = Sha256::new();
     let mut buf = vec![0u8; 1 << 16];
     loop {
-        let n = file.read(&mut buf).map_err(|e| Error::new(ErrorKind::Io, crate::load::io_message(&e)).at(path))?;
+        let n = file
+            .read(&mut buf)
+            .map_err(|e| Error::new(ErrorKind::Io, crate::load::io_message(&e)).at(path))?;
         if n == 0 {
             break;
         }
@@ -399,7 +444,12 @@ mod tests {
     use super::*;
 
     fn spec(name: &str, dims: Vec<Dim>) -> InputSpec {
-        InputSpec { name: name.into(), dtype: DataType::Float as i32, shape: Some(dims), vocab: None }
+        InputSpec {
+            name: name.into(),
+            dtype: DataType::Float as i32,
+            shape: Some(dims),
+            vocab: None,
+        }
     }
 
     fn config(samples: usize) -> InputConfig {
@@ -451,8 +501,18 @@ mod tests {
 
     #[test]
     fn tokens_and_masks() {
-        let ids = InputSpec { name: "ids".into(), dtype: DataType::Int64 as i32, shape: Some(vec![Dim::Symbol("N".into()), Dim::Known(8)]), vocab: Some(50) };
-        let mask = InputSpec { name: "mask".into(), dtype: DataType::Int64 as i32, shape: Some(vec![Dim::Symbol("N".into()), Dim::Known(8)]), vocab: None };
+        let ids = InputSpec {
+            name: "ids".into(),
+            dtype: DataType::Int64 as i32,
+            shape: Some(vec![Dim::Symbol("N".into()), Dim::Known(8)]),
+            vocab: Some(50),
+        };
+        let mask = InputSpec {
+            name: "mask".into(),
+            dtype: DataType::Int64 as i32,
+            shape: Some(vec![Dim::Symbol("N".into()), Dim::Known(8)]),
+            vocab: None,
+        };
         let f = plan(&[ids, mask], &config(3)).unwrap();
         let v = values(&f, 0);
         let Values::I64(ids) = &v[0] else { panic!() };

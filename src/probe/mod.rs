@@ -111,7 +111,12 @@ enum Role {
 }
 
 /// Runs the model over every pass of `feeding` and measures every watch.
-pub fn run(source: ModelSource<'_>, watches: &[Watch], feeding: &Feeding, progress: &dyn Progress) -> Result<ProbeResult> {
+pub fn run(
+    source: ModelSource<'_>,
+    watches: &[Watch],
+    feeding: &Feeding,
+    progress: &dyn Progress,
+) -> Result<ProbeResult> {
     match catch_unwind(AssertUnwindSafe(|| run_inner(source, watches, feeding, progress))) {
         Ok(r) => r,
         Err(panic) => {
@@ -120,7 +125,10 @@ pub fn run(source: ModelSource<'_>, watches: &[Watch], feeding: &Feeding, progre
                 .map(String::as_str)
                 .or_else(|| panic.downcast_ref::<&str>().copied())
                 .unwrap_or("unknown cause");
-            Err(Error::new(ErrorKind::Probe, format!("the inference engine (tract) failed while running the model: {what}")))
+            Err(Error::new(
+                ErrorKind::Probe,
+                format!("the inference engine (tract) failed while running the model: {what}"),
+            ))
         }
     }
 }
@@ -130,21 +138,32 @@ fn tract_err(what: &str, e: &anyhow::Error) -> Error {
     Error::new(ErrorKind::Probe, format!("{what}: {}", chain.join(": ")))
 }
 
-fn run_inner(source: ModelSource<'_>, watches: &[Watch], feeding: &Feeding, progress: &dyn Progress) -> Result<ProbeResult> {
+fn run_inner(
+    source: ModelSource<'_>,
+    watches: &[Watch],
+    feeding: &Feeding,
+    progress: &dyn Progress,
+) -> Result<ProbeResult> {
     progress.step("preparing the model", 1);
     let onnx = tract_onnx::onnx();
     let (proto, dir) = match source {
         ModelSource::Path(p) => {
-            let proto = onnx.proto_model_for_path(p).map_err(|e| tract_err("tract could not read the model", &e))?;
+            let proto = onnx
+                .proto_model_for_path(p)
+                .map_err(|e| tract_err("tract could not read the model", &e))?;
             let dir = p.parent().map(|d| if d.as_os_str().is_empty() { Path::new(".") } else { d });
             (proto, dir.and_then(|d| d.to_str()).map(str::to_owned))
         }
         ModelSource::Bytes(b) => {
-            let proto = onnx.proto_model_for_read(&mut &b[..]).map_err(|e| tract_err("tract could not read the model", &e))?;
+            let proto = onnx
+                .proto_model_for_read(&mut &b[..])
+                .map_err(|e| tract_err("tract could not read the model", &e))?;
             (proto, None)
         }
     };
-    let parsed = onnx.parse(&proto, dir.as_deref()).map_err(|e| tract_err("tract could not load the model", &e))?;
+    let parsed = onnx
+        .parse(&proto, dir.as_deref())
+        .map_err(|e| tract_err("tract could not load the model", &e))?;
     drop(proto);
     if !parsed.unresolved_inputs.is_empty() {
         return Err(Error::new(
@@ -159,12 +178,14 @@ fn run_inner(source: ModelSource<'_>, watches: &[Watch], feeding: &Feeding, prog
     let mut order = Vec::with_capacity(input_outlets.len());
     for (i, outlet) in input_outlets.iter().enumerate() {
         let name = model.node(outlet.node).name.clone();
-        let fed = feeding
-            .inputs
-            .iter()
-            .position(|f| f.name == name)
-            .ok_or_else(|| Error::new(ErrorKind::Probe, format!("tract sees an input '{name}' the graph does not declare")))?;
-        let shape: Vec<usize> = feeding.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
+        let fed = feeding.inputs.iter().position(|f| f.name == name).ok_or_else(|| {
+            Error::new(
+                ErrorKind::Probe,
+                format!("tract sees an input '{name}' the graph does not declare"),
+            )
+        })?;
+        let shape: Vec<usize> =
+            feeding.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
         let dt = datum_type(&feeding.inputs[fed]);
         model
             .set_input_fact(i, InferenceFact::dt_shape(dt, shape))
@@ -193,7 +214,8 @@ fn run_inner(source: ModelSource<'_>, watches: &[Watch], feeding: &Feeding, prog
         roles_by_position.push((*b, *role));
     }
     model.select_output_outlets(&outs).map_err(|e| tract_err("tract", &e))?;
-    let mut typed = model.into_optimized().map_err(|e| tract_err("tract could not prepare the model", &e))?;
+    let mut typed =
+        model.into_optimized().map_err(|e| tract_err("tract could not prepare the model", &e))?;
     let final_outs = typed.output_outlets().map_err(|e| tract_err("tract", &e))?.to_vec();
     let mut watch_map: HashMap<(usize, usize), Vec<(usize, Role)>> = HashMap::new();
     for (i, (b, role)) in roles_by_position.iter().enumerate() {
@@ -208,9 +230,13 @@ fn run_inner(source: ModelSource<'_>, watches: &[Watch], feeding: &Feeding, prog
             source_roles.push((i, roles));
         }
     }
-    typed.select_output_outlets(&final_outs[..originals.len()]).map_err(|e| tract_err("tract", &e))?;
-    let plan = typed.into_runnable().map_err(|e| tract_err("tract could not plan the model", &e))?;
-    let mut state = tract_onnx::tract_core::plan::SimpleState::new(&plan).map_err(|e| tract_err("tract", &e))?;
+    typed
+        .select_output_outlets(&final_outs[..originals.len()])
+        .map_err(|e| tract_err("tract", &e))?;
+    let plan =
+        typed.into_runnable().map_err(|e| tract_err("tract could not plan the model", &e))?;
+    let mut state = tract_onnx::tract_core::plan::SimpleState::new(&plan)
+        .map_err(|e| tract_err("tract", &e))?;
     progress.advance();
 
     progress.step("running", feeding.passes as u64);
@@ -220,28 +246,46 @@ fn run_inner(source: ModelSource<'_>, watches: &[Watch], feeding: &Feeding, prog
         let values = inputs::values(feeding, pass);
         let mut tensors: TVec<TValue> = tvec![];
         for &fed in &order {
-            let shape: Vec<usize> = feeding.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
+            let shape: Vec<usize> =
+                feeding.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
             let t = to_tensor(&values[fed], &shape).map_err(|e| tract_err("tract", &e))?;
             tensors.push(t.into_tvalue());
         }
         let mut pending = Pending::new(watches);
         for (i, roles) in &source_roles {
             for &(b, role) in roles {
-                observe(&mut acc[b], &mut pending.slots[b], &watches[b], role, &tensors[*i], feeding.pass_batch)?;
+                observe(
+                    &mut acc[b],
+                    &mut pending.slots[b],
+                    &watches[b],
+                    role,
+                    &tensors[*i],
+                    feeding.pass_batch,
+                )?;
             }
         }
-        let result = state.run_plan_with_eval(tensors, |ctx, op_state, node, ins| -> TractResult<TVec<TValue>> {
-            let out = tract_onnx::tract_core::plan::eval(ctx, op_state, node, ins)?;
-            for (slot, value) in out.iter().enumerate() {
-                if let Some(roles) = watch_map.get(&(node.id, slot)) {
-                    for &(b, role) in roles {
-                        observe(&mut acc[b], &mut pending.slots[b], &watches[b], role, value, feeding.pass_batch)
+        let result = state.run_plan_with_eval(
+            tensors,
+            |ctx, op_state, node, ins| -> TractResult<TVec<TValue>> {
+                let out = tract_onnx::tract_core::plan::eval(ctx, op_state, node, ins)?;
+                for (slot, value) in out.iter().enumerate() {
+                    if let Some(roles) = watch_map.get(&(node.id, slot)) {
+                        for &(b, role) in roles {
+                            observe(
+                                &mut acc[b],
+                                &mut pending.slots[b],
+                                &watches[b],
+                                role,
+                                value,
+                                feeding.pass_batch,
+                            )
                             .map_err(|e| anyhow::anyhow!("{e}"))?;
+                        }
                     }
                 }
-            }
-            Ok(out)
-        });
+                Ok(out)
+            },
+        );
         let result = result.map_err(|e| tract_err("tract failed while running the model", &e))?;
         for (i, t) in result.iter().enumerate() {
             if let Ok(f) = t.cast_to::<f32>() {
@@ -272,7 +316,10 @@ struct Pending {
 impl Pending {
     fn new(watches: &[Watch]) -> Pending {
         Pending {
-            slots: watches.iter().map(|w| Slot { shortcut: None, branch: vec![None; w.branch.len()] }).collect(),
+            slots: watches
+                .iter()
+                .map(|w| Slot { shortcut: None, branch: vec![None; w.branch.len()] })
+                .collect(),
         }
     }
 }
@@ -299,7 +346,9 @@ fn to_tensor(values: &Values, shape: &[usize]) -> TractResult<Tensor> {
 /// A tensor's values as `f32`, and its shape.
 fn floats(t: &Tensor) -> Result<(Vec<usize>, std::borrow::Cow<'_, [f32]>)> {
     let shape = t.shape().to_vec();
-    let err = |e: anyhow::Error| Error::new(ErrorKind::Probe, format!("a watched tensor cannot be read as float32: {e}"));
+    let err = |e: anyhow::Error| {
+        Error::new(ErrorKind::Probe, format!("a watched tensor cannot be read as float32: {e}"))
+    };
     if t.datum_type() == f32::datum_type() {
         let view = t.try_as_plain_ram().map_err(err)?;
         let s = view.as_slice::<f32>().map_err(err)?;
@@ -313,11 +362,22 @@ fn floats(t: &Tensor) -> Result<(Vec<usize>, std::borrow::Cow<'_, [f32]>)> {
 /// Splits `x` into per-sample slices when its length is a multiple of the
 /// pass batch (the batch is the outermost axis in memory), else one slice.
 fn samples(x: &[f32], batch: usize) -> std::slice::Chunks<'_, f32> {
-    let n = if batch > 0 && !x.is_empty() && x.len() % batch == 0 { x.len() / batch } else { x.len().max(1) };
+    let n = if batch > 0 && !x.is_empty() && x.len() % batch == 0 {
+        x.len() / batch
+    } else {
+        x.len().max(1)
+    };
     x.chunks(n)
 }
 
-fn observe(acc: &mut BlockSamples, slot: &mut Slot, w: &Watch, role: Role, value: &TValue, batch: usize) -> Result<()> {
+fn observe(
+    acc: &mut BlockSamples,
+    slot: &mut Slot,
+    w: &Watch,
+    role: Role,
+    value: &TValue,
+    batch: usize,
+) -> Result<()> {
     match role {
         Role::Fork => {
             let (_, x) = floats(value)?;

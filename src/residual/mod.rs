@@ -207,7 +207,8 @@ fn join(
     signals: &[(usize, ValueId)],
     is_merge: bool,
 ) -> Result<(Shortcut, Vec<ValueId>, Vec<NodeId>), Reason> {
-    let paths: Vec<Option<Vec<NodeId>>> = signals.iter().map(|&(_, v)| path_from(g, fork, v)).collect();
+    let paths: Vec<Option<Vec<NodeId>>> =
+        signals.iter().map(|&(_, v)| path_from(g, fork, v)).collect();
     // The shortcut is the simplest eligible path; ties go to the fewest ops,
     // then to the lowest slot.
     let mut best: Option<(usize, Shortcut)> = None;
@@ -296,11 +297,13 @@ fn shortcut_kind(g: &Graph, path: &[NodeId], is_merge: bool) -> Option<(Shortcut
 /// Parent and depth of each item, where item `j` is inside item `i` when
 /// `i`'s branch holds `j`'s merge node.
 fn nesting<'a>(items: impl Iterator<Item = (NodeId, &'a [NodeId])>) -> Vec<(Option<usize>, usize)> {
-    let items: Vec<(NodeId, HashSet<NodeId>)> = items.map(|(m, b)| (m, b.iter().copied().collect())).collect();
+    let items: Vec<(NodeId, HashSet<NodeId>)> =
+        items.map(|(m, b)| (m, b.iter().copied().collect())).collect();
     (0..items.len())
         .map(|j| {
             let merge = items[j].0;
-            let enclosing: Vec<usize> = (0..items.len()).filter(|&i| i != j && items[i].1.contains(&merge)).collect();
+            let enclosing: Vec<usize> =
+                (0..items.len()).filter(|&i| i != j && items[i].1.contains(&merge)).collect();
             let parent = enclosing.iter().copied().min_by_key(|&i| items[i].1.len());
             (parent, enclosing.len())
         })

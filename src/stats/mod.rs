@@ -41,7 +41,12 @@ pub fn dot(a: &[f32], b: &[f32]) -> f64 {
             }
         }
         let mut s: f64 = lanes.iter().map(|&v| v as f64).sum();
-        s += ia.remainder().iter().zip(ib.remainder()).map(|(&x, &y)| x as f64 * y as f64).sum::<f64>();
+        s += ia
+            .remainder()
+            .iter()
+            .zip(ib.remainder())
+            .map(|(&x, &y)| x as f64 * y as f64)
+            .sum::<f64>();
         total += s;
     }
     total
