@@ -61,8 +61,7 @@ pub fn analyse(model: ModelProto, external: ExternalData, config: &ScanConfig) -
     let (graph, mut diagnostics) = graph::build(model, external, &config.build)?;
     let dom = Dominance::compute(&graph);
     let detection = residual::find_blocks(&graph, &dom);
-    let kinds: Vec<Kind> =
-        detection.blocks.iter().map(|b| classify::classify(&graph, b, &config.classify)).collect();
+    let kinds: Vec<Kind> = classify::classify_all(&graph, &detection.blocks, &config.classify);
     let (stages, stage_of) = classify::stages(&graph, &detection.blocks);
     let bare_runs = classify::bare_runs(&graph, &detection.blocks, &stage_of);
     for (i, n) in graph.nodes.iter().enumerate() {

@@ -141,10 +141,29 @@ pub struct Kind {
     pub static_dead: Option<StaticDead>,
 }
 
+/// Classifies every detected block, in order.
+pub fn classify_all(g: &Graph, blocks: &[Block], config: &ClassifyConfig) -> Vec<Kind> {
+    let forks: HashSet<ValueId> = blocks.iter().map(|b| b.fork).collect();
+    (0..blocks.len())
+        .map(|i| {
+            let after = Later { forks: &forks, last: i + 1 == blocks.len() };
+            classify(g, &blocks[i], &after, config)
+        })
+        .collect()
+}
+
+/// What a block needs to know of the blocks after it.
+pub struct Later<'a> {
+    /// The forks of all blocks.
+    pub forks: &'a HashSet<ValueId>,
+    /// Whether the block is the last in graph order.
+    pub last: bool,
+}
+
 /// Classifies one detected block.
-pub fn classify(g: &Graph, block: &Block, config: &ClassifyConfig) -> Kind {
+pub fn classify(g: &Graph, block: &Block, later: &Later<'_>, config: &ClassifyConfig) -> Kind {
     let branch: HashSet<NodeId> = block.branch.iter().copied().collect();
-    let (placement, placement_node) = placement(g, block, &branch);
+    let (placement, placement_node) = placement(g, block, &branch, later);
     let layers = block
         .branch
         .iter()
@@ -185,7 +204,12 @@ pub fn classify(g: &Graph, block: &Block, config: &ClassifyConfig) -> Kind {
     Kind { placement, placement_node, layers, norms, activations, gates, end_scale, static_dead }
 }
 
-fn placement(g: &Graph, block: &Block, branch: &HashSet<NodeId>) -> (Placement, Option<NodeId>) {
+fn placement(
+    g: &Graph,
+    block: &Block,
+    branch: &HashSet<NodeId>,
+    later: &Later<'_>,
+) -> (Placement, Option<NodeId>) {
     // 1-2: what the branch opens with.
     let entries = openings(g, block.fork, branch);
     if let Some(&n) = entries.iter().find(|&&n| op::is_layer_norm_op(&g.node(n).op)) {
@@ -199,35 +223,80 @@ fn placement(g: &Graph, block: &Block, branch: &HashSet<NodeId>) -> (Placement, 
     if opens_with_norm_or_act {
         return (Placement::PreActivation, entries.first().copied());
     }
-    // 3: what consumes the merge output, and nothing else.
+    // 3: what consumes the merge output, and nothing else. A normalisation
+    // counts only when a block starts from its output (or no block follows):
+    // the normalisation that opens a downsampling layer after the last block
+    // of a stage is not part of that block.
     let (value, consumers) = follow_pass_through(g, block.output);
+    let feeds_block = |out: ValueId| {
+        later.last
+            || later.forks.contains(&out)
+            || later.forks.contains(&follow_pass_through(g, out).0)
+    };
+    let feeds_next = |n: NodeId| feeds_block(g.node(n).outputs[0]);
     if consumers.len() == 1 {
         let c = consumers[0];
         match op::family(g, c) {
             Family::Activation => return (Placement::PostActivation, Some(c)),
-            Family::Norm => return (Placement::PostNorm, Some(c)),
+            Family::Norm if feeds_next(c) => return (Placement::PostNorm, Some(c)),
             _ => {}
         }
     }
     if let Some(n) = decomposed_layer_norm(g, value, None) {
-        if consumers.len() == 2 {
+        if consumers.len() == 2 && decomposed_norm_output(g, n).is_none_or(feeds_block) {
             return (Placement::PostNorm, Some(n));
         }
     }
-    // 4: branch and shortcut both start after an activation (the projection
-    // units of pre-activation networks take the activated input).
-    let mut v = block.fork;
-    while let Some(p) = g.producer(v) {
-        match op::family(g, p) {
-            Family::Activation => return (Placement::PreActivation, Some(p)),
-            Family::PassThrough => v = g.node(p).inputs[0].unwrap_or(v),
-            _ => break,
-        }
-        if g.producer(v) == Some(p) {
-            break;
+    // 4: branch and shortcut both start after a normalisation and an
+    // activation they share (the projection units of pre-activation networks
+    // take the activated input, [P1]).
+    if let Some(act) =
+        through_pass_through(g, block.fork).filter(|&p| op::family(g, p) == Family::Activation)
+    {
+        // The shared pre-activation normalises the previous block's output.
+        let norm = g.signal_inputs(act).next().and_then(|v| through_pass_through(g, v));
+        let norm = norm.filter(|&p| op::family(g, p) == Family::Norm);
+        let after_merge = norm
+            .and_then(|p| g.signal_inputs(p).next())
+            .and_then(|v| through_pass_through(g, v))
+            .is_some_and(|m| op::is_merge(&g.node(m).op));
+        if after_merge {
+            return (Placement::PreActivation, Some(act));
         }
     }
     (Placement::Unactivated, None)
+}
+
+/// The producer of `v`, looking through pass-through ops.
+fn through_pass_through(g: &Graph, mut v: ValueId) -> Option<NodeId> {
+    loop {
+        let p = g.producer(v)?;
+        if op::family(g, p) != Family::PassThrough {
+            return Some(p);
+        }
+        v = g.signal_inputs(p).next()?;
+    }
+}
+
+/// The output of a spelled-out layer normalisation opened by `open` (its
+/// `ReduceMean`): follows the centred value through Div and the affine ops.
+fn decomposed_norm_output(g: &Graph, open: NodeId) -> Option<ValueId> {
+    let mean = g.node(open).outputs[0];
+    let sub = g.consumers(mean).find(|&c| g.node(c).op == "Sub")?;
+    let centred = g.node(sub).outputs[0];
+    let div = g.consumers(centred).find(|&c| g.node(c).op == "Div")?;
+    let mut v = g.node(div).outputs[0];
+    loop {
+        let consumers: Vec<NodeId> = g.consumers(v).collect();
+        match consumers.as_slice() {
+            [c] if matches!(g.node(*c).op.as_str(), "Mul" | "Add")
+                && op::signal_arity(g, *c) == 1 =>
+            {
+                v = g.node(*c).outputs[0]
+            }
+            _ => return Some(v),
+        }
+    }
 }
 
 /// The first branch ops that are not pass-through, reached from the fork.

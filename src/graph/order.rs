@@ -1,32 +1,39 @@
 //! Dominators over the signal-carrying values of a graph.
 //!
 //! The vertices are values (tensors), with an edge from each signal input of
-//! a node to each of its outputs, and a virtual root that feeds every value
-//! no other signal reaches (graph inputs, dangling references). A value `d`
-//! dominates `v` when every path from the root to `v` passes through `d`.
-//! The immediate dominator of a merge's output is the tensor where its
-//! inputs last shared a path: the fork of a residual block.
+//! a node to each of its outputs. A value `d` dominates `v` from a source `s`
+//! when every path from `s` to `v` passes through `d`. The immediate
+//! dominator of a merge's output is the tensor where its inputs last shared a
+//! path: the fork of a residual block.
+//!
+//! One dominator tree is computed per signal source (each graph input, each
+//! dangling reference). A side signal that joins a branch from another input
+//! (an attention mask added to the scores) then does not hide the fork: from
+//! the main input's point of view, the mask is a constant. The fork of a
+//! value is taken from its *primary* source: of the sources that reach it,
+//! the one that reaches the most values (the main input reaches everything a
+//! mask reaches, and the layers before the first mask too).
 
 use petgraph::algo::dominators;
 use petgraph::graph::{DiGraph, NodeIndex};
 
 use crate::graph::{Graph, ValueId};
 
-/// Immediate dominators of every signal value.
+/// Immediate dominators of every signal value, per signal source.
 #[derive(Debug)]
 pub struct Dominance {
-    idom: Vec<Option<ValueId>>,
+    sources: Vec<ValueId>,
+    idom: Vec<Vec<Option<ValueId>>>,
 }
 
 impl Dominance {
-    /// Computes the dominator tree of `g`'s signal values.
+    /// Computes one dominator tree of `g`'s signal values per signal source.
     pub fn compute(g: &Graph) -> Dominance {
         let n_values = g.values.len();
-        let mut dg: DiGraph<(), ()> = DiGraph::with_capacity(n_values + 1, n_values * 2);
-        for _ in 0..=n_values {
+        let mut dg: DiGraph<(), ()> = DiGraph::with_capacity(n_values, n_values * 2);
+        for _ in 0..n_values {
             dg.add_node(());
         }
-        let root = NodeIndex::new(n_values);
         let mut has_pred = vec![false; n_values];
         for &n in &g.order {
             let node = g.node(n);
@@ -43,37 +50,50 @@ impl Dominance {
                 }
             }
         }
-        for (i, v) in g.values.iter().enumerate() {
-            if !v.is_static && !has_pred[i] {
-                dg.add_edge(root, NodeIndex::new(i), ());
-            }
-        }
-        let doms = dominators::simple_fast(&dg, root);
-        let idom = (0..n_values)
-            .map(|i| {
-                doms.immediate_dominator(NodeIndex::new(i))
-                    .filter(|d| *d != root)
-                    .map(|d| ValueId(d.index() as u32))
+        let sources: Vec<ValueId> = (0..n_values)
+            .filter(|&i| {
+                !g.values[i].is_static && !has_pred[i] && !g.values[i].consumers.is_empty()
+            })
+            .map(|i| ValueId(i as u32))
+            .collect();
+        let mut trees: Vec<(ValueId, Vec<Option<ValueId>>, usize)> = sources
+            .iter()
+            .map(|&s| {
+                let doms = dominators::simple_fast(&dg, NodeIndex::new(s.0 as usize));
+                let tree: Vec<Option<ValueId>> = (0..n_values)
+                    .map(|i| {
+                        doms.immediate_dominator(NodeIndex::new(i))
+                            .map(|d| ValueId(d.index() as u32))
+                    })
+                    .collect();
+                let reach = tree.iter().filter(|d| d.is_some()).count();
+                (s, tree, reach)
             })
             .collect();
-        Dominance { idom }
+        // Primary sources first: the widest reach, then value order.
+        trees.sort_by(|a, b| b.2.cmp(&a.2).then(a.0.cmp(&b.0)));
+        let sources = trees.iter().map(|t| t.0).collect();
+        let idom = trees.into_iter().map(|t| t.1).collect();
+        Dominance { sources, idom }
     }
 
-    /// The immediate dominator of a value; `None` for the root's children,
-    /// static values and values the root does not reach.
-    pub fn idom(&self, v: ValueId) -> Option<ValueId> {
-        self.idom[v.0 as usize]
+    /// The signal sources, primary first.
+    pub fn sources(&self) -> &[ValueId] {
+        &self.sources
     }
 
-    /// Whether `d` dominates `v` (every value dominates itself).
-    pub fn dominates(&self, d: ValueId, v: ValueId) -> bool {
-        let mut cur = Some(v);
-        while let Some(c) = cur {
-            if c == d {
-                return true;
+    /// The immediate dominator of `v` seen from its primary source: the fork
+    /// of a merge whose output is `v`. `None` for a source itself and for
+    /// static or unreached values.
+    pub fn fork(&self, v: ValueId) -> Option<ValueId> {
+        for (tree, &source) in self.idom.iter().zip(&self.sources) {
+            if source == v {
+                return None;
             }
-            cur = self.idom(c);
+            if let Some(d) = tree[v.0 as usize] {
+                return Some(d);
+            }
         }
-        false
+        None
     }
 }

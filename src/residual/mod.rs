@@ -150,12 +150,12 @@ pub fn find_blocks(g: &Graph, dom: &Dominance) -> Detection {
             continue;
         }
         let Some(&output) = node.outputs.first() else { continue };
-        let Some(fork) = dom.idom(output) else {
-            det.rejected.push(Rejected { node: n, reason: Reason::Independent });
-            continue;
+        let outcome = match dom.fork(output) {
+            Some(fork) => join(g, fork, &signals, is_merge).map(|j| (fork, j)),
+            None => Err(Reason::Independent),
         };
-        match join(g, fork, &signals, is_merge) {
-            Ok((shortcut, branch_inputs, branch)) => {
+        match outcome {
+            Ok((fork, (shortcut, branch_inputs, branch))) => {
                 if is_merge {
                     det.blocks.push(Block {
                         merge: n,
@@ -250,22 +250,45 @@ fn join(
 }
 
 /// The nodes on every path from `fork` to `target`, in graph order; empty
-/// when `target` is the fork. `None` if a path reaches a graph input other
-/// than the fork (then `fork` does not dominate `target`).
+/// when `target` is the fork, `None` when no path leads there. Side inputs
+/// that join the paths from elsewhere (a mask, a second graph input) are not
+/// part of the result.
 pub fn path_from(g: &Graph, fork: ValueId, target: ValueId) -> Option<Vec<NodeId>> {
-    let mut nodes: HashSet<NodeId> = HashSet::new();
+    if target == fork {
+        return Some(Vec::new());
+    }
+    // Backwards from the target, never further back than the fork's producer.
+    let floor = g.producer(fork).map(|p| g.rank[p.0 as usize]);
+    let mut ancestors: HashSet<NodeId> = HashSet::new();
     let mut seen: HashSet<ValueId> = HashSet::new();
     let mut stack = vec![target];
     while let Some(v) = stack.pop() {
         if v == fork || !seen.insert(v) || g.value(v).is_static {
             continue;
         }
-        let p = g.producer(v)?;
-        if nodes.insert(p) {
+        let Some(p) = g.producer(v) else { continue };
+        if floor.is_some_and(|f| g.rank[p.0 as usize] <= f) {
+            continue;
+        }
+        if ancestors.insert(p) {
             stack.extend(g.signal_inputs(p));
         }
     }
-    let mut out: Vec<NodeId> = nodes.into_iter().collect();
+    // Forwards from the fork, within those ancestors.
+    let mut on_path: HashSet<NodeId> = HashSet::new();
+    let mut stack = vec![fork];
+    while let Some(v) = stack.pop() {
+        for c in g.consumers(v) {
+            if ancestors.contains(&c) && on_path.insert(c) {
+                stack.extend(g.node(c).outputs.iter().copied());
+            }
+        }
+    }
+    let producer = g.producer(target)?;
+    if !on_path.contains(&producer) {
+        return None;
+    }
+    let mut out: Vec<NodeId> = on_path.into_iter().collect();
     out.sort_by_key(|n| g.rank[n.0 as usize]);
     Some(out)
 }
