@@ -145,7 +145,9 @@ fn run_inner(
     progress: &dyn Progress,
 ) -> Result<ProbeResult> {
     progress.step("preparing the model", 1);
-    let onnx = tract_onnx::onnx();
+    // value_info may name a symbolic batch that the concrete input facts
+    // contradict; tract infers every shape itself.
+    let onnx = tract_onnx::onnx().with_ignore_value_info(true);
     let (proto, dir) = match source {
         ModelSource::Path(p) => {
             let proto = onnx
@@ -230,6 +232,18 @@ fn run_inner(
             source_roles.push((i, roles));
         }
     }
+    // The optimiser may fold a watched tensor into a constant (a branch scaled
+    // by zero): constants are not evaluated, so measure them once per pass.
+    let mut constant_roles: Vec<(TValue, Vec<(usize, Role)>)> = Vec::new();
+    let outlets: Vec<(usize, usize)> = watch_map.keys().copied().collect();
+    for key in outlets {
+        let fact =
+            typed.outlet_fact(OutletId::new(key.0, key.1)).map_err(|e| tract_err("tract", &e))?;
+        if let Some(k) = fact.konst.clone() {
+            let roles = watch_map.remove(&key).expect("key taken from the map");
+            constant_roles.push((TValue::from_const(k), roles));
+        }
+    }
     typed
         .select_output_outlets(&final_outs[..originals.len()])
         .map_err(|e| tract_err("tract", &e))?;
@@ -260,6 +274,20 @@ fn run_inner(
                     &watches[b],
                     role,
                     &tensors[*i],
+                    feeding.pass_batch,
+                )?;
+            }
+        }
+        for (konst, roles) in &constant_roles {
+            let value =
+                broadcast_batch(konst, feeding.pass_batch).map_err(|e| tract_err("tract", &e))?;
+            for &(b, role) in roles {
+                observe(
+                    &mut acc[b],
+                    &mut pending.slots[b],
+                    &watches[b],
+                    role,
+                    &value,
                     feeding.pass_batch,
                 )?;
             }
@@ -341,6 +369,21 @@ fn to_tensor(values: &Values, shape: &[usize]) -> TractResult<Tensor> {
         Values::I32(v) => Tensor::from_shape(shape, v),
         Values::Bool(v) => Tensor::from_shape(shape, v),
     }
+}
+
+/// A constant whose leading axis is not the batch (a folded tensor of shape
+/// `[1, …]`), repeated along a new or its first axis so each sample sees it.
+fn broadcast_batch(konst: &TValue, batch: usize) -> TractResult<TValue> {
+    let shape = konst.shape().to_vec();
+    if batch <= 1 || shape.first() == Some(&batch) {
+        return Ok(konst.clone());
+    }
+    let mut one: Tensor = (**konst).clone();
+    if shape.first() != Some(&1) {
+        one.insert_axis(0)?;
+    }
+    let parts: Vec<Tensor> = (0..batch).map(|_| one.clone()).collect();
+    Ok(Tensor::stack_tensors(0, &parts)?.into_tvalue())
 }
 
 /// A tensor's values as `f32`, and its shape.
