@@ -7,3 +7,5 @@ mod util;
 mod cli;
 // Committed fixtures are exactly what the generator writes today.
 mod fixtures;
+// Models exported by PyTorch's exporter: census against published layouts.
+mod real_exports;
