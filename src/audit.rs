@@ -29,6 +29,27 @@ pub struct AuditConfig {
     pub findings: FindingConfig,
 }
 
+impl AuditConfig {
+    /// The documented defaults: the standard scan, 8 samples of standard
+    /// normal inputs with seed 0, and the standard thresholds.
+    pub fn standard() -> AuditConfig {
+        AuditConfig {
+            scan: ScanConfig::standard(),
+            inputs: InputConfig {
+                samples: 8,
+                seed: 0,
+                dist: inputs::Dist::Normal,
+                scale: 1.0,
+                dims: Default::default(),
+                shapes: Default::default(),
+                fills: Default::default(),
+                feed: None,
+            },
+            findings: scan::standard_findings(),
+        }
+    }
+}
+
 /// The outcome of an audit.
 #[derive(Debug)]
 pub struct Audit {

@@ -5,7 +5,11 @@ mod util;
 
 // The command line: exit codes, messages, output files.
 mod cli;
+// Measurements against theory, planted defects, determinism, failure modes.
+mod audit;
 // Committed fixtures are exactly what the generator writes today.
 mod fixtures;
 // Models exported by PyTorch's exporter: census against published layouts.
 mod real_exports;
+// Statistics against onnxruntime on the same inputs.
+mod reference_stats;
