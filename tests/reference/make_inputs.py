@@ -1,0 +1,52 @@
+"""Writes the committed inputs of the reference checks, tests/reference/inputs/.
+
+Usage: python tests/reference/make_inputs.py   (from the repository root)
+
+Every case has 4 samples drawn with numpy's default_rng and a fixed seed, so
+the files are reproducible with the pinned numpy. Token ids stay below the
+vocabulary of each text model (rows of its embedding table, the Gather data).
+"""
+
+import os
+
+import numpy as np
+
+OUT = os.path.join("tests", "reference", "inputs")
+SAMPLES = 4
+
+
+def images(seed, channels):
+    rng = np.random.default_rng(seed)
+    return rng.standard_normal((SAMPLES, channels, 32, 32)).astype(np.float32)
+
+
+def main():
+    os.makedirs(OUT, exist_ok=True)
+    np.save(os.path.join(OUT, "resnet18_b.npy"), images(1, 3))
+    np.save(os.path.join(OUT, "preact_resnet14.npy"), images(2, 3))
+    np.save(os.path.join(OUT, "mobilenet_v2.npy"), images(3, 3))
+    np.save(os.path.join(OUT, "tile_grader.npy"), images(4, 1))
+    np.save(os.path.join(OUT, "resnet_cifar_folded.npy"), images(5, 3))
+
+    # fixtures/text_postnorm.onnx: input_ids [N, 8] int64 into a 50-row
+    # table, attention_mask [N, 8] float (1 = attend); samples end with 0..3
+    # padded positions.
+    rng = np.random.default_rng(6)
+    ids = rng.integers(0, 50, size=(SAMPLES, 8), dtype=np.int64)
+    mask = np.ones((SAMPLES, 8), dtype=np.float32)
+    for s in range(SAMPLES):
+        if s:
+            mask[s, 8 - s :] = 0.0
+    np.savez(os.path.join(OUT, "text_postnorm.npz"), input_ids=ids, attention_mask=mask)
+
+    # fixtures/torch/encoder_postnorm.onnx: input [1, 16] int64 into a
+    # 100-row table; the fixed batch of 1 is run sample by sample.
+    rng = np.random.default_rng(7)
+    np.save(
+        os.path.join(OUT, "encoder_postnorm.npy"),
+        rng.integers(0, 100, size=(SAMPLES, 16), dtype=np.int64),
+    )
+
+
+if __name__ == "__main__":
+    main()
