@@ -7,6 +7,8 @@ mod util;
 mod cli;
 // Measurements against theory, planted defects, determinism, failure modes.
 mod audit;
+// Detection and classification: census, published layouts, invariance.
+mod detect;
 // Committed fixtures are exactly what the generator writes today.
 mod fixtures;
 // Models exported by PyTorch's exporter: census against published layouts.

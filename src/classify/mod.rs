@@ -190,12 +190,22 @@ pub fn classify(g: &Graph, block: &Block, later: &Later<'_>, config: &ClassifyCo
             activations.push((n, "Gelu (decomposed)".to_owned()));
         }
         if node.op == "Mul" && op::signal_arity(g, n) == 2 {
-            let gated = g.signal_inputs(n).any(|v| {
+            // `x * sigmoid(x)` is a swish activation; `x * sigmoid(f(x))` a gate.
+            let inputs: Vec<ValueId> = g.signal_inputs(n).collect();
+            let sigmoid_of = |v: ValueId| {
                 g.producer(v)
-                    .is_some_and(|p| matches!(g.node(p).op.as_str(), "Sigmoid" | "HardSigmoid"))
-            });
-            if gated {
-                gates += 1;
+                    .filter(|&p| matches!(g.node(p).op.as_str(), "Sigmoid" | "HardSigmoid"))
+                    .and_then(|p| g.signal_inputs(p).next())
+            };
+            match (sigmoid_of(inputs[0]), sigmoid_of(inputs[1])) {
+                (Some(a), _) if a == inputs[1] => {
+                    activations.push((n, "Swish (decomposed)".to_owned()))
+                }
+                (_, Some(b)) if b == inputs[0] => {
+                    activations.push((n, "Swish (decomposed)".to_owned()))
+                }
+                (Some(_), _) | (_, Some(_)) => gates += 1,
+                _ => {}
             }
         }
     }

@@ -131,7 +131,8 @@ pub fn all() -> Vec<Fixture> {
             "resnet50_d.onnx",
             zoo::resnet_d(&r50),
             "ResNet-D shortcuts: AvgPool 2x2 s2 then 1x1 conv s1 + BN (stage 1: conv only)",
-            post(12, 4, 0),
+            // Pooling then a projection is a resampled shortcut (stages 2-4).
+            post(12, 1, 3),
             "Z2 R1 R3",
         ),
         fixture(
@@ -222,7 +223,11 @@ pub fn all() -> Vec<Fixture> {
             "fpn_topdown.onnx",
             zoo::fpn_topdown(&zoo::FpnConfig { width: 4, pyramid_width: 8, image: small.clone() }),
             "top-down Adds of a lateral 1x1 conv and an upsampled coarser level; one real block in c4",
-            Census { decoys: 2, ..post(1, 0, 0) },
+            // Each top-down Add forks at its level's backbone map: the lateral
+            // 1x1 conv is a projection shortcut, the path through the coarser
+            // levels and the upsampling is its branch, so the two top-down
+            // merges are long skips holding the deeper levels.
+            Census { projection: 2, unactivated: 2, nesting: Some(3), ..post(1, 0, 0) },
             "-",
         ),
         fixture(
