@@ -58,7 +58,7 @@ fn committed_fixtures_give_their_census() {
         }
         if f.census.additive() == 0 && f.census.concat_skips == 0 {
             assert!(r.summary.plain, "{}: a model with no skip is reported as plain", f.path);
-            assert!(run.stdout.len() > 0);
+            assert!(!run.stdout.is_empty());
         }
     }
     assert!(failures.is_empty(), "census mismatches:\n{}", failures.join("\n"));

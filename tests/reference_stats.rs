@@ -9,7 +9,7 @@
 //!
 //! Each case checks two things:
 //! 1. drift: `stats.py` re-run now in the pinned venv gives the committed
-//!    values within 1e-9 relative;
+//!    values within 1e-6 relative;
 //! 2. shunt: `shunt audit --feed` on the same inputs gives, per block, the
 //!    mean, minimum and maximum over samples of the fork, shortcut, branch and
 //!    output RMS (and of ratio and growth) within 1e-4 relative of
@@ -22,8 +22,11 @@ use serde_json::Value;
 
 use crate::util;
 
-/// Relative tolerance of the drift check (same libraries, same inputs).
-const DRIFT: f64 = 1e-9;
+/// Relative tolerance of the drift check (same libraries, same inputs). Not
+/// tighter: onnxruntime picks float32 kernels by CPU, which moves sums in the
+/// seventh digit from one machine to another; a change of library version or
+/// inputs moves them far more.
+const DRIFT: f64 = 1e-6;
 /// Relative tolerance of shunt (tract, float32) against onnxruntime (float32).
 const RMS_TOL: f64 = 1e-4;
 /// Absolute tolerance of cosines.

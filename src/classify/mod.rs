@@ -181,10 +181,10 @@ pub fn classify(g: &Graph, block: &Block, later: &Later<'_>, config: &ClassifyCo
             Family::Activation => activations.push((n, node.op.clone())),
             _ => {}
         }
-        if let Some(out) = node.outputs.first() {
-            if decomposed_layer_norm(g, *out, Some(&branch)).is_some() {
-                norms.push((n, "LayerNormalization (decomposed)".to_owned()));
-            }
+        if let Some(out) = node.outputs.first()
+            && decomposed_layer_norm(g, *out, Some(&branch)).is_some()
+        {
+            norms.push((n, "LayerNormalization (decomposed)".to_owned()));
         }
         if node.op == "Erf" {
             activations.push((n, "Gelu (decomposed)".to_owned()));
@@ -252,10 +252,11 @@ fn placement(
             _ => {}
         }
     }
-    if let Some(n) = decomposed_layer_norm(g, value, None) {
-        if consumers.len() == 2 && decomposed_norm_output(g, n).is_none_or(feeds_block) {
-            return (Placement::PostNorm, Some(n));
-        }
+    if let Some(n) = decomposed_layer_norm(g, value, None)
+        && consumers.len() == 2
+        && decomposed_norm_output(g, n).is_none_or(feeds_block)
+    {
+        return (Placement::PostNorm, Some(n));
     }
     // 4: branch and shortcut both start after a normalisation and an
     // activation they share (the projection units of pre-activation networks
@@ -480,10 +481,11 @@ fn static_dead(
     end: Option<&EndScale>,
     config: &ClassifyConfig,
 ) -> Option<StaticDead> {
-    if let Some(EndScale { node, summary: Some(s), .. }) = end {
-        if s.min == 0.0 && s.max == 0.0 {
-            return Some(StaticDead::ZeroScale(*node));
-        }
+    if let Some(EndScale { node, summary: Some(s), .. }) = end
+        && s.min == 0.0
+        && s.max == 0.0
+    {
+        return Some(StaticDead::ZeroScale(*node));
     }
     // Walk back from each branch input to the last learned layer; every branch
     // input must be dead for the branch to be.

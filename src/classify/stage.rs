@@ -44,7 +44,7 @@ pub fn stages(g: &Graph, blocks: &[Block]) -> (Vec<Stage>, Vec<Option<usize>>) {
 
 fn stage_key(g: &Graph, v: ValueId) -> Option<Vec<Dim>> {
     let shape = g.shape(v)?;
-    if shape.len() < 2 || shape[1..].iter().any(|d| *d == Dim::Unknown) {
+    if shape.len() < 2 || shape[1..].contains(&Dim::Unknown) {
         return None;
     }
     Some(shape[1..].to_vec())

@@ -198,11 +198,12 @@ pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> 
         .filter(|(_, b)| b.depth == 0)
         .filter_map(|(i, b)| b.output_rms.filter(|v| v.is_finite() && *v > 0.0).map(|v| (i + 1, v)))
         .collect();
-    if let (Some(&(first_id, first)), Some(&(last_id, last))) = (top.first(), top.last()) {
-        if top.len() >= 2 {
-            let growth = last / first;
-            if growth > config.depth_factor {
-                out.push(Finding {
+    if let (Some(&(first_id, first)), Some(&(last_id, last))) = (top.first(), top.last())
+        && top.len() >= 2
+    {
+        let growth = last / first;
+        if growth > config.depth_factor {
+            out.push(Finding {
                     code: Code::ExplodingSignal,
                     block: None,
                     message: format!(
@@ -210,8 +211,8 @@ pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> 
                         config.depth_factor
                     ),
                 });
-            } else if growth < 1.0 / config.depth_factor {
-                out.push(Finding {
+        } else if growth < 1.0 / config.depth_factor {
+            out.push(Finding {
                     code: Code::VanishingSignal,
                     block: None,
                     message: format!(
@@ -219,7 +220,6 @@ pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> 
                         config.depth_factor
                     ),
                 });
-            }
         }
     }
     out

@@ -228,13 +228,10 @@ impl Graph {
     /// is topological); used by tests and debug builds.
     pub fn validate(&self) -> Result<(), String> {
         for (i, v) in self.values.iter().enumerate() {
-            if let Source::Node(n, slot) = v.source {
-                if self.node(n).outputs.get(slot) != Some(&ValueId(i as u32)) {
-                    return Err(format!(
-                        "value '{}' names a producer that does not list it",
-                        v.name
-                    ));
-                }
+            if let Source::Node(n, slot) = v.source
+                && self.node(n).outputs.get(slot) != Some(&ValueId(i as u32))
+            {
+                return Err(format!("value '{}' names a producer that does not list it", v.name));
             }
         }
         if self.order.len() != self.nodes.len() {
@@ -242,14 +239,14 @@ impl Graph {
         }
         for &n in &self.order {
             for v in self.node(n).inputs.iter().flatten() {
-                if let Some(p) = self.producer(*v) {
-                    if self.rank[p.0 as usize] >= self.rank[n.0 as usize] {
-                        return Err(format!(
-                            "node '{}' comes before its input '{}'",
-                            self.node(n).name,
-                            self.value(*v).name
-                        ));
-                    }
+                if let Some(p) = self.producer(*v)
+                    && self.rank[p.0 as usize] >= self.rank[n.0 as usize]
+                {
+                    return Err(format!(
+                        "node '{}' comes before its input '{}'",
+                        self.node(n).name,
+                        self.value(*v).name
+                    ));
                 }
             }
         }

@@ -246,10 +246,10 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
             let x = shape_of(g, n, 0)?;
             let (scales_slot, sizes_slot) =
                 if node.op == "Upsample" { (1, usize::MAX) } else { (2, 3) };
-            if let Some(sizes) = g.input(n, sizes_slot).and_then(|v| g.constant_i64(v)) {
-                if sizes.len() == x.len() {
-                    return Some(sizes.iter().map(|&s| Dim::Known(s.max(0) as u64)).collect());
-                }
+            if let Some(sizes) = g.input(n, sizes_slot).and_then(|v| g.constant_i64(v))
+                && sizes.len() == x.len()
+            {
+                return Some(sizes.iter().map(|&s| Dim::Known(s.max(0) as u64)).collect());
             }
             let scales = g.input(n, scales_slot).and_then(|v| g.constant_f32(v, 1 << 12))?;
             if scales.len() != x.len() {

@@ -72,6 +72,7 @@ fn load_inner(path: &Path, config: &LoadConfig) -> Result<LoadedModel> {
     };
     let external = ExternalData::new(&dir)?;
     check_external_refs(&model, &external)?;
+    check_payloads(&model, &external)?;
     Ok(LoadedModel { path: path.to_path_buf(), file_bytes, model, external })
 }
 
@@ -216,13 +217,88 @@ fn check_external_refs(model: &ModelProto, external: &ExternalData) -> Result<()
     let Some(graph) = &model.graph else { return Ok(()) };
     let mut result = Ok(());
     tensor::for_each_tensor(graph, &mut |t| {
-        if result.is_ok() {
-            if let Err(e) = external.resolve(t) {
-                result = Err(e);
-            }
+        if result.is_ok()
+            && let Err(e) = external.resolve(t)
+        {
+            result = Err(e);
         }
     });
     result
+}
+
+/// Checks that every stored tensor's payload has exactly the size its dims
+/// and element type declare, before anything reads it: a file that declares a
+/// tensor of 10^12 elements without holding them is refused here.
+pub fn check_payloads(model: &ModelProto, external: &ExternalData) -> Result<()> {
+    let Some(graph) = &model.graph else { return Ok(()) };
+    let mut result = Ok(());
+    tensor::for_each_tensor(graph, &mut |t| {
+        if result.is_ok() {
+            result = check_payload(t, external);
+        }
+    });
+    result
+}
+
+fn check_payload(t: &TensorProto, external: &ExternalData) -> Result<()> {
+    use crate::proto::tensor_proto::DataType as D;
+    let invalid = |m: String| Error::new(ErrorKind::Invalid, format!("tensor '{}' {m}", t.name));
+    let Some(n) = tensor::element_count(&t.dims) else {
+        return Err(invalid(format!(
+            "has invalid dims {:?} (negative, or more elements than can be counted)",
+            t.dims
+        )));
+    };
+    let Ok(dtype) = D::try_from(t.data_type) else {
+        return Err(invalid(format!("has an unknown element type {}", t.data_type)));
+    };
+    if dtype == D::Undefined {
+        return Err(invalid("has no element type".to_owned()));
+    }
+    let want_bytes = tensor::expected_bytes(t);
+    if let Some(r) = external.resolve(t)? {
+        if let Some(want) = want_bytes
+            && r.length != want
+        {
+            return Err(invalid(format!(
+                "declares {n} elements of {} ({want} bytes) but its external data holds {} bytes",
+                tensor::dtype_name(t.data_type),
+                r.length
+            )));
+        }
+        return Ok(());
+    }
+    if !t.raw_data.is_empty() || dtype == D::Undefined {
+        if let Some(want) = want_bytes
+            && t.raw_data.len() as u64 != want
+        {
+            return Err(invalid(format!(
+                "declares {n} elements of {} ({want} bytes) but holds {} bytes",
+                tensor::dtype_name(t.data_type),
+                t.raw_data.len()
+            )));
+        }
+        return Ok(());
+    }
+    let held = match dtype {
+        D::Float => t.float_data.len() as u64,
+        D::Complex64 => t.float_data.len() as u64 / 2,
+        D::Double => t.double_data.len() as u64,
+        D::Complex128 => t.double_data.len() as u64 / 2,
+        D::Int64 => t.int64_data.len() as u64,
+        D::Uint32 | D::Uint64 => t.uint64_data.len() as u64,
+        D::String => t.string_data.len() as u64,
+        // Sub-byte types pack several values into each stored integer.
+        D::Uint4 | D::Int4 | D::Float4e2m1 => return Ok(()),
+        _ => t.int32_data.len() as u64,
+    };
+    if held != n {
+        return Err(invalid(format!(
+            "declares {n} elements of {} but holds {held}",
+            tensor::dtype_name(t.data_type)
+        )));
+    }
+    Ok(())
 }
 
 /// A location must be a plain relative path below the folder: no root, no

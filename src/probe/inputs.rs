@@ -167,9 +167,7 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
     // The batch of one pass: fixed when an input declares a concrete
     // leading dimension, otherwise all samples at once.
     let fixed_batch = specs.iter().find_map(|s| match s.shape.as_ref()?.first()? {
-        Dim::Known(k) if !config.shapes.contains_key(&s.name) && !arrays.contains_key(&s.name) => {
-            Some(*k as usize)
-        }
+        Dim::Known(k) if !config.shapes.contains_key(&s.name) => Some(*k as usize),
         _ => None,
     });
     let fed_batch = arrays.values().next().and_then(|a| a.shape().first().copied());
@@ -275,7 +273,7 @@ pub fn values(feeding: &Feeding, pass: usize) -> Vec<Values> {
         .map(|(index, fed)| {
             let n: u64 = fed.pass_shape.iter().product();
             let n = n as usize;
-            let per_sample = if feeding.pass_batch > 0 { n / feeding.pass_batch } else { n };
+            let per_sample = n.checked_div(feeding.pass_batch).unwrap_or(n);
             let as_f64: Vec<f64> = match &fed.source {
                 Fill::Constant(v) => vec![*v; n],
                 Fill::Array(a) => {
@@ -363,7 +361,7 @@ fn read_feed(path: &Path, specs: &[InputSpec]) -> Result<BTreeMap<String, ArrayD
             )));
         }
         let bytes = std::fs::read(path).map_err(|e| bad(crate::load::io_message(&e)))?;
-        let array = read_npy_any(&bytes).map_err(|m| bad(m))?;
+        let array = read_npy_any(&bytes).map_err(&bad)?;
         out.insert(specs[0].name.clone(), array);
     }
     let batches: Vec<usize> = out.values().filter_map(|a| a.shape().first().copied()).collect();
@@ -468,7 +466,7 @@ mod tests {
     #[test]
     fn same_seed_same_values_whatever_the_passes() {
         let sym = spec("x", vec![Dim::Symbol("N".into()), Dim::Known(3)]);
-        let one = plan(&[sym.clone()], &config(4)).unwrap();
+        let one = plan(std::slice::from_ref(&sym), &config(4)).unwrap();
         assert_eq!((one.pass_batch, one.passes), (4, 1));
         let all = match &values(&one, 0)[0] {
             Values::F32(v) => v.clone(),
@@ -492,7 +490,7 @@ mod tests {
     #[test]
     fn symbolic_dims_need_values() {
         let s = spec("x", vec![Dim::Symbol("N".into()), Dim::Symbol("seq".into())]);
-        let e = plan(&[s.clone()], &config(2)).unwrap_err();
+        let e = plan(std::slice::from_ref(&s), &config(2)).unwrap_err();
         assert!(e.message().contains("--dim seq=VALUE"), "{e}");
         let mut c = config(2);
         c.dims.insert("seq".into(), 5);

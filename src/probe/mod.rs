@@ -316,12 +316,11 @@ fn run_inner(
         );
         let result = result.map_err(|e| tract_err("tract failed while running the model", &e))?;
         for (i, t) in result.iter().enumerate() {
-            if let Ok(f) = t.cast_to::<f32>() {
-                if let Ok(view) = f.try_as_plain_ram() {
-                    if let Ok(s) = view.as_slice::<f32>() {
-                        outputs[i].extend_from_slice(s);
-                    }
-                }
+            if let Ok(f) = t.cast_to::<f32>()
+                && let Ok(view) = f.try_as_plain_ram()
+                && let Ok(s) = view.as_slice::<f32>()
+            {
+                outputs[i].extend_from_slice(s);
             }
         }
         progress.advance();
@@ -405,7 +404,7 @@ fn floats(t: &Tensor) -> Result<(Vec<usize>, std::borrow::Cow<'_, [f32]>)> {
 /// Splits `x` into per-sample slices when its length is a multiple of the
 /// pass batch (the batch is the outermost axis in memory), else one slice.
 fn samples(x: &[f32], batch: usize) -> std::slice::Chunks<'_, f32> {
-    let n = if batch > 0 && !x.is_empty() && x.len() % batch == 0 {
+    let n = if batch > 0 && !x.is_empty() && x.len().is_multiple_of(batch) {
         x.len() / batch
     } else {
         x.len().max(1)
