@@ -250,3 +250,35 @@ fn bad_usage_exits_2() {
     assert_eq!(shunt(&["scan", "x.onnx", "--format", "yaml"]).code, 2);
     assert_eq!(shunt(&["--help"]).code, 0);
 }
+
+#[test]
+fn declared_sizes_are_checked_before_reading() {
+    let dir = tempdir();
+    // A 'zip bomb': a few hundred bytes declaring a tensor of 10^12 elements.
+    let mut m = one_block();
+    let w = &mut m.graph.as_mut().unwrap().initializer[0];
+    w.dims = vec![1_000_000, 1_000_000];
+    w.float_data = vec![1.0; 4];
+    let p = write(dir.path(), "bomb.onnx", &m);
+    assert_clean_error(&shunt(&["scan", &p]), &p, "declares 1000000000000 elements");
+    // Dims whose product overflows, and negative dims.
+    let mut m = one_block();
+    m.graph.as_mut().unwrap().initializer[0].dims = vec![i64::MAX, i64::MAX];
+    let p = write(dir.path(), "overflow.onnx", &m);
+    assert_clean_error(&shunt(&["scan", &p]), &p, "invalid dims");
+    let mut m = one_block();
+    m.graph.as_mut().unwrap().initializer[0].dims = vec![-4, 4, 3, 3];
+    let p = write(dir.path(), "negative.onnx", &m);
+    assert_clean_error(&shunt(&["scan", &p]), &p, "invalid dims");
+    // A raw payload of the wrong length, and an unknown element type.
+    let mut m = one_block();
+    let w = &mut m.graph.as_mut().unwrap().initializer[0];
+    w.float_data.clear();
+    w.raw_data = vec![0u8; 10].into();
+    let p = write(dir.path(), "short.onnx", &m);
+    assert_clean_error(&shunt(&["scan", &p]), &p, "holds 10 bytes");
+    let mut m = one_block();
+    m.graph.as_mut().unwrap().initializer[0].data_type = 99;
+    let p = write(dir.path(), "dtype.onnx", &m);
+    assert_clean_error(&shunt(&["scan", &p]), &p, "unknown element type 99");
+}
