@@ -37,6 +37,7 @@ impl AuditConfig {
             scan: ScanConfig::standard(),
             inputs: InputConfig {
                 samples: 8,
+                max_pass: None,
                 seed: 0,
                 dist: inputs::Dist::Normal,
                 scale: 1.0,

@@ -345,3 +345,91 @@ fn out_of_range_token_ids_are_an_error_not_a_panic() {
     assert!(!run.stderr.contains("panicked at"), "{}", run.stderr);
     assert!(run.stderr.starts_with("shunt: error:"), "{}", run.stderr);
 }
+
+#[test]
+fn passes_of_any_size_measure_the_same_samples() {
+    let demo = fixture("demo/tile_grader.onnx");
+    let demo = demo.to_str().unwrap();
+    let whole = shunt(&["audit", demo, "--format", "json", "--quiet"]);
+    let split = shunt(&["audit", demo, "--format", "json", "--quiet", "--pass-batch", "2"]);
+    assert_eq!(split.code, 0, "{}", split.stderr);
+    let whole: Report = serde_json::from_str(&whole.stdout).unwrap();
+    let split: Report = serde_json::from_str(&split.stdout).unwrap();
+    assert_eq!(split.run.as_ref().unwrap().passes, 4);
+    for (a, b) in whole.blocks.iter().zip(&split.blocks) {
+        let (a, b) = (a.stats.as_ref().unwrap(), b.stats.as_ref().unwrap());
+        assert_eq!(a.samples, b.samples);
+        let (x, y) = (a.output_rms.unwrap(), b.output_rms.unwrap());
+        // Only the order of float32 sums inside the engine may differ.
+        for (p, q) in [(x.mean, y.mean), (x.min, y.min), (x.max, y.max)] {
+            assert!((p - q).abs() <= 1e-5 * p.abs(), "{p} vs {q}");
+        }
+    }
+}
+
+#[test]
+fn non_finite_values_are_findings_not_crashes() {
+    // The branch takes the log of a signal that is negative half the time.
+    let mut b = ModelBuilder::new("nan", 17);
+    let x = b.input("x", &[Dim::batch(), Dim::Fixed(16)]);
+    let h = b.linear("fc", &x, 16, &Init::HeNormal, false);
+    let h = b.node("Log", "log", &[&h], &[]);
+    let y = b.add("add", &x, &h);
+    b.output(&y);
+    let r = audit_in_memory(b.finish(), 4, 0);
+    let s = r.blocks[0].stats.as_ref().unwrap();
+    assert!(s.nan > 0, "NaN counted");
+    assert!(
+        r.findings.iter().any(|f| f.code == "non-finite" && f.block == Some(1)),
+        "{:?}",
+        r.findings
+    );
+}
+
+#[test]
+fn subgraphs_are_reported() {
+    use shunt::proto::{AttributeProto, attribute_proto::AttributeType};
+    let mut then_b = ModelBuilder::new("then", 17);
+    let t = then_b.input("t_in", &[Dim::Fixed(1)]);
+    then_b.output(&t);
+    let then_g = then_b.finish().graph.unwrap();
+    let mut b = ModelBuilder::new("with_if", 17);
+    let x = b.input("x", &[Dim::batch(), Dim::Fixed(8)]);
+    let h = b.linear("fc", &x, 8, &Init::HeNormal, false);
+    let y = b.add("add", &x, &h);
+    b.output(&y);
+    let mut model = b.finish();
+    let graph = model.graph.as_mut().unwrap();
+    graph.initializer.push(shunt::proto::TensorProto {
+        name: "cond".into(),
+        data_type: 9,
+        int32_data: vec![1],
+        ..Default::default()
+    });
+    graph.node.push(shunt::proto::NodeProto {
+        op_type: "If".into(),
+        name: "branchy".into(),
+        input: vec!["cond".into()],
+        output: vec!["if_out".into()],
+        attribute: vec![
+            AttributeProto {
+                name: "then_branch".into(),
+                r#type: AttributeType::Graph as i32,
+                g: Some(then_g.clone()),
+                ..Default::default()
+            },
+            AttributeProto {
+                name: "else_branch".into(),
+                r#type: AttributeType::Graph as i32,
+                g: Some(then_g),
+                ..Default::default()
+            },
+        ],
+        ..Default::default()
+    });
+    let r = shunt::scan::scan_model(model, "if", &shunt::scan::ScanConfig::standard()).unwrap();
+    assert_eq!(r.subgraphs.len(), 1);
+    assert_eq!((r.subgraphs[0].node.name.as_str(), r.subgraphs[0].subgraphs), ("branchy", 2));
+    assert!(r.diagnostics.iter().any(|d| d.message.contains("not searched")));
+    assert_eq!(r.summary.blocks, 1);
+}

@@ -70,6 +70,9 @@ struct AuditArgs {
     /// Number of samples to run (models with a fixed batch run it in passes of that batch).
     #[arg(long, value_name = "N", default_value_t = 8)]
     batch: usize,
+    /// Most samples per forward pass (models with a symbolic batch; default: all at once).
+    #[arg(long, value_name = "N")]
+    pass_batch: Option<usize>,
     /// Seed of the input generator.
     #[arg(long, value_name = "N", default_value_t = 0)]
     seed: u64,
@@ -221,6 +224,7 @@ fn run(args: Args) -> anyhow::Result<ExitCode> {
                 scan: a.limits.config(),
                 inputs: InputConfig {
                     samples: a.batch,
+                    max_pass: a.pass_batch,
                     seed: a.seed,
                     dist: match a.dist {
                         DistArg::Normal => Dist::Normal,

@@ -35,6 +35,9 @@ pub enum Dist {
 pub struct InputConfig {
     /// Number of samples to run.
     pub samples: usize,
+    /// Most samples in one forward pass of a model with a symbolic batch
+    /// (`None`: all at once); bounds memory on large models.
+    pub max_pass: Option<usize>,
     /// Seed of the generator.
     pub seed: u64,
     /// Distribution of float inputs.
@@ -181,6 +184,10 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
             .next()
             .and_then(|s| s.first().map(|&d| d as usize))
             .unwrap_or(samples),
+    };
+    let pass_batch = match (fixed_batch, config.max_pass) {
+        (None, Some(m)) if m > 0 => pass_batch.min(m),
+        _ => pass_batch,
     };
     if pass_batch == 0 {
         return Err(usage("an input declares a batch of 0"));
@@ -453,6 +460,7 @@ mod tests {
     fn config(samples: usize) -> InputConfig {
         InputConfig {
             samples,
+            max_pass: None,
             seed: 7,
             dist: Dist::Normal,
             scale: 1.0,
