@@ -15,3 +15,5 @@ mod fixtures;
 mod real_exports;
 // Statistics against onnxruntime on the same inputs.
 mod reference_stats;
+// Broken and hostile model files: each with its expected error.
+mod hostile;

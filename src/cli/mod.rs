@@ -180,7 +180,10 @@ pub fn main() -> ExitCode {
             if is_broken_pipe(&e) {
                 return ExitCode::SUCCESS;
             }
-            let _ = writeln!(std::io::stderr(), "shunt: error: {e:#}");
+            // Names in the message come from the file: escaped, so a name
+            // with a newline or an escape sequence keeps the error one line.
+            let message = shunt::report::table::terminal_safe(&format!("{e:#}"));
+            let _ = writeln!(std::io::stderr(), "shunt: error: {message}");
             ExitCode::from(2)
         }
         Err(panic) => {
@@ -189,6 +192,7 @@ pub fn main() -> ExitCode {
                 .map(String::as_str)
                 .or_else(|| panic.downcast_ref::<&str>().copied())
                 .unwrap_or("unknown cause");
+            let what = shunt::report::table::terminal_safe(what);
             let _ =
                 writeln!(std::io::stderr(), "shunt: internal error: {what} (please report this)");
             ExitCode::from(2)

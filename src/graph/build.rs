@@ -6,7 +6,7 @@ use std::cmp::Reverse;
 use std::collections::{BinaryHeap, HashMap};
 
 use crate::error::{Diagnostic, Error, ErrorKind, Result, invalid};
-use crate::graph::{Dim, Fact, Graph, Node, NodeId, Source, Value, ValueId, shape};
+use crate::graph::{Dim, Fact, Graph, Node, NodeId, Source, Value, ValueId, op, shape};
 use crate::load::{ExternalData, attr};
 use crate::proto::{ModelProto, TypeProto, type_proto};
 
@@ -24,6 +24,7 @@ pub fn build(
     config: &BuildConfig,
 ) -> Result<(Graph, Vec<Diagnostic>)> {
     let mut diagnostics = Vec::new();
+    let imported: Vec<String> = model.opset_import.iter().map(|o| o.domain.clone()).collect();
     let graph = model.graph.ok_or_else(|| invalid("the model has no graph"))?;
     if graph.node.len() > config.max_nodes {
         return Err(Error::new(
@@ -144,6 +145,8 @@ pub fn build(
         });
     }
 
+    unknown_ops(&nodes, &imported, &mut diagnostics);
+
     // Second pass: wire inputs by name.
     for (index, names) in input_names.into_iter().enumerate() {
         let node_id = NodeId(index as u32);
@@ -217,6 +220,34 @@ pub fn build(
     shape::infer(&mut g);
     debug_assert_eq!(g.validate(), Ok(()));
     Ok((g, diagnostics))
+}
+
+/// One note per op that is neither standard ONNX nor of a known operator set
+/// (it stays an opaque node), naming its first node and how many there are.
+fn unknown_ops(nodes: &[Node], imported: &[String], diagnostics: &mut Vec<Diagnostic>) {
+    let mut seen: Vec<(&str, &str, &str, usize)> = Vec::new();
+    for n in nodes.iter().filter(|n| !op::is_known(&n.domain, &n.op)) {
+        match seen.iter_mut().find(|s| s.0 == n.domain && s.1 == n.op) {
+            Some(s) => s.3 += 1,
+            None => seen.push((&n.domain, &n.op, &n.name, 1)),
+        }
+    }
+    for (domain, op, first, count) in seen {
+        let nodes = if count == 1 { "1 node".to_owned() } else { format!("{count} nodes") };
+        let message = if domain.is_empty() || domain == "ai.onnx" {
+            format!("op '{op}' ({nodes}) is not an ONNX operator: kept as an opaque node")
+        } else {
+            let import = if imported.iter().any(|d| d == domain) {
+                ""
+            } else {
+                ", and the model does not import that domain"
+            };
+            format!(
+                "op '{op}' of domain '{domain}' ({nodes}) is not an operator shunt knows: kept as an opaque node{import}"
+            )
+        };
+        diagnostics.push(Diagnostic::note(Some(first), message));
+    }
 }
 
 /// Kahn's algorithm, taking ready nodes in model order, so a model that is

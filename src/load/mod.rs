@@ -83,6 +83,14 @@ pub fn decode(bytes: Bytes) -> Result<ModelProto> {
         return Err(Error::new(ErrorKind::Decode, "the file is empty, not an ONNX model"));
     }
     let model = ModelProto::decode(bytes).map_err(|e| {
+        // prost stops at 100 levels of nested messages; each subgraph level
+        // (node, attribute, graph) takes three, so about 30 nested If bodies.
+        if e.to_string().contains("recursion limit") {
+            return Error::new(
+                ErrorKind::Limit,
+                "messages are nested more than 100 levels deep (subgraphs inside subgraphs): refused",
+            );
+        }
         Error::new(
             ErrorKind::Decode,
             format!("not an ONNX model, or a truncated one: protobuf decoding failed ({e})"),
@@ -256,6 +264,12 @@ fn check_payload(t: &TensorProto, external: &ExternalData) -> Result<()> {
         return Err(invalid("has no element type".to_owned()));
     }
     let want_bytes = tensor::expected_bytes(t);
+    if want_bytes.is_none() && tensor::dtype_bits(t.data_type).is_some() {
+        return Err(invalid(format!(
+            "declares {n} elements of {}: more bytes than can be counted",
+            tensor::dtype_name(t.data_type)
+        )));
+    }
     if let Some(r) = external.resolve(t)? {
         if let Some(want) = want_bytes
             && r.length != want
