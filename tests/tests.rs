@@ -17,3 +17,5 @@ mod real_exports;
 mod reference_stats;
 // Broken and hostile model files: each with its expected error.
 mod hostile;
+// Properties: random graphs and mutated bytes never panic; census invariance.
+mod properties;
