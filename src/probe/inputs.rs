@@ -338,46 +338,73 @@ fn is_float(dtype: i32) -> bool {
 fn read_feed(path: &Path, specs: &[InputSpec]) -> Result<BTreeMap<String, ArrayD<f64>>> {
     let bad = |m: String| Error::new(ErrorKind::Usage, m).at(path);
     let is_npz = path.extension().is_some_and(|e| e.eq_ignore_ascii_case("npz"));
-    let mut out = BTreeMap::new();
+    let names: Vec<&str> = specs.iter().map(|s| s.name.as_str()).collect();
     if is_npz {
         let file = File::open(path).map_err(|e| bad(crate::load::io_message(&e)))?;
-        let mut npz =
-            NpzReader::new(file).map_err(|e| bad(format!("not a readable .npz file ({e})")))?;
-        let names = npz.names().map_err(|e| bad(format!("not a readable .npz file ({e})")))?;
-        for s in specs {
-            let entry = names
-                .iter()
-                .find(|n| n.as_str() == s.name || n.strip_suffix(".npy") == Some(s.name.as_str()));
-            let Some(entry) = entry else {
-                return Err(bad(format!(
-                    "has no entry for input '{}' (entries: {})",
-                    s.name,
-                    names.join(", ")
-                )));
-            };
-            let entry = entry.clone();
-            let array = read_npz_entry(&mut npz, &entry)
-                .map_err(|m| bad(format!("entry '{entry}': {m}")))?;
-            out.insert(s.name.clone(), array);
-        }
+        read_npz(file, &names).map_err(bad)
     } else {
-        if specs.len() != 1 {
-            return Err(bad(format!(
-                "a .npy file feeds a model with one input; this one has {} (use a .npz with one entry per input)",
-                specs.len()
-            )));
-        }
         let bytes = std::fs::read(path).map_err(|e| bad(crate::load::io_message(&e)))?;
-        let array = read_npy_any(&bytes).map_err(&bad)?;
-        out.insert(specs[0].name.clone(), array);
+        read_npy(&bytes, &names).map_err(bad)
     }
-    let batches: Vec<usize> = out.values().filter_map(|a| a.shape().first().copied()).collect();
+}
+
+/// The arrays of a feed held in memory: the bytes of a `.npz` (`npz: true`,
+/// one entry per name in `names`) or of a `.npy` (one name). The error is the
+/// problem without the file name. The fuzz target `npy_feed` calls this.
+pub fn read_feed_bytes(
+    bytes: &[u8],
+    npz: bool,
+    names: &[&str],
+) -> std::result::Result<BTreeMap<String, ArrayD<f64>>, String> {
+    if npz { read_npz(std::io::Cursor::new(bytes), names) } else { read_npy(bytes, names) }
+}
+
+fn read_npz<R: std::io::Read + std::io::Seek>(
+    reader: R,
+    names: &[&str],
+) -> std::result::Result<BTreeMap<String, ArrayD<f64>>, String> {
+    let mut npz = NpzReader::new(reader).map_err(|e| format!("not a readable .npz file ({e})"))?;
+    let entries = npz.names().map_err(|e| format!("not a readable .npz file ({e})"))?;
+    let mut out = BTreeMap::new();
+    for &name in names {
+        let entry =
+            entries.iter().find(|n| n.as_str() == name || n.strip_suffix(".npy") == Some(name));
+        let Some(entry) = entry else {
+            return Err(format!(
+                "has no entry for input '{name}' (entries: {})",
+                entries.join(", ")
+            ));
+        };
+        let entry = entry.clone();
+        let array =
+            read_npz_entry(&mut npz, &entry).map_err(|m| format!("entry '{entry}': {m}"))?;
+        out.insert(name.to_owned(), array);
+    }
+    same_samples(out)
+}
+
+fn read_npy(
+    bytes: &[u8],
+    names: &[&str],
+) -> std::result::Result<BTreeMap<String, ArrayD<f64>>, String> {
+    if names.len() != 1 {
+        return Err(format!(
+            "a .npy file feeds a model with one input; this one has {} (use a .npz with one entry per input)",
+            names.len()
+        ));
+    }
+    let array = read_npy_any(bytes)?;
+    same_samples(BTreeMap::from([(names[0].to_owned(), array)]))
+}
+
+fn same_samples(
+    arrays: BTreeMap<String, ArrayD<f64>>,
+) -> std::result::Result<BTreeMap<String, ArrayD<f64>>, String> {
+    let batches: Vec<usize> = arrays.values().filter_map(|a| a.shape().first().copied()).collect();
     if batches.windows(2).any(|w| w[0] != w[1]) {
-        return Err(
-            bad("its arrays disagree on the number of samples (the first axis)".to_owned()),
-        );
+        return Err("its arrays disagree on the number of samples (the first axis)".to_owned());
     }
-    Ok(out)
+    Ok(arrays)
 }
 
 fn read_npy_any(bytes: &[u8]) -> std::result::Result<ArrayD<f64>, String> {
