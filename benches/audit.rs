@@ -12,7 +12,9 @@
 //! - `recipe`: the probe's recipe without statistics, interleaved with the
 //!   plain plan in one process: watched tensors kept as outputs while
 //!   optimising, outputs reset, run with an evaluation callback that only
-//!   calls `eval`; isolates the cost of de-fusing and of the callback;
+//!   calls `eval`; isolates the cost of de-fusing and of the callback; and
+//!   `audit_file` in the same loop, so that its run with statistics is
+//!   compared with the plain run in the same process;
 //! - `audit`: `shunt::audit::audit_file` end to end with the command line's
 //!   defaults, a warm-up and [`RUNS`] timed runs, split into phases by a
 //!   timing [`Progress`].
@@ -41,7 +43,7 @@ use tract_onnx::tract_core::plan::{SimpleState, eval};
 const BATCH: usize = 8;
 const RUNS: usize = 3;
 /// Rounds of the three children, interleaved against drifts of the machine.
-const ROUNDS: usize = 2;
+const ROUNDS: usize = 3;
 /// The phases of an audit, in order.
 const PHASES: [&str; 4] = [
     "scan (load + analyse)",
@@ -60,6 +62,7 @@ fn audit_config() -> AuditConfig {
         scan: ScanConfig::standard(),
         inputs: InputConfig {
             samples: BATCH,
+            max_pass: None,
             seed: 0,
             dist: Dist::Normal,
             scale: 1.0,
@@ -226,7 +229,9 @@ fn child_recipe(path: &Path) -> Value {
     let mut recipe_state = SimpleState::new(&recipe).expect("a state");
     let none = HashSet::new();
     let input = input_tensor();
+    let config = audit_config();
     let (mut a, mut b, mut c) = (Vec::new(), Vec::new(), Vec::new());
+    let (mut d, mut e) = (Vec::new(), Vec::new());
     for i in 0..=RUNS {
         let t0 = cpu();
         std::hint::black_box(plain_state.run(tvec![input.clone()]).expect("run"));
@@ -235,10 +240,17 @@ fn child_recipe(path: &Path) -> Value {
         let t2 = cpu();
         run_eval_noop(&mut recipe_state, &watched, input.clone());
         let t3 = cpu();
+        let clock = Clock::default();
+        std::hint::black_box(audit::audit_file(path, &config, &clock).expect("audit"));
+        let t4 = cpu();
         if i > 0 {
             a.push(t1 - t0);
             b.push(t2 - t1);
             c.push(t3 - t2);
+            d.push(t4 - t3);
+            let marks = clock.marks.borrow();
+            let at = |name: &str| marks.iter().find(|m| m.0 == name).expect("a step").2;
+            e.push(at("finished") - at("running"));
         }
     }
     json!({
@@ -248,6 +260,8 @@ fn child_recipe(path: &Path) -> Value {
         "plain_run_cpu_s": a,
         "plain_eval_noop_cpu_s": b,
         "recipe_eval_noop_cpu_s": c,
+        "audit_cpu_s": d,
+        "audit_run_cpu_s": e,
     })
 }
 
@@ -463,7 +477,7 @@ fn main() {
     let pe = median(&all(&recipe, "plain_eval_noop_cpu_s"));
     let re = median(&all(&recipe, "recipe_eval_noop_cpu_s"));
     println!(
-        "\nrecipe without statistics, CPU time (interleaved in one process; {} watched names on {} outlets):",
+        "\nin one process, interleaved, CPU time ({} watched names on {} outlets):",
         recipe[0]["watched_names"], recipe[0]["watched_outlets"]
     );
     println!("  plain plan, state.run                 {pr:.3} s");
@@ -475,6 +489,13 @@ fn main() {
         "  recipe plan, eval callback (no-op)    {re:.3} s ({:+.1}%)",
         100.0 * (re / pr - 1.0)
     );
-    println!("  recipe load + optimise + plan         {:.3} s", one(&recipe, "recipe_prepare_s"));
+    let ad = median(&all(&recipe, "audit_cpu_s"));
+    let ar = median(&all(&recipe, "audit_run_cpu_s"));
+    println!(
+        "  audit_file, its run with statistics   {ar:.3} s ({:+.1}%)",
+        100.0 * (ar / pr - 1.0)
+    );
+    println!("  audit_file end to end                 {ad:.3} s ({:.2}x the plain run)", ad / pr);
+    println!("  recipe load + optimise + plan (wall)  {:.3} s", one(&recipe, "recipe_prepare_s"));
     println!("\nraw results: plain {plain:?}\nrecipe {recipe:?}\naudit {audits:?}");
 }

@@ -1,6 +1,6 @@
 //! Wall-clock cost of `shunt scan` on big models, and where it goes.
 //!
-//! `cargo bench --bench scan`. Writes the models to a temporary folder, then
+//! `cargo bench --bench scan`. Writes the models to `target/bench/scan/`, then
 //! times, after one warm-up, ~10 runs each of decoding only (`load::load`) and
 //! of the whole scan (`scan::scan_file`), and prints the median and minimum.
 //! The second half checks that the cost of a scan grows linearly with depth
@@ -77,7 +77,8 @@ struct Row {
 }
 
 fn measure(dir: &Path, name: &str, model: &ModelProto) -> Row {
-    let path = dir.join(format!("{name}.onnx"));
+    let file: String = name.split(' ').next().unwrap_or(name).to_owned();
+    let path = dir.join(format!("{file}.onnx"));
     let bytes = model.encode_to_vec();
     std::fs::write(&path, &bytes).expect("write the model");
     let config = ScanConfig::standard();
@@ -106,7 +107,10 @@ fn preact(n: usize) -> ModelProto {
 }
 
 fn main() {
-    let dir = tempfile::tempdir().expect("a temporary folder");
+    // Kept after the run so a model can be scanned again by hand, e.g.
+    // `target/release/shunt scan target/bench/scan/preact-2001.onnx`.
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/bench/scan");
+    std::fs::create_dir_all(&dir).expect("create target/bench/scan");
 
     let mut cfg = ResNetConfig::resnet50();
     cfg.width_divisor = 1;
@@ -121,10 +125,11 @@ fn main() {
         params as f64 * 4.0 / 1e6,
     );
 
-    let mut rows = vec![measure(dir.path(), "resnet50", &resnet50)];
+    let mut rows = vec![measure(&dir, "resnet50", &resnet50)];
     drop(resnet50);
-    rows.push(measure(dir.path(), "preact-1001 (n=111)", &preact(111)));
-    rows.push(measure(dir.path(), "preact-2001 (n=222)", &preact(222)));
+    rows.push(measure(&dir, "preact-1001 (n=111)", &preact(111)));
+    rows.push(measure(&dir, "preact-2001 (n=222)", &preact(222)));
+    rows.push(measure(&dir, "preact-4001 (n=444)", &preact(444)));
 
     println!();
     println!(
@@ -149,16 +154,20 @@ fn main() {
             100.0 * r.decode.cpu.0.as_secs_f64() / r.scan.cpu.0.as_secs_f64(),
         );
     }
-    let (a, b) = (&rows[1], &rows[2]);
     println!();
-    println!(
-        "depth x{:.2} (blocks {} -> {}): scan wall median x{:.2}, scan CPU median x{:.2}, \
-         scan CPU min x{:.2} (2.00 = linear)",
-        b.nodes as f64 / a.nodes as f64,
-        a.blocks,
-        b.blocks,
-        b.scan.wall.0.as_secs_f64() / a.scan.wall.0.as_secs_f64(),
-        b.scan.cpu.0.as_secs_f64() / a.scan.cpu.0.as_secs_f64(),
-        b.scan.cpu.1.as_secs_f64() / a.scan.cpu.1.as_secs_f64(),
-    );
+    for w in rows[1..].windows(2) {
+        let (a, b) = (&w[0], &w[1]);
+        let ratio = |f: fn(&Row) -> Duration| f(b).as_secs_f64() / f(a).as_secs_f64();
+        println!(
+            "depth x{:.2} (blocks {} -> {}): scan CPU median x{:.2}, min x{:.2}; \
+             decode CPU median x{:.2}; wall median x{:.2} (2.00 = linear)",
+            b.nodes as f64 / a.nodes as f64,
+            a.blocks,
+            b.blocks,
+            ratio(|r| r.scan.cpu.0),
+            ratio(|r| r.scan.cpu.1),
+            ratio(|r| r.decode.cpu.0),
+            ratio(|r| r.scan.wall.0),
+        );
+    }
 }
