@@ -56,6 +56,8 @@
 //! | **names** | |
 //! | `hostile_names` | 0; table escapes control characters, JSON keeps names intact |
 //! | `hostile_name_in_error` | 2, one line, no raw escape character |
+//! | **found by fuzzing** | |
+//! | `r7_conv_weight_rank_one` | 0 (a Conv weight of rank 1 made the shape inference index past it) |
 
 use std::fs;
 use std::path::Path;
@@ -862,4 +864,16 @@ fn hostile_name_in_error() {
     let path = write(dir.path(), "evil.onnx", &m);
     let run = shunt(&["scan", &path]);
     assert_refused(&run, &path, "\\u{1b}[31mevil\\u{a}shunt: error: forged");
+}
+
+// ---------------------------------------------------------------- fuzz regressions
+
+#[test]
+fn r7_conv_weight_rank_one() {
+    // Issue 7, found by the decode_scan fuzz target: a Conv weight of rank 1
+    // panicked the shape inference (`&w[2..]`); its output shape is unknown.
+    let dir = tempdir();
+    let m = model(block_graph(weight("w1", &[4, 4, 3, 3]), weight("w2", &[144])));
+    let report = scanned(&write(dir.path(), "conv_rank1.onnx", &m));
+    assert_eq!(report["summary"]["blocks"], 1, "{}", report["blocks"]);
 }

@@ -108,12 +108,12 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
         "Conv" | "ConvInteger" | "FusedConv" => {
             let x = shape_of(g, n, 0)?;
             let w = g.input(n, 1).and_then(|v| g.shape(v))?.to_vec();
-            spatial(&x, known(w.first()?)?, &w[2..], attrs, false)
+            spatial(&x, known(w.first()?)?, w.get(2..)?, attrs, false)
         }
         "QLinearConv" => {
             let x = shape_of(g, n, 0)?;
             let w = g.input(n, 3).and_then(|v| g.shape(v))?.to_vec();
-            spatial(&x, known(w.first()?)?, &w[2..], attrs, false)
+            spatial(&x, known(w.first()?)?, w.get(2..)?, attrs, false)
         }
         "MaxPool" | "AveragePool" | "LpPool" => {
             let x = shape_of(g, n, 0)?;
@@ -154,7 +154,7 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
                     return dims[0].clone();
                 }
                 dims.iter()
-                    .try_fold(1u64, |acc, d| known(d).map(|k| acc * k))
+                    .try_fold(1u64, |acc, d| known(d).and_then(|k| acc.checked_mul(k)))
                     .map_or(Dim::Unknown, Dim::Known)
             };
             let head = if axis == 0 { Dim::Known(1) } else { product(&x[..axis]) };
