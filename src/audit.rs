@@ -76,7 +76,7 @@ pub fn audit_file(path: &Path, config: &AuditConfig, progress: &dyn Progress) ->
     );
     let analysis =
         scan::analyse(loaded.model, loaded.external, &config.scan).map_err(|e| e.at(path))?;
-    run(info, &analysis, ModelSource::Path(path), config, progress).map_err(|e| e.at(path))
+    run(info, analysis, ModelSource::Path(path), config, progress).map_err(|e| e.at(path))
 }
 
 /// Audits an in-memory model (tests, benchmarks); `label` stands for the path.
@@ -90,22 +90,24 @@ pub fn audit_model(
     let external = ExternalData::none();
     let info = scan::model_info(label, bytes.len() as u64, &model, &external);
     let analysis = scan::analyse(model, external, &config.scan)?;
-    run(info, &analysis, ModelSource::Bytes(&bytes), config, progress)
+    run(info, analysis, ModelSource::Bytes(&bytes), config, progress)
 }
 
 fn run(
     info: crate::report::ModelInfo,
-    analysis: &Analysis,
+    analysis: Analysis,
     source: ModelSource<'_>,
     config: &AuditConfig,
     progress: &dyn Progress,
 ) -> Result<Audit> {
-    let mut report = scan::report_of(info, analysis);
+    let mut report = scan::report_of(info, &analysis);
     report.command = "audit".to_owned();
     let specs = inputs::input_specs(&analysis.graph);
     let feeding = inputs::plan(&specs, &config.inputs)?;
     report.run = Some(run_row(&feeding, &config.findings));
-    let watches = watches(analysis);
+    let watches = watches(&analysis);
+    // The analysis holds the decoded weights: free them before tract loads its own copy.
+    drop(analysis);
     let mut facts = scan::block_facts(&report);
     let (run_error, outputs) = match probe::run(source, &watches, &feeding, progress) {
         Ok(result) => {

@@ -427,30 +427,34 @@ fn observe(
         }
         Role::Output => {
             let (_, x) = floats(value)?;
-            count_non_finite(acc, &x);
-            acc.output_rms.extend(samples(&x, batch).map(stats::rms));
-            if w.relu_after {
-                acc.zeroed.extend(samples(&x, batch).map(stats::fraction_not_positive));
+            let mut finite = true;
+            for sample in samples(&x, batch) {
+                // One pass: the sum of squares, and what a ReLU would zero.
+                let (ss, not_positive) = stats::sum_sq_not_positive(sample);
+                finite &= ss.is_finite();
+                acc.output_rms.push(rms_of(ss, sample.len()));
+                if w.relu_after {
+                    acc.zeroed.push(not_positive as f64 / sample.len().max(1) as f64);
+                }
+            }
+            if !finite {
+                count_non_finite(acc, &x);
             }
         }
         Role::Shortcut => {
-            let (_, x) = floats(value)?;
-            count_non_finite(acc, &x);
-            acc.shortcut_rms.extend(samples(&x, batch).map(stats::rms));
             slot.shortcut = Some(value.clone());
             pair(acc, slot, w, batch)?;
         }
         Role::Branch(k) => {
             slot.branch[k] = Some(value.clone());
-            if slot.branch.iter().all(Option::is_some) {
-                let (_, sum) = branch_sum(slot)?;
-                count_non_finite(acc, &sum);
-                acc.branch_rms.extend(samples(&sum, batch).map(stats::rms));
-                pair(acc, slot, w, batch)?;
-            }
+            pair(acc, slot, w, batch)?;
         }
     }
     Ok(())
+}
+
+fn rms_of(sum_sq: f64, n: usize) -> f64 {
+    if n == 0 { 0.0 } else { (sum_sq / n as f64).sqrt() }
 }
 
 fn count_non_finite(acc: &mut BlockSamples, x: &[f32]) {
@@ -459,56 +463,80 @@ fn count_non_finite(acc: &mut BlockSamples, x: &[f32]) {
     acc.inf += inf;
 }
 
-/// The branch at the merge: the one branch input, or the sum of several.
-fn branch_sum(slot: &Slot) -> Result<(Vec<usize>, Vec<f32>)> {
-    let mut shape = Vec::new();
-    let mut sum: Vec<f32> = Vec::new();
-    for b in slot.branch.iter().flatten() {
-        let (s, x) = floats(b)?;
-        if sum.is_empty() {
-            shape = s;
-            sum = x.into_owned();
-        } else if x.len() == sum.len() {
-            for (a, v) in sum.iter_mut().zip(x.iter()) {
+/// The branch at the merge: the one branch input (borrowed), or the sum of several.
+fn branch_values(slot: &Slot) -> Result<(Vec<usize>, std::borrow::Cow<'_, [f32]>)> {
+    let mut inputs = slot.branch.iter().flatten();
+    let first =
+        inputs.next().ok_or_else(|| Error::new(ErrorKind::Probe, "a block without branch"))?;
+    let (shape, x) = floats(first)?;
+    let mut sum: Option<Vec<f32>> = None;
+    for b in inputs {
+        let (_, y) = floats(b)?;
+        let acc = sum.get_or_insert_with(|| x.to_vec());
+        if y.len() == acc.len() {
+            for (a, v) in acc.iter_mut().zip(y.iter()) {
                 *a += v;
             }
         }
     }
-    Ok((shape, sum))
+    Ok(match sum {
+        Some(v) => (shape, std::borrow::Cow::Owned(v)),
+        None => (shape, x),
+    })
 }
 
-/// Statistics that need shortcut and branch together; drops both afterwards.
+/// Everything that needs the shortcut or the branch, in one pass over both
+/// once both have been seen; the references are dropped afterwards.
 fn pair(acc: &mut BlockSamples, slot: &mut Slot, w: &Watch, batch: usize) -> Result<()> {
     if slot.shortcut.is_none() || slot.branch.iter().any(Option::is_none) {
         return Ok(());
     }
-    let sc = slot.shortcut.take().expect("checked above");
-    let (shape, br) = branch_sum(slot)?;
-    for b in &mut slot.branch {
-        *b = None;
-    }
-    let (sc_shape, sc) = floats(&sc)?;
-    if sc.len() != br.len() || sc_shape != shape {
-        return Ok(());
-    }
-    for (a, b) in samples(&sc, batch).zip(samples(&br, batch)) {
-        if let Some(c) = stats::cosine(a, b) {
-            acc.cosine.push(c);
-        }
-    }
-    // Per-channel sums of squares of one sample: [outer, channels, inner].
-    if shape.len() >= 2 {
-        let axis = if w.channels_first { 1 } else { shape.len() - 1 };
-        let channels = shape[axis];
-        let inner: usize = shape[axis + 1..].iter().product();
-        if acc.channel_shortcut.is_empty() {
+    let sc_value = slot.shortcut.take().expect("checked above");
+    let (sc_shape, sc) = floats(&sc_value)?;
+    let (shape, br) = branch_values(slot)?;
+    let mut finite = true;
+    if sc.len() == br.len() && sc_shape == shape {
+        // Per-channel sums of one sample laid out [outer, channels, inner].
+        let (channels, inner) = if shape.len() >= 2 {
+            let axis = if w.channels_first { 1 } else { shape.len() - 1 };
+            (shape[axis], shape[axis + 1..].iter().product::<usize>())
+        } else {
+            (0, 0)
+        };
+        if acc.channel_shortcut.len() != channels {
             acc.channel_shortcut = vec![0.0; channels];
             acc.channel_branch = vec![0.0; channels];
         }
-        if acc.channel_shortcut.len() == channels {
-            stats::channel_sum_sq(&sc, channels, inner, &mut acc.channel_shortcut);
-            stats::channel_sum_sq(&br, channels, inner, &mut acc.channel_branch);
+        for (a, b) in samples(&sc, batch).zip(samples(&br, batch)) {
+            let (ss, bb, sb) =
+                stats::pair_sums(a, b, inner, &mut acc.channel_shortcut, &mut acc.channel_branch);
+            finite &= ss.is_finite() && bb.is_finite() && sb.is_finite();
+            acc.shortcut_rms.push(rms_of(ss, a.len()));
+            acc.branch_rms.push(rms_of(bb, b.len()));
+            if ss > 0.0 && bb > 0.0 {
+                acc.cosine.push((sb / (ss.sqrt() * bb.sqrt())).clamp(-1.0, 1.0));
+            }
         }
+    } else {
+        // Broadcast merge: each side on its own, no cosine.
+        for a in samples(&sc, batch) {
+            let ss = stats::sum_sq(a);
+            finite &= ss.is_finite();
+            acc.shortcut_rms.push(rms_of(ss, a.len()));
+        }
+        for b in samples(&br, batch) {
+            let bb = stats::sum_sq(b);
+            finite &= bb.is_finite();
+            acc.branch_rms.push(rms_of(bb, b.len()));
+        }
+    }
+    if !finite {
+        count_non_finite(acc, &sc);
+        count_non_finite(acc, &br);
+    }
+    drop(br);
+    for b in &mut slot.branch {
+        *b = None;
     }
     Ok(())
 }

@@ -10,7 +10,7 @@
 //! and both lie strictly between the fork and the merge. Detection never
 //! fails: what it cannot decide becomes a rejected candidate with a reason.
 
-use std::collections::HashSet;
+use std::collections::{HashMap, HashSet};
 
 use crate::graph::op::{self, Family};
 use crate::graph::{Dominance, Graph, NodeId, ValueId};
@@ -320,15 +320,24 @@ fn shortcut_kind(g: &Graph, path: &[NodeId], is_merge: bool) -> Option<(Shortcut
 /// Parent and depth of each item, where item `j` is inside item `i` when
 /// `i`'s branch holds `j`'s merge node.
 fn nesting<'a>(items: impl Iterator<Item = (NodeId, &'a [NodeId])>) -> Vec<(Option<usize>, usize)> {
-    let items: Vec<(NodeId, HashSet<NodeId>)> =
-        items.map(|(m, b)| (m, b.iter().copied().collect())).collect();
-    (0..items.len())
-        .map(|j| {
-            let merge = items[j].0;
-            let enclosing: Vec<usize> =
-                (0..items.len()).filter(|&i| i != j && items[i].1.contains(&merge)).collect();
-            let parent = enclosing.iter().copied().min_by_key(|&i| items[i].1.len());
-            (parent, enclosing.len())
-        })
-        .collect()
+    // One walk over every branch, looking its nodes up among the merges:
+    // linear in the total size of the branches.
+    let items: Vec<(NodeId, &[NodeId])> = items.collect();
+    let by_merge: HashMap<NodeId, usize> =
+        items.iter().enumerate().map(|(i, (m, _))| (*m, i)).collect();
+    let mut out: Vec<(Option<usize>, usize)> = vec![(None, 0); items.len()];
+    for (i, (_, branch)) in items.iter().enumerate() {
+        for n in *branch {
+            let Some(&j) = by_merge.get(n) else { continue };
+            if j == i {
+                continue;
+            }
+            let (parent, depth) = &mut out[j];
+            *depth += 1;
+            if parent.is_none_or(|p| items[i].1.len() < items[p].1.len()) {
+                *parent = Some(i);
+            }
+        }
+    }
+    out
 }

@@ -52,6 +52,97 @@ pub fn dot(a: &[f32], b: &[f32]) -> f64 {
     total
 }
 
+/// Sums of squares of `a` and `b` and their dot product, in one pass.
+pub fn sums3(a: &[f32], b: &[f32]) -> (f64, f64, f64) {
+    debug_assert_eq!(a.len(), b.len());
+    let (mut ta, mut tb, mut tab) = (0f64, 0f64, 0f64);
+    for (ca, cb) in a.chunks(CHUNK).zip(b.chunks(CHUNK)) {
+        let mut la = [0f32; 8];
+        let mut lb = [0f32; 8];
+        let mut lab = [0f32; 8];
+        let mut ia = ca.chunks_exact(8);
+        let mut ib = cb.chunks_exact(8);
+        for (x, y) in (&mut ia).zip(&mut ib) {
+            for i in 0..8 {
+                la[i] += x[i] * x[i];
+                lb[i] += y[i] * y[i];
+                lab[i] += x[i] * y[i];
+            }
+        }
+        ta += la.iter().map(|&v| v as f64).sum::<f64>();
+        tb += lb.iter().map(|&v| v as f64).sum::<f64>();
+        tab += lab.iter().map(|&v| v as f64).sum::<f64>();
+        for (&x, &y) in ia.remainder().iter().zip(ib.remainder()) {
+            ta += x as f64 * x as f64;
+            tb += y as f64 * y as f64;
+            tab += x as f64 * y as f64;
+        }
+    }
+    (ta, tb, tab)
+}
+
+/// [`sums3`] of one sample laid out `[outer, channels, inner]`, adding each
+/// channel's sums of squares to `ch_a` and `ch_b` (left alone when empty).
+pub fn pair_sums(
+    a: &[f32],
+    b: &[f32],
+    inner: usize,
+    ch_a: &mut [f64],
+    ch_b: &mut [f64],
+) -> (f64, f64, f64) {
+    let channels = ch_a.len();
+    if channels == 0 || inner == 0 || ch_b.len() != channels {
+        return sums3(a, b);
+    }
+    let (mut ta, mut tb, mut tab) = (0f64, 0f64, 0f64);
+    if inner >= 8 {
+        for (i, (xa, xb)) in a.chunks(inner).zip(b.chunks(inner)).enumerate() {
+            let (sa, sb, sab) = sums3(xa, xb);
+            ch_a[i % channels] += sa;
+            ch_b[i % channels] += sb;
+            ta += sa;
+            tb += sb;
+            tab += sab;
+        }
+        return (ta, tb, tab);
+    }
+    // Channels last (or nearly): accumulate element by element.
+    for (i, (&x, &y)) in a.iter().zip(b).enumerate() {
+        let c = (i / inner) % channels;
+        let (x, y) = (x as f64, y as f64);
+        ch_a[c] += x * x;
+        ch_b[c] += y * y;
+        ta += x * x;
+        tb += y * y;
+        tab += x * y;
+    }
+    (ta, tb, tab)
+}
+
+/// Sum of squares and the number of values that are not positive, in one pass.
+pub fn sum_sq_not_positive(x: &[f32]) -> (f64, u64) {
+    let mut total = 0f64;
+    let mut not_positive = 0u64;
+    for chunk in x.chunks(CHUNK) {
+        let mut lanes = [0f32; 8];
+        let mut counts = [0u32; 8];
+        let mut it = chunk.chunks_exact(8);
+        for c in &mut it {
+            for i in 0..8 {
+                lanes[i] += c[i] * c[i];
+                counts[i] += (c[i] <= 0.0) as u32;
+            }
+        }
+        total += lanes.iter().map(|&v| v as f64).sum::<f64>();
+        not_positive += counts.iter().map(|&c| c as u64).sum::<u64>();
+        for &v in it.remainder() {
+            total += v as f64 * v as f64;
+            not_positive += (v <= 0.0) as u64;
+        }
+    }
+    (total, not_positive)
+}
+
 /// Root mean square; 0 for an empty slice.
 pub fn rms(x: &[f32]) -> f64 {
     if x.is_empty() { 0.0 } else { (sum_sq(x) / x.len() as f64).sqrt() }
@@ -161,6 +252,32 @@ mod tests {
         let y: Vec<f32> = x.iter().rev().copied().collect();
         let plain_dot: f64 = x.iter().zip(&y).map(|(&a, &b)| a as f64 * b as f64).sum();
         assert!((dot(&x, &y) - plain_dot).abs() / plain_dot.abs() < 1e-5);
+    }
+
+    #[test]
+    fn fused_sums_match_separate_ones() {
+        let a: Vec<f32> = (0..1000).map(|i| (i as f32 * 0.37).sin()).collect();
+        let b: Vec<f32> = (0..1000).map(|i| (i as f32 * 0.11).cos()).collect();
+        let (sa, sb, sab) = sums3(&a, &b);
+        assert!((sa - sum_sq(&a)).abs() < 1e-9 * sa);
+        assert!((sb - sum_sq(&b)).abs() < 1e-9 * sb);
+        assert!((sab - dot(&a, &b)).abs() < 1e-6);
+        // [C=4, inner=250] and [T=250, C=4] give the same totals as the flat sums.
+        for inner in [250, 1] {
+            let (mut ca, mut cb) = (vec![0.0; 4], vec![0.0; 4]);
+            let (ta, tb, tab) = pair_sums(&a, &b, inner, &mut ca, &mut cb);
+            // f32 lanes summed over other chunk boundaries: float32 rounding.
+            assert!(
+                (ta - sa).abs() < 1e-6 * sa
+                    && (tb - sb).abs() < 1e-6 * sb
+                    && (tab - sab).abs() < 1e-5
+            );
+            assert!((ca.iter().sum::<f64>() - sa).abs() < 1e-6 * sa);
+        }
+        let (mut ca, mut cb) = (vec![0.0; 2], vec![0.0; 2]);
+        pair_sums(&[1.0, 1.0, 2.0, 2.0], &[0.0; 4], 1, &mut ca, &mut cb);
+        assert_eq!(ca, vec![5.0, 5.0]);
+        assert_eq!(sum_sq_not_positive(&[-1.0, 0.0, 2.0]), (5.0, 2));
     }
 
     #[test]
