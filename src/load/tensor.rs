@@ -184,18 +184,7 @@ pub fn read_f32(tensor: &TensorProto, external: &ExternalData, max_bytes: u64) -
             _ => return Err(unsupported(tensor)),
         },
     };
-    if values.len() as u64 != n {
-        return Err(Error::new(
-            ErrorKind::Invalid,
-            format!(
-                "tensor '{}' holds {} values but its dims {:?} need {n}",
-                tensor.name,
-                values.len(),
-                tensor.dims
-            ),
-        ));
-    }
-    Ok(values)
+    with_count(tensor, values, n)
 }
 
 /// Decodes an integer tensor (int64 or int32) to `i64`: shapes, axes, pads.
@@ -219,6 +208,11 @@ pub fn read_i64(tensor: &TensorProto, external: &ExternalData, max_bytes: u64) -
             _ => return Err(unsupported(tensor)),
         },
     };
+    with_count(tensor, values, n)
+}
+
+/// `values`, if there are as many as the tensor's dims need.
+fn with_count<T>(tensor: &TensorProto, values: Vec<T>, n: u64) -> Result<Vec<T>> {
     if values.len() as u64 != n {
         return Err(Error::new(
             ErrorKind::Invalid,
