@@ -227,6 +227,72 @@ impl Spread {
     }
 }
 
+/// How closely one output tensor follows a reference of the same length.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Agreement {
+    /// `‖other − reference‖ / ‖reference‖`; 0 when both are zero, infinite when
+    /// only the reference is zero.
+    pub rel_l2: f64,
+    /// Cosine similarity; `None` when either is all zeros.
+    pub cosine: Option<f64>,
+    /// Fraction of rows whose largest entry sits at the same index, when the
+    /// tensors are rows of class scores (`classes` ≥ 2 divides the length).
+    pub top1: Option<f64>,
+}
+
+/// Agreement of `other` with `reference`; `None` when the lengths differ or
+/// the reference is empty. `classes` is the length of the last axis when the
+/// output looks like class scores (`[batch, classes]`), else `None`.
+pub fn agreement(reference: &[f32], other: &[f32], classes: Option<usize>) -> Option<Agreement> {
+    if reference.len() != other.len() || reference.is_empty() {
+        return None;
+    }
+    let (rr, oo, ro) = sums3(reference, other);
+    // ‖a − b‖² = ‖a‖² + ‖b‖² − 2 a·b loses everything to cancellation when the
+    // two are close, so the difference is summed directly.
+    let diff: f64 = reference
+        .iter()
+        .zip(other)
+        .map(|(&a, &b)| {
+            let d = f64::from(a) - f64::from(b);
+            d * d
+        })
+        .sum();
+    let rel_l2 = if rr > 0.0 {
+        (diff / rr).sqrt()
+    } else if diff == 0.0 {
+        0.0
+    } else {
+        f64::INFINITY
+    };
+    let cosine = (rr > 0.0 && oo > 0.0).then(|| (ro / (rr.sqrt() * oo.sqrt())).clamp(-1.0, 1.0));
+    let top1 = classes.filter(|&c| c >= 2 && reference.len() % c == 0).map(|c| {
+        let rows = reference.len() / c;
+        let same = reference
+            .chunks(c)
+            .zip(other.chunks(c))
+            .filter(|(a, b)| argmax(a) == argmax(b))
+            .count();
+        same as f64 / rows as f64
+    });
+    Some(Agreement { rel_l2, cosine, top1 })
+}
+
+/// Index of the largest value (the first one on ties; NaN never wins).
+fn argmax(x: &[f32]) -> Option<usize> {
+    let mut best: Option<(usize, f32)> = None;
+    for (i, &v) in x.iter().enumerate() {
+        if v.is_nan() {
+            continue;
+        }
+        if best.is_none_or(|(_, b)| v > b) {
+            best = Some((i, v));
+        }
+    }
+    best.map(|(i, _)| i)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -298,5 +364,25 @@ mod tests {
         assert_eq!((s.mean, s.std, s.min, s.max), (2.0, 1.0, 1.0, 3.0));
         assert!(Spread::of(&[]).is_none());
         assert!(Spread::of(&[f64::NAN]).is_none());
+    }
+
+    #[test]
+    fn agreement_of_outputs() {
+        // Two rows of three class scores; the second row's winner moves.
+        let a = [1.0, 2.0, 3.0, 3.0, 2.0, 1.0];
+        let b = [1.0, 2.0, 3.5, 1.0, 2.0, 3.0];
+        let g = agreement(&a, &b, Some(3)).unwrap();
+        assert_eq!(g.top1, Some(0.5));
+        // ‖a − b‖² = 0.25 + 4 + 4 = 8.25; ‖a‖² = 28.
+        assert!((g.rel_l2 - (8.25f64 / 28.0).sqrt()).abs() < 1e-12);
+        let same = agreement(&a, &a, None).unwrap();
+        assert_eq!((same.rel_l2, same.top1), (0.0, None));
+        assert!((same.cosine.unwrap() - 1.0).abs() < 1e-12);
+        // A tiny change is not lost to cancellation.
+        let c = [1.0, 2.0, 3.0, 3.0, 2.0, 1.0 + 1e-6];
+        let tiny = agreement(&a, &c, None).unwrap().rel_l2;
+        assert!((tiny / (1e-6 / 28f64.sqrt()) - 1.0).abs() < 0.05, "{tiny}");
+        assert!(agreement(&a, &a[..3], None).is_none());
+        assert_eq!(agreement(&[0.0], &[1.0], None).unwrap().rel_l2, f64::INFINITY);
     }
 }
