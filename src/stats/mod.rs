@@ -267,7 +267,7 @@ pub fn agreement(reference: &[f32], other: &[f32], classes: Option<usize>) -> Op
         f64::INFINITY
     };
     let cosine = (rr > 0.0 && oo > 0.0).then(|| (ro / (rr.sqrt() * oo.sqrt())).clamp(-1.0, 1.0));
-    let top1 = classes.filter(|&c| c >= 2 && reference.len() % c == 0).map(|c| {
+    let top1 = classes.filter(|&c| c >= 2 && reference.len().is_multiple_of(c)).map(|c| {
         let rows = reference.len() / c;
         let same = reference
             .chunks(c)
