@@ -17,6 +17,7 @@
 pub mod audit;
 pub mod classify;
 pub mod error;
+pub mod expect;
 pub mod findings;
 pub mod graph;
 pub mod load;
@@ -26,6 +27,7 @@ pub mod report;
 pub mod residual;
 pub mod scan;
 pub mod stats;
+pub mod structure;
 #[doc(hidden)]
 pub mod testkit;
 

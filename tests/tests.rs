@@ -19,3 +19,5 @@ mod reference_stats;
 mod hostile;
 // Properties: random graphs and mutated bytes never panic; census invariance.
 mod properties;
+// Structure pins, expectations and model-to-model comparison.
+mod intent;

@@ -3,6 +3,7 @@
 #![allow(clippy::print_stdout, clippy::print_stderr)]
 
 mod output;
+mod pin;
 mod progress;
 
 use std::collections::BTreeMap;
@@ -33,6 +34,10 @@ enum Command {
     Scan(ScanArgs),
     /// Scan, then run the model on the CPU and measure every block's branch against its shortcut.
     Audit(AuditArgs),
+    /// Write a model's residual structure to a reviewable TOML file (no statistics, no node names).
+    Pin(pin::PinArgs),
+    /// Check a model against a pin file or a hand-written expectation; exit 1 on any difference.
+    Verify(pin::VerifyArgs),
 }
 
 #[derive(Debug, clap::Args)]
@@ -202,6 +207,8 @@ pub fn main() -> ExitCode {
 
 fn run(args: Args) -> anyhow::Result<ExitCode> {
     match args.command {
+        Command::Pin(a) => pin::pin(&a),
+        Command::Verify(a) => pin::verify(&a),
         Command::Scan(a) => {
             let fail_on = parse_fail_on(a.out.fail_on.as_deref())?;
             let report = scan::scan_file(&a.model, &a.limits.config())?;

@@ -1,0 +1,322 @@
+//! `shunt pin`, `shunt verify` and `shunt compare` on pairs of models made by
+//! real transformations: PyTorch's exporter with BatchNorm kept and folded
+//! (`fixtures/torch/resnet_cifar_bn.onnx`, `resnet_cifar_folded.onnx`),
+//! onnxruntime's `quantize_static` in QDQ form (`resnet_cifar_qdq.onnx`;
+//! all three written by `fixtures/torch/export.py`), and copies changed by
+//! graph surgery (`shunt::testkit::surgery`) in each test.
+
+use std::path::{Path, PathBuf};
+
+use prost::Message;
+
+use shunt::proto::ModelProto;
+use shunt::testkit::surgery;
+
+use crate::util::{Run, fixture, shunt, tempdir};
+
+fn torch(name: &str) -> String {
+    fixture(&format!("torch/{name}")).display().to_string()
+}
+
+fn decode(path: &str) -> ModelProto {
+    ModelProto::decode(std::fs::read(path).expect("fixture").as_slice()).expect("decodes")
+}
+
+fn save(dir: &Path, name: &str, m: &ModelProto) -> String {
+    let p = dir.join(name);
+    std::fs::write(&p, m.encode_to_vec()).expect("write");
+    p.display().to_string()
+}
+
+fn json(run: &Run) -> serde_json::Value {
+    serde_json::from_str(&run.stdout)
+        .unwrap_or_else(|e| panic!("not JSON ({e}): {}\n{}", run.stdout, run.stderr))
+}
+
+fn pin(dir: &Path, model: &str) -> String {
+    let out = dir.join("pin.toml").display().to_string();
+    let run = shunt(&["pin", model, "-o", &out]);
+    assert_eq!(run.code, 0, "{}", run.stderr);
+    out
+}
+
+/// The block table of a model as `(merge output, shortcut input, fork)`.
+fn blocks(model: &str) -> Vec<(String, String, String)> {
+    let run = shunt(&["scan", model, "--format", "json"]);
+    assert_eq!(run.code, 0, "{}", run.stderr);
+    json(&run)["blocks"]
+        .as_array()
+        .expect("blocks")
+        .iter()
+        .map(|b| {
+            let s = |v: &serde_json::Value| v.as_str().expect("string").to_owned();
+            (s(&b["output"]), s(&b["shortcut"]["input"]), s(&b["fork"]))
+        })
+        .collect()
+}
+
+/// resnet_cifar_folded with the shortcut of its fourth block (second of stage 2) removed.
+fn shortcut_removed(dir: &Path) -> String {
+    let src = torch("resnet_cifar_folded.onnx");
+    let b = blocks(&src);
+    let mut m = decode(&src);
+    assert!(surgery::remove_shortcut(&mut m, &b[3].0, &b[3].1));
+    save(dir, "shortcut_removed.onnx", &m)
+}
+
+/// resnet_cifar_folded with its first two blocks (stage 1) in swapped order.
+fn swapped(dir: &Path) -> String {
+    let src = torch("resnet_cifar_folded.onnx");
+    let b = blocks(&src);
+    let mut m = decode(&src);
+    // Block k's input is its fork; block 3's fork is block 2's output after the ReLU.
+    assert!(surgery::swap_blocks(&mut m, &b[0].2, &b[1].2, &b[2].2));
+    save(dir, "swapped.onnx", &m)
+}
+
+#[test]
+fn pin_then_verify_the_same_model_matches() {
+    let dir = tempdir();
+    let model = torch("resnet_cifar_bn.onnx");
+    let pin = pin(dir.path(), &model);
+    let text = std::fs::read_to_string(&pin).unwrap();
+    // No statistics and no node names: nothing an exporter renames.
+    assert!(!text.contains("/blocks"), "{text}");
+    assert!(!text.contains("Add"), "{text}");
+    assert_eq!(text.matches("[[block]]").count(), 6, "{text}");
+    assert_eq!(text.matches("[[stage]]").count(), 3, "{text}");
+    let run = shunt(&["verify", &model, "--pin", &pin]);
+    assert_eq!(run.code, 0, "{}{}", run.stdout, run.stderr);
+    assert!(run.stdout.contains("matches"), "{}", run.stdout);
+    // Pinning is deterministic: the same model gives the same bytes.
+    let again = dir.path().join("again.toml").display().to_string();
+    assert_eq!(shunt(&["pin", &model, "-o", &again]).code, 0);
+    assert_eq!(std::fs::read(&pin).unwrap(), std::fs::read(&again).unwrap());
+}
+
+#[test]
+fn batchnorm_folded_and_quantised_exports_match_the_pin() {
+    let dir = tempdir();
+    let pin = pin(dir.path(), &torch("resnet_cifar_bn.onnx"));
+    // export.py: the same module and weights, BN folded (TrainingMode.EVAL), and
+    // the folded model through onnxruntime quantize_static (QDQ).
+    for other in ["resnet_cifar_folded.onnx", "resnet_cifar_qdq.onnx"] {
+        let run = shunt(&["verify", &torch(other), "--pin", &pin, "--format", "json"]);
+        assert_eq!(run.code, 0, "{other}: {}{}", run.stdout, run.stderr);
+        let v = json(&run);
+        assert_eq!(v["schema"], "shunt/verify");
+        assert_eq!(v["schema_version"], 1);
+        assert_eq!(v["differences"].as_array().unwrap().len(), 0);
+    }
+}
+
+#[test]
+fn a_removed_shortcut_is_named() {
+    let dir = tempdir();
+    let pin = pin(dir.path(), &torch("resnet_cifar_bn.onnx"));
+    let broken = shortcut_removed(dir.path());
+    let run = shunt(&["verify", &broken, "--pin", &pin]);
+    assert_eq!(run.code, 1, "{}{}", run.stdout, run.stderr);
+    assert!(run.stdout.contains("missing-block"), "{}", run.stdout);
+    assert!(run.stdout.contains("pinned block 4"), "{}", run.stdout);
+    // Where it was expected: after the stage's projection block (the third merge).
+    assert!(run.stdout.contains("/blocks/blocks.2/Add"), "{}", run.stdout);
+    let v = json(&shunt(&["verify", &broken, "--pin", &pin, "--format", "json"]));
+    let codes: Vec<(&str, Option<u64>)> = v["differences"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|d| (d["code"].as_str().unwrap(), d["pinned"].as_u64().or(d["stage"].as_u64())))
+        .collect();
+    assert_eq!(codes, vec![("missing-block", Some(4)), ("stage-blocks", Some(2))], "{v:#}");
+}
+
+#[test]
+fn swapped_twin_blocks_keep_the_architecture_and_reordered_pins_are_caught() {
+    let dir = tempdir();
+    let pin = pin(dir.path(), &torch("resnet_cifar_folded.onnx"));
+    // Blocks 1 and 2 have the same structure: swapping them changes the
+    // weights each position holds, not the architecture.
+    let twins = swapped(dir.path());
+    let run = shunt(&["verify", &twins, "--pin", &pin]);
+    assert_eq!(run.code, 0, "{}{}", run.stdout, run.stderr);
+    // Blocks 3 (projection) and 4 (identity) differ: a pin that lists them
+    // in the other order is a swap, reported once.
+    let text = std::fs::read_to_string(&pin).unwrap();
+    let parts: Vec<&str> = text.split("\n[[block]]").collect();
+    let mut order = parts.clone();
+    order.swap(3, 4);
+    let reordered = dir.path().join("reordered.toml");
+    std::fs::write(&reordered, order.join("\n[[block]]")).unwrap();
+    let reordered = reordered.display().to_string();
+    let run = shunt(&["verify", &torch("resnet_cifar_folded.onnx"), "--pin", &reordered]);
+    assert_eq!(run.code, 1, "{}{}", run.stdout, run.stderr);
+    let v = json(&shunt(&[
+        "verify",
+        &torch("resnet_cifar_folded.onnx"),
+        "--pin",
+        &reordered,
+        "--format",
+        "json",
+    ]));
+    let codes: Vec<&str> =
+        v["differences"].as_array().unwrap().iter().map(|d| d["code"].as_str().unwrap()).collect();
+    assert_eq!(codes, vec!["swapped-blocks"], "{v:#}");
+}
+
+#[test]
+fn a_changed_shortcut_kind_and_placement_are_reported() {
+    let dir = tempdir();
+    let pin = pin(dir.path(), &torch("resnet_cifar_folded.onnx"));
+    let text = std::fs::read_to_string(&pin).unwrap();
+    // Edit the pin as a reviewer would: block 4 was meant to be a projection,
+    // block 6 pre-activation.
+    let mut parts: Vec<String> = text.split("\n[[block]]").map(str::to_owned).collect();
+    parts[4] = parts[4].replace("shortcut = \"identity\"", "shortcut = \"projection\"");
+    parts[6] = parts[6].replace("post-activation", "pre-activation");
+    let edited = dir.path().join("edited.toml");
+    std::fs::write(&edited, parts.join("\n[[block]]")).unwrap();
+    let edited = edited.display().to_string();
+    let v = json(&shunt(&[
+        "verify",
+        &torch("resnet_cifar_folded.onnx"),
+        "--pin",
+        &edited,
+        "--format",
+        "json",
+    ]));
+    let codes: Vec<(&str, u64)> = v["differences"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|d| (d["code"].as_str().unwrap(), d["block"].as_u64().unwrap()))
+        .collect();
+    assert_eq!(codes, vec![("shortcut-changed", 4), ("placement-changed", 6)], "{v:#}");
+}
+
+#[test]
+fn bad_pin_files_are_errors() {
+    let dir = tempdir();
+    let model = torch("resnet_cifar_folded.onnx");
+    let bad = dir.path().join("bad.toml");
+    std::fs::write(&bad, "schema = \"shunt/pin\"\nschema_version = 9\n").unwrap();
+    let bad = bad.display().to_string();
+    let run = shunt(&["verify", &model, "--pin", &bad]);
+    assert_eq!(run.code, 2);
+    assert!(run.stderr.contains("bad.toml") && run.stderr.contains("version 9"), "{}", run.stderr);
+    let missing = dir.path().join("none.toml").display().to_string();
+    let run = shunt(&["verify", &model, "--pin", &missing]);
+    assert_eq!(run.code, 2);
+    assert!(run.stderr.contains("none.toml"), "{}", run.stderr);
+    assert!(!run.stderr.contains("panicked"));
+    // Neither --pin nor --expect.
+    assert_eq!(shunt(&["verify", &model]).code, 2);
+    // pin never writes over its model.
+    let run = shunt(&["pin", &model, "-o", &model]);
+    assert_eq!(run.code, 2);
+    let _ = PathBuf::from(&model);
+}
+
+/// The fenced code blocks of README.md with the given info string.
+fn readme_blocks(info: &str) -> Vec<String> {
+    let text = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("README.md"))
+        .expect("README.md");
+    let mut out = Vec::new();
+    let mut current: Option<String> = None;
+    for line in text.lines() {
+        match &mut current {
+            None if line.trim_end() == format!("```{info}") => current = Some(String::new()),
+            Some(_) if line.trim_end() == "```" => out.extend(current.take()),
+            Some(block) => {
+                block.push_str(line);
+                block.push('\n');
+            }
+            None => {}
+        }
+    }
+    out
+}
+
+#[test]
+fn the_readme_expectation_examples_hold_on_their_models_only() {
+    let examples: Vec<(String, String)> = readme_blocks("toml")
+        .into_iter()
+        .filter_map(|b| {
+            let model = b.lines().next()?.strip_prefix("# checks ")?.trim().to_owned();
+            Some((model, b))
+        })
+        .collect();
+    assert_eq!(examples.len(), 3, "the README shows three expectation examples");
+    let dir = tempdir();
+    for (i, (model, text)) in examples.iter().enumerate() {
+        let file = dir.path().join(format!("example{i}.toml"));
+        std::fs::write(&file, text).unwrap();
+        let file = file.display().to_string();
+        let model_path = Path::new(env!("CARGO_MANIFEST_DIR")).join(model).display().to_string();
+        let run = shunt(&["verify", &model_path, "--expect", &file, "--quiet"]);
+        assert_eq!(run.code, 0, "README example for {model}:\n{}{}", run.stdout, run.stderr);
+        // Each example has teeth: the other examples' models fail it.
+        for (other, _) in examples.iter().filter(|(m, _)| m != model) {
+            let other_path =
+                Path::new(env!("CARGO_MANIFEST_DIR")).join(other).display().to_string();
+            let run = shunt(&["verify", &other_path, "--expect", &file, "--quiet"]);
+            assert_eq!(
+                run.code, 1,
+                "{other} against {model}'s example:\n{}{}",
+                run.stdout, run.stderr
+            );
+        }
+    }
+}
+
+#[test]
+fn the_readme_pin_excerpt_is_real_pin_output() {
+    let dir = tempdir();
+    let real = std::fs::read_to_string(pin(dir.path(), &torch("resnet_cifar_bn.onnx"))).unwrap();
+    let excerpt = readme_blocks("toml")
+        .into_iter()
+        .find(|b| b.contains("schema = \"shunt/pin\""))
+        .expect("a pin excerpt in the README");
+    for line in excerpt.lines().filter(|l| !l.starts_with("# …")) {
+        assert!(real.lines().any(|r| r == line), "README pin line not in real output: {line}");
+    }
+}
+
+#[test]
+fn expectation_differences_name_what_was_meant() {
+    let dir = tempdir();
+    let file = dir.path().join("e.toml");
+    std::fs::write(
+        &file,
+        "blocks = 7\nplacement = \"pre-activation\"\nprojection = [3]\n[[stage]]\nblocks = 2\n[[stage]]\nblocks = 3\n",
+    )
+    .unwrap();
+    let file = file.display().to_string();
+    let v = json(&shunt(&[
+        "verify",
+        &torch("resnet_cifar_folded.onnx"),
+        "--expect",
+        &file,
+        "--format",
+        "json",
+    ]));
+    let codes: Vec<&str> =
+        v["differences"].as_array().unwrap().iter().map(|d| d["code"].as_str().unwrap()).collect();
+    // 7 blocks expected, 6 found; 6 blocks not pre-activation; projections at 3 and 5, not 3;
+    // 3 stages, not 2; the second stage has 2 blocks, not 3.
+    let mut want = vec!["block-count"];
+    want.extend(["placement"; 6]);
+    want.extend(["projection", "stage-count", "stage-blocks"]);
+    assert_eq!(codes, want, "{v:#}");
+    assert_eq!(v["against"], "expect");
+    // A typo is an error, not a check silently skipped.
+    std::fs::write(dir.path().join("typo.toml"), "blcks = 6\n").unwrap();
+    let run = shunt(&[
+        "verify",
+        &torch("resnet_cifar_folded.onnx"),
+        "--expect",
+        &dir.path().join("typo.toml").display().to_string(),
+    ]);
+    assert_eq!(run.code, 2);
+    assert!(run.stderr.contains("typo.toml") && run.stderr.contains("blcks"), "{}", run.stderr);
+}
