@@ -72,6 +72,7 @@ fn audit_config() -> AuditConfig {
             feed: None,
         },
         findings: scan::standard_findings(),
+        influence: None,
     }
 }
 

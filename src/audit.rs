@@ -8,15 +8,19 @@ use prost::Message;
 
 use crate::classify::Placement;
 use crate::error::{Error, Result};
-use crate::findings::FindingConfig;
+use crate::findings::{self, FindingConfig, InfluenceFacts, InfluenceThresholds};
+use crate::gate::{self, Site};
 use crate::graph::op;
 use crate::load::{self, ExternalData, tensor};
 use crate::probe::inputs::{self, Feeding, InputConfig};
-use crate::probe::{self, BlockSamples, ModelSource, Progress, Watch};
+use crate::probe::{self, BlockSamples, GatedPlan, ModelSource, Progress, Watch};
 use crate::proto::ModelProto;
-use crate::report::{FedRow, FeedRow, Report, RunRow, StatsRow, ThresholdsRow};
+use crate::report::{
+    ComparedOutput, EffectiveDepthRow, FedRow, FeedRow, FindingRow, GainSetup, InfluenceReport,
+    InfluenceRow, KnockoutSetup, Report, RunRow, SkippedRow, StatsRow, ThresholdsRow,
+};
 use crate::scan::{self, Analysis, ScanConfig};
-use crate::stats::Spread;
+use crate::stats::{self, Agreement, Spread};
 
 /// Everything an audit needs to know.
 #[derive(Debug, Clone)]
@@ -27,7 +31,55 @@ pub struct AuditConfig {
     pub inputs: InputConfig,
     /// Thresholds of findings.
     pub findings: FindingConfig,
+    /// Knockout and perturbation gain, when asked for.
+    pub influence: Option<InfluenceConfig>,
 }
+
+/// What `audit --knockout` / `--gain` measure.
+#[derive(Debug, Clone)]
+pub struct InfluenceConfig {
+    /// Knock out the branch of each selected block.
+    pub knockout: bool,
+    /// Also knock out each selected block's shortcut (the converse).
+    pub shortcuts: bool,
+    /// Ids (1-based) of the blocks to knock out; `None`: every block.
+    pub blocks: Option<Vec<usize>>,
+    /// Relative step of the perturbation gain; `None`: no gain.
+    pub gain_step: Option<f32>,
+    /// Thresholds of `low-impact`, `exploding-gain` and `vanishing-gain`.
+    pub thresholds: InfluenceThresholds,
+}
+
+impl InfluenceConfig {
+    /// The documented defaults: every block knocked out, no converse, the
+    /// gain with step [`GAIN_STEP`], `low-impact` below 0.01, a gain factor of 100.
+    pub fn standard() -> InfluenceConfig {
+        InfluenceConfig {
+            knockout: true,
+            shortcuts: false,
+            blocks: None,
+            gain_step: Some(GAIN_STEP),
+            thresholds: InfluenceThresholds { low_impact_below: 0.01, gain_factor: 100.0 },
+        }
+    }
+}
+
+/// The default relative step of the perturbation gain.
+///
+/// The measured change `f(x + δ) − f(x)` carries two errors. Rounding: every
+/// float32 op rounds to a relative `u = 2⁻²⁴ ≈ 6e-8` of the values it
+/// produces, and the two passes round differently once their inputs differ,
+/// so the change is known only to about `c·u·‖f‖`, i.e. a relative error of
+/// `c·u/step` where `c` grows with the number of ops on the path (tens to
+/// hundreds in deep networks). Truncation: a nonlinear network answers to a
+/// finite step with a relative error of order `step` (for ReLU networks, the
+/// fraction of units that change side). The sum `c·u/step + step` is smallest
+/// near `step = sqrt(c·u)`, 2.4e-4 for `c = 1` and 2.4e-3 for `c = 100`; we
+/// take 1e-3, where rounding contributes at most ~6e-5·c and the result is
+/// the gain of a change one thousandth of the input. A test on a linear model
+/// shows the step is well inside the good range, and that a step of 1e-7
+/// would let rounding dominate.
+pub const GAIN_STEP: f32 = 1e-3;
 
 impl AuditConfig {
     /// The documented defaults: the standard scan, 8 samples of standard
@@ -47,6 +99,7 @@ impl AuditConfig {
                 feed: None,
             },
             findings: scan::standard_findings(),
+            influence: None,
         }
     }
 }
@@ -74,9 +127,14 @@ pub fn audit_file(path: &Path, config: &AuditConfig, progress: &dyn Progress) ->
         &loaded.model,
         &loaded.external,
     );
+    // The surgery works on a copy of the decoded model (payloads in
+    // `raw_data` are shared, not copied).
+    let surgery = config.influence.as_ref().map(|_| loaded.model.clone());
     let analysis =
         scan::analyse(loaded.model, loaded.external, &config.scan).map_err(|e| e.at(path))?;
-    run(info, analysis, ModelSource::Path(path), config, progress).map_err(|e| e.at(path))
+    let dir = path.parent().unwrap_or(Path::new("."));
+    run(info, analysis, ModelSource::Path(path), surgery.map(|m| (m, Some(dir))), config, progress)
+        .map_err(|e| e.at(path))
 }
 
 /// Audits an in-memory model (tests, benchmarks); `label` stands for the path.
@@ -89,17 +147,22 @@ pub fn audit_model(
     let bytes = model.encode_to_vec();
     let external = ExternalData::none();
     let info = scan::model_info(label, bytes.len() as u64, &model, &external);
+    let surgery = config.influence.as_ref().map(|_| (model.clone(), None));
     let analysis = scan::analyse(model, external, &config.scan)?;
-    run(info, analysis, ModelSource::Bytes(&bytes), config, progress)
+    run(info, analysis, ModelSource::Bytes(&bytes), surgery, config, progress)
 }
 
 fn run(
     info: crate::report::ModelInfo,
     analysis: Analysis,
     source: ModelSource<'_>,
+    surgery: Option<(ModelProto, Option<&Path>)>,
     config: &AuditConfig,
     progress: &dyn Progress,
 ) -> Result<Audit> {
+    if let (Some(influence), Some((model, dir))) = (&config.influence, surgery) {
+        return run_influence(info, analysis, model, dir, influence, config, progress);
+    }
     let mut report = scan::report_of(info, &analysis);
     report.command = "audit".to_owned();
     let specs = inputs::input_specs(&analysis.graph);
@@ -111,15 +174,7 @@ fn run(
     let mut facts = scan::block_facts(&report);
     let (run_error, outputs) = match probe::run(source, &watches, &feeding, progress) {
         Ok(result) => {
-            for (i, samples) in result.blocks.iter().enumerate() {
-                let row = stats_row(samples, config.findings.dead_below);
-                facts[i].ratio = row.ratio.map(|s| s.mean);
-                facts[i].dead_channel_fraction = row.dead_channel_fraction;
-                facts[i].channels = row.channels;
-                facts[i].non_finite = row.nan + row.inf;
-                facts[i].output_rms = row.output_rms.map(|s| s.mean);
-                report.blocks[i].stats = Some(row);
-            }
+            fill_stats(&mut report, &mut facts, &result.blocks, config.findings.dead_below);
             (None, result.outputs)
         }
         Err(e) => {
@@ -219,5 +274,390 @@ pub fn stats_row(s: &BlockSamples, dead_below: f64) -> StatsRow {
         dead_channel_fraction,
         nan: s.nan,
         inf: s.inf,
+    }
+}
+
+/// Copies the intact run's measurements into the report and the facts.
+fn fill_stats(
+    report: &mut Report,
+    facts: &mut [findings::BlockFacts],
+    blocks: &[BlockSamples],
+    dead_below: f64,
+) {
+    for (i, samples) in blocks.iter().enumerate() {
+        let row = stats_row(samples, dead_below);
+        facts[i].ratio = row.ratio.map(|s| s.mean);
+        facts[i].dead_channel_fraction = row.dead_channel_fraction;
+        facts[i].channels = row.channels;
+        facts[i].non_finite = row.nan + row.inf;
+        facts[i].output_rms = row.output_rms.map(|s| s.mean);
+        report.blocks[i].stats = Some(row);
+    }
+}
+
+/// Whether a block changes the spatial or sequence size: its fork and output
+/// shapes differ outside the channel axis, or (shapes unknown) a branch
+/// layer has a stride or the shortcut resamples.
+fn changes_resolution(a: &Analysis, i: usize, channels_first: bool) -> bool {
+    let g = &a.graph;
+    let b = &a.detection.blocks[i];
+    let known = |v| -> Option<Vec<u64>> {
+        g.value(v)
+            .fact
+            .shape
+            .as_ref()?
+            .iter()
+            .map(|d| match d {
+                crate::graph::Dim::Known(k) => Some(*k),
+                _ => None,
+            })
+            .collect()
+    };
+    if let (Some(f), Some(o)) = (known(b.fork), known(b.output))
+        && f.len() == o.len()
+        && f.len() >= 3
+    {
+        let skip = if channels_first { 1 } else { f.len() - 1 };
+        return f.iter().zip(&o).enumerate().any(|(k, (x, y))| k != 0 && k != skip && x != y);
+    }
+    b.shortcut.kind == crate::residual::ShortcutKind::Resampled
+        || b.branch.iter().any(|&n| {
+            crate::load::attr::ints(&g.node(n).attrs, "strides")
+                .is_some_and(|s| s.iter().any(|&x| x > 1))
+        })
+}
+
+/// The outputs of a knockout against the intact ones: the largest relative
+/// change and the smallest cosine over the float outputs, and the top-1
+/// agreement of the first output that looks like class scores.
+fn compare_outputs(
+    intact: &[Vec<f32>],
+    shapes: &[Vec<usize>],
+    other: &[Vec<f32>],
+) -> Option<Agreement> {
+    let mut all: Vec<Agreement> = Vec::new();
+    for (o, (a, b)) in intact.iter().zip(other).enumerate() {
+        if let Some(ag) = stats::agreement(a, b, classes_of(shapes.get(o))) {
+            all.push(ag);
+        }
+    }
+    let first = *all.first()?;
+    Some(Agreement {
+        rel_l2: all.iter().map(|a| a.rel_l2).fold(first.rel_l2, f64::max),
+        cosine: all.iter().filter_map(|a| a.cosine).reduce(f64::min),
+        top1: all.iter().find_map(|a| a.top1),
+    })
+}
+
+/// The class count of an output shaped `[batch, classes]`.
+fn classes_of(shape: Option<&Vec<usize>>) -> Option<usize> {
+    shape.filter(|s| s.len() == 2 && s[1] >= 2).map(|s| s[1])
+}
+
+/// The distribution of path lengths when each block independently sends a
+/// unit of change through its branch with probability `q` (a Poisson
+/// binomial distribution), by dynamic programming.
+pub fn path_lengths(shares: &[f64]) -> Vec<f64> {
+    let mut p = vec![1.0];
+    for &q in shares {
+        let mut next = vec![0.0; p.len() + 1];
+        for (k, &w) in p.iter().enumerate() {
+            next[k] += w * (1.0 - q);
+            next[k + 1] += w * q;
+        }
+        p = next;
+    }
+    p
+}
+
+fn effective_depth(shares: &[f64], carrying: Option<usize>) -> EffectiveDepthRow {
+    let distribution = path_lengths(shares);
+    let mean: f64 = shares.iter().sum();
+    let var: f64 = shares.iter().map(|q| q * (1.0 - q)).sum();
+    let quantile = |level: f64| {
+        let mut c = 0.0;
+        for (k, w) in distribution.iter().enumerate() {
+            c += w;
+            if c >= level - 1e-12 {
+                return k;
+            }
+        }
+        distribution.len().saturating_sub(1)
+    };
+    EffectiveDepthRow {
+        blocks: shares.len(),
+        mean_path_length: mean,
+        path_length_sd: var.sqrt(),
+        median_path_length: quantile(0.5),
+        central_80: [quantile(0.1), quantile(0.9)],
+        distribution,
+        carrying,
+    }
+}
+
+fn per_sample(num: &[f64], den: &[f64]) -> Option<Spread> {
+    Spread::of(&ratios(num, den))
+}
+
+/// The audit with knockout and/or perturbation gain: the gates go into a
+/// copy of the decoded model, which is encoded and prepared once; the intact
+/// passes measure every block as a plain audit does.
+fn run_influence(
+    info: crate::report::ModelInfo,
+    analysis: Analysis,
+    mut model: ModelProto,
+    dir: Option<&Path>,
+    ic: &InfluenceConfig,
+    config: &AuditConfig,
+    progress: &dyn Progress,
+) -> Result<Audit> {
+    let mut report = scan::report_of(info, &analysis);
+    report.command = "audit".to_owned();
+    let specs = inputs::input_specs(&analysis.graph);
+    let feeding = inputs::plan(&specs, &config.inputs)?;
+    report.run = Some(run_row(&feeding, &config.findings));
+    let watches = watches(&analysis);
+    let n = analysis.detection.blocks.len();
+    let selected: Vec<usize> = if !ic.knockout {
+        Vec::new()
+    } else if let Some(ids) = &ic.blocks {
+        let mut ids = ids.clone();
+        ids.sort_unstable();
+        ids.dedup();
+        if let Some(bad) = ids.iter().find(|&&id| id == 0 || id > n) {
+            return Err(Error::new(
+                crate::error::ErrorKind::Usage,
+                format!("--blocks: the model has no block #{bad} (it has {n})"),
+            ));
+        }
+        ids.iter().map(|id| id - 1).collect()
+    } else {
+        (0..n).collect()
+    };
+    let g = &analysis.graph;
+    let mut skipped = Vec::new();
+    let mut sites = Vec::new();
+    let mut site_block = Vec::new();
+    for &i in &selected {
+        let b = &analysis.detection.blocks[i];
+        let op = &g.node(b.merge).op;
+        if op != "Add" && op != "Sum" {
+            skipped.push(SkippedRow {
+                block: i + 1,
+                reason: format!("the merge is {op}; only Add and Sum are gated"),
+            });
+            continue;
+        }
+        let float = |v| matches!(g.value(v).fact.dtype, 0 | 1);
+        if !float(b.shortcut.input) || !b.branch_inputs.iter().all(|&v| float(v)) {
+            skipped.push(SkippedRow {
+                block: i + 1,
+                reason: "the merge inputs are not float32".to_owned(),
+            });
+            continue;
+        }
+        sites.push(Site {
+            output: g.value(b.output).name.clone(),
+            shortcut: g.value(b.shortcut.input).name.clone(),
+            branch: b.branch_inputs.iter().map(|&v| g.value(v).name.clone()).collect(),
+        });
+        site_block.push(i);
+    }
+    let resolution: Vec<bool> =
+        (0..n).map(|i| changes_resolution(&analysis, i, watches[i].channels_first)).collect();
+    let depth: Vec<usize> = analysis.detection.blocks.iter().map(|b| b.depth).collect();
+    // The analysis holds the decoded weights: free them before tract loads its own copy.
+    drop(analysis);
+    let gates = gate::insert(&mut model, &sites, ic.shortcuts && ic.knockout)?;
+    let bytes = model.encode_to_vec();
+    drop(model);
+    let names = gates.names();
+    let mut settings = Vec::new();
+    let mut labels: Vec<(usize, bool)> = Vec::new();
+    let sides: &[bool] = if gates.shortcut.is_empty() { &[false] } else { &[false, true] };
+    for &shortcut in sides {
+        for (k, &block) in site_block.iter().enumerate() {
+            let mut v = vec![1.0f32; names.len()];
+            v[if shortcut { sites.len() + k } else { k }] = 0.0;
+            settings.push(v);
+            labels.push((block, shortcut));
+        }
+    }
+    let plan = GatedPlan { gates: names, settings, gain_step: ic.gain_step };
+    let source = match dir {
+        Some(d) => ModelSource::BytesIn(&bytes, d),
+        None => ModelSource::Bytes(&bytes),
+    };
+    let mut knocked: Vec<Option<Agreement>> = vec![None; n];
+    let mut knocked_shortcut: Vec<Option<Agreement>> = vec![None; n];
+    let mut sink = |i: usize, intact: &[Vec<f32>], shapes: &[Vec<usize>], outs: Vec<Vec<f32>>| {
+        let (block, shortcut) = labels[i];
+        let ag = compare_outputs(intact, shapes, &outs);
+        if shortcut {
+            knocked_shortcut[block] = ag;
+        } else {
+            knocked[block] = ag;
+        }
+    };
+    let mut facts = scan::block_facts(&report);
+    let outcome = probe::run_gated(source, &watches, &feeding, &plan, &mut sink, progress);
+    let result = match outcome {
+        Ok(r) => r,
+        Err(e) => {
+            report.run_error = Some(e.message().to_owned());
+            scan::set_findings(&mut report, &facts, &config.findings);
+            return Ok(Audit { report, run_error: Some(e), outputs: Vec::new() });
+        }
+    };
+    fill_stats(&mut report, &mut facts, &result.intact.blocks, config.findings.dead_below);
+    scan::set_findings(&mut report, &facts, &config.findings);
+
+    let mut rows: Vec<InfluenceRow> = (0..n)
+        .map(|i| InfluenceRow {
+            block: i + 1,
+            changes_resolution: resolution[i],
+            knockout: knocked[i],
+            shortcut_knockout: knocked_shortcut[i],
+            rank: None,
+            low_impact: knocked[i].is_some_and(|a| a.rel_l2 < ic.thresholds.low_impact_below),
+            gain: None,
+            shortcut_gain: None,
+            branch_gain: None,
+            branch_share: None,
+            gain_product: None,
+            gain_to_here: None,
+        })
+        .collect();
+    // Rank by impact, largest first; ties keep block order.
+    let mut order: Vec<usize> = (0..n).filter(|&i| knocked[i].is_some()).collect();
+    order.sort_by(|&a, &b| {
+        let ka = knocked[a].map_or(f64::NAN, |k| k.rel_l2);
+        let kb = knocked[b].map_or(f64::NAN, |k| k.rel_l2);
+        kb.partial_cmp(&ka).unwrap_or(std::cmp::Ordering::Equal)
+    });
+    for (r, &i) in order.iter().enumerate() {
+        rows[i].rank = Some(r + 1);
+    }
+
+    let top: Vec<usize> = (0..n).filter(|&i| depth[i] == 0).collect();
+    let gain_setup = ic.gain_step.map(|step| GainSetup {
+        step: f64::from(step),
+        input_change: Spread::of(&result.input_change),
+        end_to_end: None,
+        gain_factor: ic.thresholds.gain_factor,
+    });
+    let mut effective = None;
+    if let Some(gain) = &result.gain {
+        for (i, s) in gain.iter().enumerate() {
+            let shares: Vec<f64> = s
+                .shortcut
+                .iter()
+                .zip(&s.branch)
+                .filter(|(a, b)| *a + *b > 0.0)
+                .map(|(a, b)| b / (a + b))
+                .collect();
+            rows[i].gain = per_sample(&s.output, &s.fork);
+            rows[i].shortcut_gain = per_sample(&s.shortcut, &s.fork);
+            rows[i].branch_gain = per_sample(&s.branch, &s.fork);
+            rows[i].branch_share = Spread::of(&shares).map(|x| x.mean);
+        }
+        let first = top.first().map(|&i| gain[i].fork.clone()).unwrap_or_default();
+        let mut product = 1.0;
+        for &i in &top {
+            if let Some(g) = rows[i].gain {
+                product *= g.mean;
+                rows[i].gain_product = Some(product);
+            }
+            rows[i].gain_to_here = Spread::of(&ratios(&gain[i].output, &first)).map(|x| x.mean);
+        }
+        let shares: Vec<f64> = top.iter().filter_map(|&i| rows[i].branch_share).collect();
+        let carrying = (ic.knockout && top.iter().any(|&i| knocked[i].is_some())).then(|| {
+            top.iter()
+                .filter(|&&i| {
+                    knocked[i].is_some_and(|k| !rows[i].low_impact && k.rel_l2.is_finite())
+                })
+                .count()
+        });
+        effective = Some(effective_depth(&shares, carrying));
+    }
+    let gain_setup = gain_setup.map(|mut g| {
+        g.end_to_end = top.last().and_then(|&i| rows[i].gain_to_here);
+        g
+    });
+
+    let influence_facts: Vec<InfluenceFacts> = rows
+        .iter()
+        .map(|r| InfluenceFacts {
+            knockout: r.knockout.map(|k| k.rel_l2),
+            gain_to_here: r.gain_to_here,
+        })
+        .collect();
+    for f in findings::influence(&influence_facts, &ic.thresholds) {
+        report.findings.push(FindingRow {
+            code: f.code.as_str().to_owned(),
+            block: f.block,
+            node: f.block.and_then(|id| report.blocks.get(id - 1)).map(|b| b.merge.clone()),
+            message: f.message,
+        });
+    }
+    let shapes = &result.intact.output_shapes;
+    report.influence = Some(InfluenceReport {
+        knockout: ic.knockout.then(|| KnockoutSetup {
+            blocks: site_block.iter().map(|i| i + 1).collect(),
+            shortcuts: !gates.shortcut.is_empty(),
+            low_impact_below: ic.thresholds.low_impact_below,
+            forward_passes: result.forward_passes,
+            outputs: report
+                .model
+                .outputs
+                .iter()
+                .enumerate()
+                .filter(|(o, _)| result.intact.outputs.get(*o).is_some_and(|v| !v.is_empty()))
+                .map(|(o, t)| ComparedOutput {
+                    name: t.name.clone(),
+                    classes: classes_of(shapes.get(o)),
+                })
+                .collect(),
+        }),
+        gain: gain_setup,
+        blocks: rows,
+        effective_depth: effective,
+        skipped,
+    });
+    Ok(Audit { report, run_error: None, outputs: result.intact.outputs })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn path_lengths_are_a_poisson_binomial() {
+        // Two blocks sending half the change through the branch: lengths 0,
+        // 1, 2 with weights 1/4, 1/2, 1/4 (two fair coins).
+        assert_eq!(path_lengths(&[0.5, 0.5]), vec![0.25, 0.5, 0.25]);
+        // Branches that carry nothing: every path is the all-shortcut one.
+        assert_eq!(path_lengths(&[0.0, 0.0, 0.0]), vec![1.0, 0.0, 0.0, 0.0]);
+        let e = effective_depth(&[0.9, 0.1, 0.5, 0.5], Some(3));
+        assert!((e.mean_path_length - 2.0).abs() < 1e-12);
+        assert!((e.distribution.iter().sum::<f64>() - 1.0).abs() < 1e-12);
+        assert_eq!(e.median_path_length, 2);
+        let sd = (0.09f64 + 0.09 + 0.25 + 0.25).sqrt();
+        assert!((e.path_length_sd - sd).abs() < 1e-12);
+        assert_eq!(e.central_80, [1, 3]);
+    }
+
+    #[test]
+    fn agreement_over_outputs_takes_the_worst() {
+        let intact = vec![vec![1.0, 2.0, 3.0, 4.0], vec![1.0, 1.0]];
+        let other = vec![vec![1.0, 2.0, 4.0, 3.0], vec![1.0, 1.1]];
+        let shapes = vec![vec![2, 2], vec![2]];
+        let a = compare_outputs(&intact, &shapes, &other).unwrap();
+        let first = stats::agreement(&intact[0], &other[0], Some(2)).unwrap();
+        assert_eq!(
+            a.rel_l2,
+            first.rel_l2.max(stats::agreement(&intact[1], &other[1], None).unwrap().rel_l2)
+        );
+        assert_eq!(a.top1, Some(0.5));
     }
 }

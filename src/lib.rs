@@ -19,6 +19,7 @@ pub mod classify;
 pub mod error;
 pub mod expect;
 pub mod findings;
+pub mod gate;
 pub mod graph;
 pub mod load;
 pub mod probe;

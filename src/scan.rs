@@ -415,5 +415,6 @@ fn structure_report(model: ModelInfo, a: &Analysis) -> Report {
                 message: d.message.clone(),
             })
             .collect(),
+        influence: None,
     }
 }

@@ -7,6 +7,8 @@ mod util;
 mod cli;
 // Measurements against theory, planted defects, determinism, failure modes.
 mod audit;
+// Knockout, perturbation gain and effective depth against exact answers and theory.
+mod influence;
 // Detection and classification: census, published layouts, invariance.
 mod detect;
 // Committed fixtures are exactly what the generator writes today.

@@ -33,7 +33,7 @@ enum Command {
     /// Find every residual block of a model and say what kind it is, without running it.
     Scan(ScanArgs),
     /// Scan, then run the model on the CPU and measure every block's branch against its shortcut.
-    Audit(AuditArgs),
+    Audit(Box<AuditArgs>),
     /// Write a model's residual structure to a reviewable TOML file (no statistics, no node names).
     Pin(pin::PinArgs),
     /// Check a model against a pin file or a hand-written expectation; exit 1 on any difference.
@@ -61,7 +61,8 @@ struct OutputArgs {
     output: Option<PathBuf>,
     /// Exit with code 1 when any of these findings occurs: a comma-separated
     /// list of codes (static-dead, lost-shortcut, dead, dominant,
-    /// dead-channels, non-finite, exploding-signal, vanishing-signal) or `any`.
+    /// dead-channels, non-finite, exploding-signal, vanishing-signal,
+    /// low-impact, exploding-gain, vanishing-gain) or `any`.
     #[arg(long, value_name = "LIST")]
     fail_on: Option<String>,
 }
@@ -120,7 +121,93 @@ struct AuditArgs {
     #[arg(long, short = 'q')]
     quiet: bool,
     #[command(flatten)]
+    influence: InfluenceArgs,
+    #[command(flatten)]
     limits: Limits,
+}
+
+/// Which blocks matter: knockout, perturbation gain, effective depth.
+#[derive(Debug, clap::Args)]
+struct InfluenceArgs {
+    /// Run the model once more per block with that block's branch removed and
+    /// measure how much the outputs change; also measures the perturbation gain.
+    #[arg(long)]
+    knockout: bool,
+    /// With --knockout, also remove each block's shortcut instead (one more pass per block).
+    #[arg(long)]
+    knockout_shortcuts: bool,
+    /// Knock out only these blocks, e.g. `1,4,6-9` (default: all).
+    #[arg(long, value_name = "LIST")]
+    blocks: Option<String>,
+    /// Measure how a small random input change grows or shrinks block by block
+    /// (one more pass per pass; implied by --knockout).
+    #[arg(long)]
+    gain: bool,
+    /// Size of the input change relative to the input's RMS.
+    #[arg(long, value_name = "X", default_value_t = shunt::audit::GAIN_STEP)]
+    gain_step: f32,
+    /// `low-impact` when knocking out a branch changes the outputs by less than this (relative L2).
+    #[arg(long, value_name = "X", default_value_t = 0.01)]
+    low_impact_below: f64,
+    /// `exploding-gain`/`vanishing-gain` when a small change grows or shrinks by
+    /// more than this factor from the first block to some block.
+    #[arg(long, value_name = "X", default_value_t = 100.0)]
+    gain_factor: f64,
+}
+
+impl InfluenceArgs {
+    fn config(&self) -> anyhow::Result<Option<audit::InfluenceConfig>> {
+        let knockout = self.knockout || self.knockout_shortcuts;
+        if self.blocks.is_some() && !knockout {
+            bail!("--blocks selects blocks to knock out: add --knockout");
+        }
+        if !knockout && !self.gain {
+            return Ok(None);
+        }
+        if !(self.gain_step.is_finite() && self.gain_step > 0.0 && self.gain_step < 1.0) {
+            bail!("--gain-step {}: expected a number between 0 and 1", self.gain_step);
+        }
+        let blocks = self.blocks.as_deref().map(parse_blocks).transpose()?;
+        Ok(Some(audit::InfluenceConfig {
+            knockout,
+            shortcuts: self.knockout_shortcuts,
+            blocks,
+            gain_step: Some(self.gain_step),
+            thresholds: shunt::findings::InfluenceThresholds {
+                low_impact_below: self.low_impact_below,
+                gain_factor: self.gain_factor,
+            },
+        }))
+    }
+}
+
+/// `1,4,6-9` → [1, 4, 6, 7, 8, 9].
+fn parse_blocks(list: &str) -> anyhow::Result<Vec<usize>> {
+    let mut out = Vec::new();
+    for item in list.split(',').map(str::trim).filter(|s| !s.is_empty()) {
+        let bad = || anyhow::anyhow!("--blocks: '{item}' is not a block id or a range like 3-7");
+        match item.split_once('-') {
+            Some((a, b)) => {
+                let a: usize = a.trim().parse().map_err(|_| bad())?;
+                let b: usize = b.trim().parse().map_err(|_| bad())?;
+                if a == 0 || b < a {
+                    return Err(bad());
+                }
+                out.extend(a..=b);
+            }
+            None => {
+                let id: usize = item.parse().map_err(|_| bad())?;
+                if id == 0 {
+                    return Err(bad());
+                }
+                out.push(id);
+            }
+        }
+    }
+    if out.is_empty() {
+        bail!("--blocks: no block ids in '{list}'");
+    }
+    Ok(out)
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
@@ -224,6 +311,11 @@ fn run(args: Args) -> anyhow::Result<ExitCode> {
                 depth_factor: a.depth_factor,
             };
             if a.no_run {
+                if a.influence.config()?.is_some() {
+                    bail!(
+                        "--no-run cannot be combined with --knockout or --gain, which run the model"
+                    );
+                }
                 let mut report = scan::scan_file(&a.model, &a.limits.config())?;
                 report.command = "audit".to_owned();
                 let facts = scan::block_facts(&report);
@@ -248,6 +340,7 @@ fn run(args: Args) -> anyhow::Result<ExitCode> {
                     feed: a.feed.clone(),
                 },
                 findings,
+                influence: a.influence.config()?,
             };
             let bar = progress::Bar::new(a.quiet);
             let outcome = audit::audit_file(&a.model, &config, &bar)?;

@@ -133,6 +133,7 @@ pub(super) fn verify(a: &VerifyArgs) -> anyhow::Result<ExitCode> {
                 scan: a.limits.config(),
                 inputs: a.run.inputs()?,
                 findings: scan::standard_findings(),
+                influence: None,
             };
             let bar = progress::Bar::new(a.run.quiet);
             let outcome = audit::audit_file(&a.model, &config, &bar)?;

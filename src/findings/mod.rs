@@ -42,11 +42,17 @@ pub enum Code {
     ExplodingSignal,
     /// The signal shrinks by more than the depth factor across the blocks.
     VanishingSignal,
+    /// Knocking out the branch changes the outputs by almost nothing.
+    LowImpact,
+    /// A small input change grows by more than the gain factor along the blocks.
+    ExplodingGain,
+    /// A small input change shrinks by more than the gain factor along the blocks.
+    VanishingGain,
 }
 
 impl Code {
     /// Every code, in report order.
-    pub const ALL: [Code; 8] = [
+    pub const ALL: [Code; 11] = [
         Code::StaticDead,
         Code::LostShortcut,
         Code::Dead,
@@ -55,6 +61,9 @@ impl Code {
         Code::NonFinite,
         Code::ExplodingSignal,
         Code::VanishingSignal,
+        Code::LowImpact,
+        Code::ExplodingGain,
+        Code::VanishingGain,
     ];
 
     /// The name used in reports and on the command line.
@@ -68,6 +77,9 @@ impl Code {
             Code::LostShortcut => "lost-shortcut",
             Code::ExplodingSignal => "exploding-signal",
             Code::VanishingSignal => "vanishing-signal",
+            Code::LowImpact => "low-impact",
+            Code::ExplodingGain => "exploding-gain",
+            Code::VanishingGain => "vanishing-gain",
         }
     }
 
@@ -225,6 +237,75 @@ pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> 
     out
 }
 
+/// Thresholds of the knockout and gain findings, both relative.
+#[derive(Debug, Clone)]
+pub struct InfluenceThresholds {
+    /// `low-impact` when the knockout changes the outputs by less than this
+    /// (relative L2).
+    pub low_impact_below: f64,
+    /// `exploding-gain` / `vanishing-gain` when the end-to-end gain up to a
+    /// top-level block is above this / below its inverse.
+    pub gain_factor: f64,
+}
+
+/// What the knockout and gain findings need to know of one block.
+#[derive(Debug, Clone, Default)]
+pub struct InfluenceFacts {
+    /// Relative change of the outputs with the branch knocked out.
+    pub knockout: Option<f64>,
+    /// End-to-end gain up to this block (top-level blocks only).
+    pub gain_to_here: Option<f64>,
+}
+
+/// `low-impact` per knocked-out block, then at most one of `exploding-gain`
+/// and `vanishing-gain`, placed at the first block whose end-to-end gain
+/// crosses the factor.
+pub fn influence(blocks: &[InfluenceFacts], t: &InfluenceThresholds) -> Vec<Finding> {
+    let mut out = Vec::new();
+    for (i, b) in blocks.iter().enumerate() {
+        if let Some(k) = b.knockout
+            && k < t.low_impact_below
+        {
+            out.push(Finding {
+                code: Code::LowImpact,
+                block: Some(i + 1),
+                message: format!(
+                    "knocking out the branch changes the outputs by {k:.3e} relative (below {}): a candidate for pruning",
+                    t.low_impact_below
+                ),
+            });
+        }
+    }
+    let gains: Vec<(usize, f64)> = blocks
+        .iter()
+        .enumerate()
+        .filter_map(|(i, b)| b.gain_to_here.filter(|g| g.is_finite()).map(|g| (i + 1, g)))
+        .collect();
+    let last = gains.last().map(|&(_, g)| g);
+    if let Some(&(id, g)) = gains.iter().find(|(_, g)| *g > t.gain_factor) {
+        out.push(Finding {
+            code: Code::ExplodingGain,
+            block: Some(id),
+            message: format!(
+                "a small input change grows {g:.3e}-fold from the first block to this one (limit {}); {:.3e}-fold at the last block",
+                t.gain_factor,
+                last.unwrap_or(g)
+            ),
+        });
+    } else if let Some(&(id, g)) = gains.iter().find(|(_, g)| *g < 1.0 / t.gain_factor) {
+        out.push(Finding {
+            code: Code::VanishingGain,
+            block: Some(id),
+            message: format!(
+                "a small input change shrinks to {g:.3e} of its size from the first block to this one (limit 1/{}); {:.3e} at the last block",
+                t.gain_factor,
+                last.unwrap_or(g)
+            ),
+        });
+    }
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -265,6 +346,29 @@ mod tests {
         blocks.reverse();
         let f = findings(&blocks, &[], &config());
         assert_eq!(f.iter().map(|f| f.code).collect::<Vec<_>>(), vec![Code::VanishingSignal]);
+    }
+
+    #[test]
+    fn influence_thresholds() {
+        let t = InfluenceThresholds { low_impact_below: 0.01, gain_factor: 100.0 };
+        let facts = [
+            InfluenceFacts { knockout: Some(0.0), gain_to_here: Some(2.0) },
+            InfluenceFacts { knockout: Some(0.01), gain_to_here: Some(150.0) },
+            InfluenceFacts { knockout: None, gain_to_here: Some(400.0) },
+        ];
+        let f = influence(&facts, &t);
+        let codes: Vec<(Code, Option<usize>)> = f.iter().map(|f| (f.code, f.block)).collect();
+        // Strict: 0.01 is not below 0.01; the explosion is placed where it first crosses.
+        assert_eq!(codes, vec![(Code::LowImpact, Some(1)), (Code::ExplodingGain, Some(2))]);
+        let facts = [
+            InfluenceFacts { knockout: None, gain_to_here: Some(0.5) },
+            InfluenceFacts { knockout: None, gain_to_here: Some(1e-3) },
+        ];
+        let f = influence(&facts, &t);
+        assert_eq!(
+            f.iter().map(|f| (f.code, f.block)).collect::<Vec<_>>(),
+            vec![(Code::VanishingGain, Some(2))]
+        );
     }
 
     #[test]

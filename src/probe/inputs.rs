@@ -328,6 +328,46 @@ pub fn values(feeding: &Feeding, pass: usize) -> Vec<Values> {
         .collect()
 }
 
+/// Stream numbers of perturbation directions start here, far above the
+/// streams of the inputs themselves (one per input index).
+const DIRECTION_STREAMS: u64 = 1 << 32;
+
+/// The perturbed copy of `values` (one pass of every input) for the
+/// perturbation gain: each float input becomes `x + step * d`, where `d` is a
+/// seeded standard normal direction rescaled per sample so that RMS(d) equals
+/// RMS(x) of that sample (or 1 when the sample is all zeros). So `step` is
+/// the size of the change relative to the input. Non-float inputs are kept.
+/// Directions come from ChaCha8 streams of their own, drawn sample after
+/// sample like the inputs, so they do not depend on how samples are split
+/// into passes.
+pub fn perturbed(feeding: &Feeding, pass: usize, values: &[Values], step: f32) -> Vec<Values> {
+    values
+        .iter()
+        .enumerate()
+        .map(|(index, v)| {
+            let Values::F32(x) = v else { return v.clone() };
+            let n = x.len();
+            let per_sample = n.checked_div(feeding.pass_batch).filter(|&p| p > 0).unwrap_or(n);
+            let mut rng = ChaCha8Rng::seed_from_u64(feeding.seed);
+            rng.set_stream(DIRECTION_STREAMS + index as u64);
+            let skip = pass * per_sample * feeding.pass_batch;
+            for _ in 0..skip {
+                let _: f32 = rng.sample(StandardNormal);
+            }
+            let d: Vec<f32> = (0..n).map(|_| rng.sample(StandardNormal)).collect();
+            let mut out = Vec::with_capacity(n);
+            for (xs, ds) in x.chunks(per_sample.max(1)).zip(d.chunks(per_sample.max(1))) {
+                let rx = crate::stats::rms(xs);
+                let rd = crate::stats::rms(ds);
+                let scale = if rd > 0.0 { (if rx > 0.0 { rx } else { 1.0 }) / rd } else { 0.0 };
+                let k = step as f64 * scale;
+                out.extend(xs.iter().zip(ds).map(|(&a, &b)| (a as f64 + k * b as f64) as f32));
+            }
+            Values::F32(out)
+        })
+        .collect()
+}
+
 fn is_float(dtype: i32) -> bool {
     matches!(
         DataType::try_from(dtype),

@@ -73,6 +73,8 @@ pub struct ProbeResult {
     pub blocks: Vec<BlockSamples>,
     /// The final outputs of every pass, flattened per output (float outputs only).
     pub outputs: Vec<Vec<f32>>,
+    /// The shape of each output in one pass.
+    pub output_shapes: Vec<Vec<usize>>,
 }
 
 /// Reports progress of long steps; the command line draws a bar.
@@ -100,6 +102,8 @@ pub enum ModelSource<'a> {
     Path(&'a Path),
     /// Encoded bytes (no external data).
     Bytes(&'a [u8]),
+    /// Encoded bytes of a model whose external data resolves against a folder.
+    BytesIn(&'a [u8], &'a Path),
 }
 
 #[derive(Debug, Clone, Copy)]
@@ -144,6 +148,50 @@ fn run_inner(
     feeding: &Feeding,
     progress: &dyn Progress,
 ) -> Result<ProbeResult> {
+    let mut prepared = prepare(source, watches, feeding, &[], progress)?;
+    progress.step("running", feeding.passes as u64);
+    let mut acc: Vec<BlockSamples> = vec![BlockSamples::default(); watches.len()];
+    let mut outputs: Vec<Vec<f32>> = vec![Vec::new(); prepared.n_outputs];
+    let mut output_shapes = Vec::new();
+    for pass in 0..feeding.passes {
+        let values = inputs::values(feeding, pass);
+        let tensors = prepared.tensors(feeding, &values, &[])?;
+        let result = prepared.measure(watches, feeding, tensors, &mut acc, None)?;
+        output_shapes = collect_outputs(&result, &mut outputs);
+        progress.advance();
+    }
+    progress.finish();
+    Ok(ProbeResult { blocks: acc, outputs, output_shapes })
+}
+
+/// Where the value of one tract input comes from.
+#[derive(Debug, Clone, Copy)]
+enum InputSlot {
+    /// Input `i` of the feeding.
+    Fed(usize),
+    /// Gate `k` of the gate list.
+    Gate(usize),
+}
+
+type Roles = Vec<(usize, Role)>;
+
+/// A model prepared once and run many times.
+struct Prepared {
+    state: tract_onnx::tract_core::model::TypedSimpleState,
+    order: Vec<InputSlot>,
+    watch_map: HashMap<(usize, usize), Roles>,
+    source_roles: Vec<(usize, Roles)>,
+    constant_roles: Vec<(TValue, Roles)>,
+    n_outputs: usize,
+}
+
+fn prepare(
+    source: ModelSource<'_>,
+    watches: &[Watch],
+    feeding: &Feeding,
+    gates: &[String],
+    progress: &dyn Progress,
+) -> Result<Prepared> {
     progress.step("preparing the model", 1);
     // value_info may name a symbolic batch that the concrete input facts
     // contradict; tract infers every shape itself.
@@ -162,6 +210,13 @@ fn run_inner(
                 .map_err(|e| tract_err("tract could not read the model", &e))?;
             (proto, None)
         }
+        ModelSource::BytesIn(b, dir) => {
+            let proto = onnx
+                .proto_model_for_read(&mut &b[..])
+                .map_err(|e| tract_err("tract could not read the model", &e))?;
+            let dir = if dir.as_os_str().is_empty() { Path::new(".") } else { dir };
+            (proto, dir.to_str().map(str::to_owned))
+        }
     };
     let parsed = onnx
         .parse(&proto, dir.as_deref())
@@ -175,11 +230,18 @@ fn run_inner(
     }
     let mut model = parsed.model;
 
-    // Concrete input facts for one pass.
+    // Concrete input facts for one pass; gates are scalars.
     let input_outlets = model.input_outlets().map_err(|e| tract_err("tract", &e))?.to_vec();
     let mut order = Vec::with_capacity(input_outlets.len());
     for (i, outlet) in input_outlets.iter().enumerate() {
         let name = model.node(outlet.node).name.clone();
+        if let Some(k) = gates.iter().position(|g| *g == name) {
+            model
+                .set_input_fact(i, InferenceFact::dt_shape(f32::datum_type(), Vec::<usize>::new()))
+                .map_err(|e| tract_err(&format!("tract rejects the gate '{name}'"), &e))?;
+            order.push(InputSlot::Gate(k));
+            continue;
+        }
         let fed = feeding.inputs.iter().position(|f| f.name == name).ok_or_else(|| {
             Error::new(
                 ErrorKind::Probe,
@@ -192,7 +254,7 @@ fn run_inner(
         model
             .set_input_fact(i, InferenceFact::dt_shape(dt, shape))
             .map_err(|e| tract_err(&format!("tract rejects the shape of input '{name}'"), &e))?;
-        order.push(fed);
+        order.push(InputSlot::Fed(fed));
     }
 
     // Protect watched tensors as extra outputs.
@@ -219,13 +281,13 @@ fn run_inner(
     let mut typed =
         model.into_optimized().map_err(|e| tract_err("tract could not prepare the model", &e))?;
     let final_outs = typed.output_outlets().map_err(|e| tract_err("tract", &e))?.to_vec();
-    let mut watch_map: HashMap<(usize, usize), Vec<(usize, Role)>> = HashMap::new();
+    let mut watch_map: HashMap<(usize, usize), Roles> = HashMap::new();
     for (i, (b, role)) in roles_by_position.iter().enumerate() {
         let o = final_outs[originals.len() + i];
         watch_map.entry((o.node, o.slot)).or_default().push((*b, *role));
     }
     // Sources are not evaluated by the callback: watch them from the inputs.
-    let mut source_roles: Vec<(usize, Vec<(usize, Role)>)> = Vec::new();
+    let mut source_roles: Vec<(usize, Roles)> = Vec::new();
     let typed_inputs = typed.input_outlets().map_err(|e| tract_err("tract", &e))?.to_vec();
     for (i, outlet) in typed_inputs.iter().enumerate() {
         if let Some(roles) = watch_map.remove(&(outlet.node, outlet.slot)) {
@@ -234,7 +296,7 @@ fn run_inner(
     }
     // The optimiser may fold a watched tensor into a constant (a branch scaled
     // by zero): constants are not evaluated, so measure them once per pass.
-    let mut constant_roles: Vec<(TValue, Vec<(usize, Role)>)> = Vec::new();
+    let mut constant_roles: Vec<(TValue, Roles)> = Vec::new();
     let outlets: Vec<(usize, usize)> = watch_map.keys().copied().collect();
     for key in outlets {
         let fact =
@@ -244,29 +306,58 @@ fn run_inner(
             constant_roles.push((TValue::from_const(k), roles));
         }
     }
+    // A deterministic order of constants (the map's order is not).
+    constant_roles.sort_by_key(|(_, roles)| roles.first().map(|&(b, _)| b));
     typed
         .select_output_outlets(&final_outs[..originals.len()])
         .map_err(|e| tract_err("tract", &e))?;
     let plan =
         typed.into_runnable().map_err(|e| tract_err("tract could not plan the model", &e))?;
-    let mut state = tract_onnx::tract_core::plan::SimpleState::new(&plan)
+    let state = tract_onnx::tract_core::plan::SimpleState::new(&plan)
         .map_err(|e| tract_err("tract", &e))?;
     progress.advance();
+    Ok(Prepared {
+        state,
+        order,
+        watch_map,
+        source_roles,
+        constant_roles,
+        n_outputs: originals.len(),
+    })
+}
 
-    progress.step("running", feeding.passes as u64);
-    let mut acc: Vec<BlockSamples> = vec![BlockSamples::default(); watches.len()];
-    let mut outputs: Vec<Vec<f32>> = vec![Vec::new(); originals.len()];
-    for pass in 0..feeding.passes {
-        let values = inputs::values(feeding, pass);
+impl Prepared {
+    /// The tensors of one pass, in tract's input order, gates set to `gates`
+    /// (missing gates are 1).
+    fn tensors(&self, feeding: &Feeding, values: &[Values], gates: &[f32]) -> Result<TVec<TValue>> {
         let mut tensors: TVec<TValue> = tvec![];
-        for &fed in &order {
-            let shape: Vec<usize> =
-                feeding.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
-            let t = to_tensor(&values[fed], &shape).map_err(|e| tract_err("tract", &e))?;
+        for slot in &self.order {
+            let t = match *slot {
+                InputSlot::Fed(fed) => {
+                    let shape: Vec<usize> =
+                        feeding.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
+                    to_tensor(&values[fed], &shape).map_err(|e| tract_err("tract", &e))?
+                }
+                InputSlot::Gate(k) => tensor0(gates.get(k).copied().unwrap_or(1.0)),
+            };
             tensors.push(t.into_tvalue());
         }
+        Ok(tensors)
+    }
+
+    /// Runs one pass and measures every watch into `acc`; with `hold`, keeps
+    /// a reference to every watched tensor of the pass (for the gain).
+    fn measure(
+        &mut self,
+        watches: &[Watch],
+        feeding: &Feeding,
+        tensors: TVec<TValue>,
+        acc: &mut [BlockSamples],
+        mut hold: Option<&mut Vec<Held>>,
+    ) -> Result<TVec<TValue>> {
         let mut pending = Pending::new(watches);
-        for (i, roles) in &source_roles {
+        let batch = feeding.pass_batch;
+        for (i, roles) in &self.source_roles {
             for &(b, role) in roles {
                 observe(
                     &mut acc[b],
@@ -274,25 +365,24 @@ fn run_inner(
                     &watches[b],
                     role,
                     &tensors[*i],
-                    feeding.pass_batch,
+                    batch,
                 )?;
+                if let Some(h) = hold.as_deref_mut() {
+                    h[b].keep(role, &tensors[*i]);
+                }
             }
         }
-        for (konst, roles) in &constant_roles {
-            let value =
-                broadcast_batch(konst, feeding.pass_batch).map_err(|e| tract_err("tract", &e))?;
+        for (konst, roles) in &self.constant_roles {
+            let value = broadcast_batch(konst, batch).map_err(|e| tract_err("tract", &e))?;
             for &(b, role) in roles {
-                observe(
-                    &mut acc[b],
-                    &mut pending.slots[b],
-                    &watches[b],
-                    role,
-                    &value,
-                    feeding.pass_batch,
-                )?;
+                observe(&mut acc[b], &mut pending.slots[b], &watches[b], role, &value, batch)?;
+                if let Some(h) = hold.as_deref_mut() {
+                    h[b].keep(role, &value);
+                }
             }
         }
-        let result = state.run_plan_with_eval(
+        let watch_map = &self.watch_map;
+        let result = self.state.run_plan_with_eval(
             tensors,
             |ctx, op_state, node, ins| -> TractResult<TVec<TValue>> {
                 let out = tract_onnx::tract_core::plan::eval(ctx, op_state, node, ins)?;
@@ -305,28 +395,325 @@ fn run_inner(
                                 &watches[b],
                                 role,
                                 value,
-                                feeding.pass_batch,
+                                batch,
                             )
                             .map_err(|e| anyhow::anyhow!("{e}"))?;
+                            if let Some(h) = hold.as_deref_mut() {
+                                h[b].keep(role, value);
+                            }
                         }
                     }
                 }
                 Ok(out)
             },
         );
-        let result = result.map_err(|e| tract_err("tract failed while running the model", &e))?;
-        for (i, t) in result.iter().enumerate() {
-            if let Ok(f) = t.cast_to::<f32>()
-                && let Ok(view) = f.try_as_plain_ram()
-                && let Ok(s) = view.as_slice::<f32>()
-            {
-                outputs[i].extend_from_slice(s);
+        result.map_err(|e| tract_err("tract failed while running the model", &e))
+    }
+
+    /// Runs the perturbed copy of a pass whose intact tensors are `held`, and
+    /// records every block's changes into `acc`.
+    fn compare(
+        &mut self,
+        watches: &[Watch],
+        feeding: &Feeding,
+        tensors: TVec<TValue>,
+        held: &mut [Held],
+        acc: &mut [GainSamples],
+    ) -> Result<()> {
+        let batch = feeding.pass_batch;
+        let mut now: Vec<Held> = watches.iter().map(Held::new).collect();
+        for (i, roles) in &self.source_roles {
+            for &(b, role) in roles {
+                now[b].keep(role, &tensors[*i]);
+                changes(&mut acc[b], &mut held[b], &mut now[b], batch)?;
             }
         }
+        for (konst, roles) in &self.constant_roles {
+            let value = broadcast_batch(konst, batch).map_err(|e| tract_err("tract", &e))?;
+            for &(b, role) in roles {
+                now[b].keep(role, &value);
+                changes(&mut acc[b], &mut held[b], &mut now[b], batch)?;
+            }
+        }
+        let watch_map = &self.watch_map;
+        let result = self.state.run_plan_with_eval(
+            tensors,
+            |ctx, op_state, node, ins| -> TractResult<TVec<TValue>> {
+                let out = tract_onnx::tract_core::plan::eval(ctx, op_state, node, ins)?;
+                for (slot, value) in out.iter().enumerate() {
+                    if let Some(roles) = watch_map.get(&(node.id, slot)) {
+                        for &(b, role) in roles {
+                            now[b].keep(role, value);
+                            changes(&mut acc[b], &mut held[b], &mut now[b], batch)
+                                .map_err(|e| anyhow::anyhow!("{e}"))?;
+                        }
+                    }
+                }
+                Ok(out)
+            },
+        );
+        result.map_err(|e| tract_err("tract failed while running the model", &e))?;
+        Ok(())
+    }
+
+    /// Runs one pass without measuring anything.
+    fn plain(&mut self, tensors: TVec<TValue>) -> Result<TVec<TValue>> {
+        self.state.run(tensors).map_err(|e| tract_err("tract failed while running the model", &e))
+    }
+}
+
+/// Appends the float outputs of one pass; returns their shapes.
+fn collect_outputs(result: &TVec<TValue>, outputs: &mut [Vec<f32>]) -> Vec<Vec<usize>> {
+    let mut shapes = Vec::with_capacity(result.len());
+    for (i, t) in result.iter().enumerate() {
+        shapes.push(t.shape().to_vec());
+        if let Ok(f) = t.cast_to::<f32>()
+            && let Ok(view) = f.try_as_plain_ram()
+            && let Ok(s) = view.as_slice::<f32>()
+        {
+            outputs[i].extend_from_slice(s);
+        }
+    }
+    shapes
+}
+
+/// Watched tensors of one block in one pass, held for the gain.
+#[derive(Default)]
+struct Held {
+    fork: Option<TValue>,
+    shortcut: Option<TValue>,
+    branch: Vec<Option<TValue>>,
+    output: Option<TValue>,
+}
+
+impl Held {
+    fn new(w: &Watch) -> Held {
+        Held { branch: vec![None; w.branch.len()], ..Held::default() }
+    }
+
+    fn keep(&mut self, role: Role, value: &TValue) {
+        let v = Some(value.clone());
+        match role {
+            Role::Fork => self.fork = v,
+            Role::Shortcut => self.shortcut = v,
+            Role::Branch(k) => self.branch[k] = v,
+            Role::Output => self.output = v,
+        }
+    }
+
+    fn complete(&self) -> bool {
+        self.fork.is_some()
+            && self.shortcut.is_some()
+            && self.output.is_some()
+            && self.branch.iter().all(Option::is_some)
+    }
+}
+
+/// Per-sample RMS of the change between two tensors of one block's role.
+fn delta_rms(a: &TValue, b: &TValue, batch: usize) -> Result<Option<Vec<f64>>> {
+    let (sa, x) = floats(a)?;
+    let (sb, y) = floats(b)?;
+    if sa != sb {
+        return Ok(None);
+    }
+    Ok(Some(
+        samples(&x, batch).zip(samples(&y, batch)).map(|(p, q)| stats::rms_diff(p, q)).collect(),
+    ))
+}
+
+/// Once both the intact and the perturbed tensors of a block are complete,
+/// records the changes and drops both.
+fn changes(acc: &mut GainSamples, intact: &mut Held, now: &mut Held, batch: usize) -> Result<()> {
+    if !now.complete() || !intact.complete() {
+        return Ok(());
+    }
+    let pick = |h: &Option<TValue>| h.clone().expect("complete");
+    if let Some(d) = delta_rms(&pick(&intact.fork), &pick(&now.fork), batch)? {
+        acc.fork.extend(d);
+    }
+    if let Some(d) = delta_rms(&pick(&intact.shortcut), &pick(&now.shortcut), batch)? {
+        acc.shortcut.extend(d);
+    }
+    if let Some(d) = delta_rms(&pick(&intact.output), &pick(&now.output), batch)? {
+        acc.output.extend(d);
+    }
+    // The branch's change, summed over its merge inputs.
+    let mut sum: Option<Vec<f32>> = None;
+    let mut shape = None;
+    let mut same = true;
+    for (c, p) in intact.branch.iter().zip(&now.branch) {
+        let (sc, x) = floats(c.as_ref().expect("complete"))?;
+        let (sp, y) = floats(p.as_ref().expect("complete"))?;
+        same &= sc == sp && shape.as_ref().is_none_or(|s| *s == sc);
+        if !same {
+            break;
+        }
+        shape = Some(sc);
+        let s = sum.get_or_insert_with(|| vec![0.0; x.len()]);
+        for ((s, a), b) in s.iter_mut().zip(x.iter()).zip(y.iter()) {
+            *s += b - a;
+        }
+    }
+    if same && let Some(s) = sum {
+        acc.branch.extend(samples(&s, batch).map(stats::rms));
+    }
+    *intact = Held { branch: vec![None; intact.branch.len()], ..Held::default() };
+    *now = Held { branch: vec![None; now.branch.len()], ..Held::default() };
+    Ok(())
+}
+
+/// Per-sample RMS of the changes of one block between an intact pass and its
+/// perturbed copy.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct GainSamples {
+    /// Change of the block input (the fork).
+    pub fork: Vec<f64>,
+    /// Change of the shortcut at the merge.
+    pub shortcut: Vec<f64>,
+    /// Change of the branch at the merge (summed over its merge inputs).
+    pub branch: Vec<f64>,
+    /// Change of the merge output.
+    pub output: Vec<f64>,
+}
+
+/// Per-sample RMS of the change of the model input (all float inputs of a
+/// sample taken together).
+fn input_changes(intact: &[Values], perturbed: &[Values], batch: usize, out: &mut Vec<f64>) {
+    let mut ss: Vec<f64> = vec![0.0; batch.max(1)];
+    let mut n: Vec<usize> = vec![0; batch.max(1)];
+    for (a, b) in intact.iter().zip(perturbed) {
+        if let (Values::F32(x), Values::F32(y)) = (a, b) {
+            for (i, (p, q)) in samples(x, batch).zip(samples(y, batch)).enumerate() {
+                if i < ss.len() {
+                    let r = stats::rms_diff(p, q);
+                    ss[i] += r * r * p.len() as f64;
+                    n[i] += p.len();
+                }
+            }
+        }
+    }
+    out.extend(ss.iter().zip(&n).filter(|(_, n)| **n > 0).map(|(s, &n)| (s / n as f64).sqrt()));
+}
+
+/// Receives the outputs of knockout setting `i`: `(i, intact outputs,
+/// output shapes of one pass, this setting's outputs)`, outputs flattened per
+/// output over all passes.
+pub type OutputSink<'a> = dyn FnMut(usize, &[Vec<f32>], &[Vec<usize>], Vec<Vec<f32>>) + 'a;
+
+/// What a gated run does besides the intact measurement.
+#[derive(Debug, Clone, Default)]
+pub struct GatedPlan {
+    /// Names of the gate inputs in the model.
+    pub gates: Vec<String>,
+    /// Gate values of each knockout run (a missing value is 1).
+    pub settings: Vec<Vec<f32>>,
+    /// Relative step of the perturbation, when the gain is measured.
+    pub gain_step: Option<f32>,
+}
+
+/// The outcome of a gated run.
+#[derive(Debug, Clone)]
+pub struct GatedResult {
+    /// The intact run, measured as [`run`] measures it.
+    pub intact: ProbeResult,
+    /// Per-block changes under the perturbation, when asked for.
+    pub gain: Option<Vec<GainSamples>>,
+    /// Per-sample RMS of the change of the model input.
+    pub input_change: Vec<f64>,
+    /// Forward passes run in all.
+    pub forward_passes: usize,
+}
+
+/// Prepares the (gated) model once, runs the intact passes with every gate
+/// at 1 and measures every watch, then (optionally) a perturbed copy of
+/// every pass, then every knockout setting over all passes; `sink` receives
+/// each setting's float outputs (flattened per output over all passes).
+pub fn run_gated(
+    source: ModelSource<'_>,
+    watches: &[Watch],
+    feeding: &Feeding,
+    plan: &GatedPlan,
+    sink: &mut OutputSink<'_>,
+    progress: &dyn Progress,
+) -> Result<GatedResult> {
+    let inner =
+        AssertUnwindSafe(|| run_gated_inner(source, watches, feeding, plan, sink, progress));
+    match catch_unwind(inner) {
+        Ok(r) => r,
+        Err(panic) => {
+            let what = panic
+                .downcast_ref::<String>()
+                .map(String::as_str)
+                .or_else(|| panic.downcast_ref::<&str>().copied())
+                .unwrap_or("unknown cause");
+            Err(Error::new(
+                ErrorKind::Probe,
+                format!("the inference engine (tract) failed while running the model: {what}"),
+            ))
+        }
+    }
+}
+
+fn run_gated_inner(
+    source: ModelSource<'_>,
+    watches: &[Watch],
+    feeding: &Feeding,
+    plan: &GatedPlan,
+    sink: &mut OutputSink<'_>,
+    progress: &dyn Progress,
+) -> Result<GatedResult> {
+    let mut prepared = prepare(source, watches, feeding, &plan.gates, progress)?;
+    let per_pass = if plan.gain_step.is_some() { 2 } else { 1 };
+    progress.step("running", (feeding.passes * per_pass) as u64);
+    let mut acc: Vec<BlockSamples> = vec![BlockSamples::default(); watches.len()];
+    let mut outputs: Vec<Vec<f32>> = vec![Vec::new(); prepared.n_outputs];
+    let mut output_shapes = Vec::new();
+    let mut gain: Option<Vec<GainSamples>> =
+        plan.gain_step.map(|_| vec![GainSamples::default(); watches.len()]);
+    let mut input_change = Vec::new();
+    let mut forward_passes = 0;
+    for pass in 0..feeding.passes {
+        let values = inputs::values(feeding, pass);
+        let tensors = prepared.tensors(feeding, &values, &[])?;
+        let mut held: Option<Vec<Held>> =
+            plan.gain_step.map(|_| watches.iter().map(Held::new).collect());
+        let result = prepared.measure(watches, feeding, tensors, &mut acc, held.as_mut())?;
+        forward_passes += 1;
+        output_shapes = collect_outputs(&result, &mut outputs);
+        drop(result);
         progress.advance();
+        if let (Some(step), Some(held), Some(gain)) = (plan.gain_step, held.as_mut(), gain.as_mut())
+        {
+            let moved = inputs::perturbed(feeding, pass, &values, step);
+            input_changes(&values, &moved, feeding.pass_batch, &mut input_change);
+            let tensors = prepared.tensors(feeding, &moved, &[])?;
+            prepared.compare(watches, feeding, tensors, held, gain)?;
+            forward_passes += 1;
+            progress.advance();
+        }
+    }
+    if !plan.settings.is_empty() {
+        progress.step("knocking out", (plan.settings.len() * feeding.passes) as u64);
+        for (i, setting) in plan.settings.iter().enumerate() {
+            let mut outs: Vec<Vec<f32>> = vec![Vec::new(); prepared.n_outputs];
+            for pass in 0..feeding.passes {
+                let values = inputs::values(feeding, pass);
+                let tensors = prepared.tensors(feeding, &values, setting)?;
+                let result = prepared.plain(tensors)?;
+                forward_passes += 1;
+                collect_outputs(&result, &mut outs);
+                progress.advance();
+            }
+            sink(i, &outputs, &output_shapes, outs);
+        }
     }
     progress.finish();
-    Ok(ProbeResult { blocks: acc, outputs })
+    Ok(GatedResult {
+        intact: ProbeResult { blocks: acc, outputs, output_shapes },
+        gain,
+        input_change,
+        forward_passes,
+    })
 }
 
 /// Merge inputs of one block held until both sides have been seen.

@@ -16,7 +16,7 @@ use serde::{Deserialize, Serialize};
 pub const REPORT_SCHEMA: &str = "shunt/report";
 /// Version of the report JSON schema; bumped on every change of its fields.
 /// Version 1 was the scan-only document `shunt/scan`.
-pub const REPORT_SCHEMA_VERSION: u32 = 2;
+pub const REPORT_SCHEMA_VERSION: u32 = 3;
 
 /// The result of `shunt scan` or `shunt audit` on one model.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -52,6 +52,10 @@ pub struct Report {
     pub subgraphs: Vec<SubgraphRow>,
     /// Problems the analysis worked around.
     pub diagnostics: Vec<DiagnosticRow>,
+    /// Which blocks matter (knockout, perturbation gain, effective depth),
+    /// when `audit --knockout` or `--gain` ran.
+    #[serde(default)]
+    pub influence: Option<InfluenceReport>,
 }
 
 /// The model file and its main graph.
@@ -460,4 +464,132 @@ pub struct DiagnosticRow {
     pub node: Option<String>,
     /// What happened.
     pub message: String,
+}
+
+/// How closely one run's outputs follow the intact run's.
+pub type Agreement = crate::stats::Agreement;
+
+/// Which blocks matter: the outputs with a block's branch knocked out, the
+/// growth of a small input change along depth, and the effective depth.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct InfluenceReport {
+    /// How the knockout ran, when it did.
+    pub knockout: Option<KnockoutSetup>,
+    /// How the perturbation gain was measured, when it was.
+    pub gain: Option<GainSetup>,
+    /// One row per block of the report, in block order.
+    pub blocks: Vec<InfluenceRow>,
+    /// The ensemble-of-paths summary, when the gain was measured.
+    pub effective_depth: Option<EffectiveDepthRow>,
+    /// Blocks that could not be knocked out, and why.
+    pub skipped: Vec<SkippedRow>,
+}
+
+/// How the knockout ran.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct KnockoutSetup {
+    /// Ids of the blocks knocked out.
+    pub blocks: Vec<usize>,
+    /// Whether the converse (the shortcut removed) ran too.
+    pub shortcuts: bool,
+    /// `low-impact` when the relative change of the outputs is below this.
+    pub low_impact_below: f64,
+    /// Forward passes run in all (intact, perturbed and knockout passes).
+    pub forward_passes: usize,
+    /// The outputs compared (float outputs), with the number of classes when
+    /// an output looks like class scores (`[batch, classes]`).
+    pub outputs: Vec<ComparedOutput>,
+}
+
+/// One compared output.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ComparedOutput {
+    /// ONNX name.
+    pub name: String,
+    /// Length of the class axis, when top-1 agreement is measured.
+    pub classes: Option<usize>,
+}
+
+/// How the perturbation gain was measured.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct GainSetup {
+    /// Size of the input change relative to the input's RMS, per sample.
+    pub step: f64,
+    /// RMS of the change of the model input actually fed (after rounding).
+    pub input_change: Option<Spread>,
+    /// RMS(Δ output of the last top-level block) / RMS(Δ input of the first),
+    /// mean over samples.
+    pub end_to_end: Option<f64>,
+    /// `exploding-gain` / `vanishing-gain` when the end-to-end gain up to a
+    /// block is above this factor / below its inverse.
+    pub gain_factor: f64,
+}
+
+/// What one block does to the model.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct InfluenceRow {
+    /// The block's id.
+    pub block: usize,
+    /// Whether the block changes the spatial or sequence size (a stride, a
+    /// pooling or resampled shortcut, or fork and output shapes that differ
+    /// outside the channel axis).
+    pub changes_resolution: bool,
+    /// The outputs with the branch knocked out against the intact outputs.
+    pub knockout: Option<Agreement>,
+    /// The outputs with the shortcut knocked out (the converse).
+    pub shortcut_knockout: Option<Agreement>,
+    /// Rank by the relative change of the outputs under knockout (1 = largest).
+    pub rank: Option<usize>,
+    /// The knockout changes the outputs by less than `low_impact_below`.
+    pub low_impact: bool,
+    /// RMS(Δ merge output) / RMS(Δ block input), per sample.
+    pub gain: Option<Spread>,
+    /// RMS(Δ shortcut) / RMS(Δ block input), per sample.
+    pub shortcut_gain: Option<Spread>,
+    /// RMS(Δ branch) / RMS(Δ block input), per sample.
+    pub branch_gain: Option<Spread>,
+    /// RMS(Δ branch) / (RMS(Δ shortcut) + RMS(Δ branch)), mean over samples:
+    /// the share of the change that takes the branch.
+    pub branch_share: Option<f64>,
+    /// Product of the gains of the top-level blocks up to this one.
+    pub gain_product: Option<f64>,
+    /// RMS(Δ merge output) / RMS(Δ input of the first top-level block), mean
+    /// over samples: the end-to-end gain up to this block.
+    pub gain_to_here: Option<f64>,
+}
+
+/// The ensemble-of-paths view over the top-level blocks (see the README).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct EffectiveDepthRow {
+    /// Top-level blocks with a measured branch share.
+    pub blocks: usize,
+    /// Mean number of branches a unit of change passes through (the
+    /// effective depth): the sum of the branch shares.
+    pub mean_path_length: f64,
+    /// Standard deviation of the path length.
+    pub path_length_sd: f64,
+    /// Shortest length k with at least half the weight on paths ≤ k.
+    pub median_path_length: usize,
+    /// Shortest and longest lengths of the central 80% of the weight.
+    pub central_80: [usize; 2],
+    /// Weight of paths of each length 0..=blocks (sums to 1).
+    pub distribution: Vec<f64>,
+    /// Top-level blocks knocked out whose knockout is not low-impact.
+    pub carrying: Option<usize>,
+}
+
+/// A block that could not be knocked out.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SkippedRow {
+    /// The block's id.
+    pub block: usize,
+    /// Why.
+    pub reason: String,
 }

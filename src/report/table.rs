@@ -96,6 +96,11 @@ pub fn render(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
     if r.run.is_some() && r.run_error.is_none() {
         profile(r, out)?;
     }
+    if r.run_error.is_none()
+        && let Some(inf) = &r.influence
+    {
+        influence(inf, out)?;
+    }
     summary(r, out)?;
     findings(r, out)
 }
@@ -258,6 +263,87 @@ fn profile(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
     writeln!(out, "signal profile across depth (log scale, one mark per block):")?;
     writeln!(out, "  output RMS  {}  {}", sparkline(&output), ends(&output))?;
     writeln!(out, "  ratio       {}  {}", sparkline(&ratio), ends(&ratio))?;
+    Ok(())
+}
+
+/// Which blocks matter: knockout, gain and effective depth.
+fn influence(inf: &crate::report::InfluenceReport, out: &mut dyn io::Write) -> io::Result<()> {
+    let k = inf.knockout.as_ref();
+    let mut t = new_table(&[
+        "#",
+        "knockout Δ",
+        "cos",
+        "top-1",
+        "rank",
+        "no-shortcut Δ",
+        "gain",
+        "via branch",
+        "gain so far",
+        "notes",
+    ]);
+    let num = |v: Option<f64>| v.map_or("-".to_owned(), |v| format!("{v:.3e}"));
+    for b in &inf.blocks {
+        let mut notes = Vec::new();
+        if b.low_impact {
+            notes.push("low impact");
+        }
+        if b.changes_resolution {
+            notes.push("changes resolution");
+        }
+        t.add_row(vec![
+            b.block.to_string(),
+            num(b.knockout.map(|a| a.rel_l2)),
+            b.knockout.and_then(|a| a.cosine).map_or("-".to_owned(), |c| format!("{c:+.4}")),
+            b.knockout
+                .and_then(|a| a.top1)
+                .map_or("-".to_owned(), |c| format!("{:.0}%", c * 100.0)),
+            b.rank.map_or("-".to_owned(), |r| r.to_string()),
+            num(b.shortcut_knockout.map(|a| a.rel_l2)),
+            b.gain.map_or("-".to_owned(), |g| format!("{:.3}", g.mean)),
+            b.branch_share.map_or("-".to_owned(), |s| format!("{:.0}%", s * 100.0)),
+            num(b.gain_to_here),
+            notes.join(", "),
+        ]);
+    }
+    writeln!(out)?;
+    writeln!(
+        out,
+        "which blocks matter (knockout: relative change of the outputs with the branch removed):"
+    )?;
+    writeln!(out, "{t}")?;
+    if let Some(k) = k {
+        writeln!(
+            out,
+            "  knockout of {} block(s){}: {} forward passes, one model preparation",
+            k.blocks.len(),
+            if k.shortcuts { " and of their shortcuts" } else { "" },
+            k.forward_passes
+        )?;
+    }
+    if let Some(g) = &inf.gain {
+        writeln!(
+            out,
+            "  perturbation gain: step {:.1e} of the input RMS; end to end {}",
+            g.step,
+            num(g.end_to_end)
+        )?;
+    }
+    if let Some(e) = &inf.effective_depth {
+        writeln!(
+            out,
+            "  effective depth: mean path length {:.2} of {} blocks (sd {:.2}, median {}, central 80% {}..{}){}",
+            e.mean_path_length,
+            e.blocks,
+            e.path_length_sd,
+            e.median_path_length,
+            e.central_80[0],
+            e.central_80[1],
+            e.carrying.map_or(String::new(), |c| format!("; {c} block(s) carry signal"))
+        )?;
+    }
+    for s in &inf.skipped {
+        writeln!(out, "  block #{} not knocked out: {}", s.block, terminal_safe(&s.reason))?;
+    }
     Ok(())
 }
 

@@ -148,6 +148,24 @@ pub fn rms(x: &[f32]) -> f64 {
     if x.is_empty() { 0.0 } else { (sum_sq(x) / x.len() as f64).sqrt() }
 }
 
+/// RMS of `b − a` over the common length, the differences taken in `f64`
+/// (so two nearly equal tensors lose nothing to cancellation in `f32`).
+pub fn rms_diff(a: &[f32], b: &[f32]) -> f64 {
+    let n = a.len().min(b.len());
+    if n == 0 {
+        return 0.0;
+    }
+    let ss: f64 = a
+        .iter()
+        .zip(b)
+        .map(|(&x, &y)| {
+            let d = f64::from(y) - f64::from(x);
+            d * d
+        })
+        .sum();
+    (ss / n as f64).sqrt()
+}
+
 /// Cosine similarity; `None` when either vector is zero or the lengths differ.
 pub fn cosine(a: &[f32], b: &[f32]) -> Option<f64> {
     if a.len() != b.len() {
