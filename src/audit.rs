@@ -121,6 +121,8 @@ pub const ENGINE: &str = "tract-onnx 0.23.9";
 /// Audits a model file.
 pub fn audit_file(path: &Path, config: &AuditConfig, progress: &dyn Progress) -> Result<Audit> {
     let loaded = load::load(path, &config.scan.load)?;
+    // tract reads the external payloads next; check them first.
+    load::verify_checksums(&loaded.model, &loaded.external).map_err(|e| e.at(path))?;
     let info = scan::model_info(
         &path.display().to_string(),
         loaded.file_bytes,

@@ -52,7 +52,10 @@
 //! | `external_negative_offset`, `external_text_offset` | 2, "offset is not a number" |
 //! | `external_length_overflow` | 2, "overflows" |
 //! | `external_missing_file` | 2, "no such file" |
-//! | `external_checksum` | 0 (the scan reads no external payload; checksums are not verified) |
+//! | `external_checksum_scan_accepts` | 0 (the scan reads no external payload, so a well-formed digest is not verified) |
+//! | `external_checksum_audit_mismatch` | 2, "checksum mismatch" (the audit verifies before running) |
+//! | `external_checksum_audit_verified` | not 2 (the digest from `sha1sum`, in upper case) |
+//! | `external_checksum_not_hex` | 2, "checksum is not a SHA-1 digest" |
 //! | **names** | |
 //! | `hostile_names` | 0; table escapes control characters, JSON keeps names intact |
 //! | `hostile_name_in_error` | 2, one line, no raw escape character |
@@ -786,21 +789,59 @@ fn external_missing_file() {
     refused(&external(dir.path(), &[("location", "nowhere.bin")]), "no such file");
 }
 
+/// SHA-1 of a file by coreutils' `sha1sum`: a digest computed outside shunt.
+fn sha1sum(path: &Path) -> String {
+    let out = std::process::Command::new("sha1sum").arg(path).output().expect("sha1sum runs");
+    assert!(out.status.success());
+    String::from_utf8(out.stdout).unwrap().split_whitespace().next().unwrap().to_owned()
+}
+
+/// An external tensor with a `checksum` entry ([O3]: the SHA-1 of the file
+/// named by `location`). The scan reads no payload, so it accepts any
+/// well-formed digest; the audit verifies it before the payload is run.
+fn external_with_checksum(dir: &Path, checksum: &str) -> String {
+    let entries =
+        [("location", "weights.bin"), ("offset", "0"), ("length", "576"), ("checksum", checksum)];
+    external(dir, &entries)
+}
+
 #[test]
-fn external_checksum() {
-    // [O3]: `checksum` is an optional SHA-1 of the payload. The scan reads no
-    // external payload, so it is not verified; a present entry (right or
-    // wrong) must not disturb anything.
+fn external_checksum_scan_accepts() {
     let dir = tempdir();
-    let entries = [
-        ("location", "weights.bin"),
-        ("offset", "0"),
-        ("length", "576"),
-        ("checksum", "0000000000000000000000000000000000000000"),
-    ];
-    let report = scanned(&external(dir.path(), &entries));
+    let path = external_with_checksum(dir.path(), &"0".repeat(40));
+    let report = scanned(&path);
     assert_eq!(report["model"]["external_tensors"], 1);
     assert_eq!(report["model"]["external_bytes"], 576);
+}
+
+#[test]
+fn external_checksum_audit_mismatch() {
+    let dir = tempdir();
+    let path = external_with_checksum(dir.path(), &"0".repeat(40));
+    let run = shunt(&["audit", "--quiet", &path]);
+    assert_refused(&run, &path, "checksum mismatch");
+    // The message shows the file's real digest, as sha1sum computes it.
+    assert!(run.stderr.contains(&sha1sum(&dir.path().join("weights.bin"))), "{}", run.stderr);
+}
+
+#[test]
+fn external_checksum_audit_verified() {
+    let dir = tempdir();
+    external_with_checksum(dir.path(), &"0".repeat(40)); // writes weights.bin
+    let digest = sha1sum(&dir.path().join("weights.bin"));
+    let path = external_with_checksum(dir.path(), &digest.to_uppercase());
+    let run = shunt(&["audit", "--quiet", "--format", "json", &path]);
+    assert_ne!(run.code, 2, "a matching checksum passes: {}", run.stderr);
+    let report: serde_json::Value = serde_json::from_str(&run.stdout).expect("a JSON report");
+    assert!(report["run_error"].is_null(), "{}", report["run_error"]);
+}
+
+#[test]
+fn external_checksum_not_hex() {
+    let dir = tempdir();
+    for bad in ["abc", &"g".repeat(40), &"0".repeat(41)] {
+        refused(&external_with_checksum(dir.path(), bad), "checksum is not a SHA-1 digest");
+    }
 }
 
 // ---------------------------------------------------------------- names
