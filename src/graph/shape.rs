@@ -275,12 +275,16 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
             Some(
                 x.iter()
                     .enumerate()
-                    .map(|(i, d)| match (d, pads[i] + pads[i + x.len()]) {
-                        (Dim::Known(k), p) => Dim::Known((*k as i64 + p).max(0) as u64),
-                        (other, 0) => other.clone(),
-                        _ => Dim::Unknown,
+                    .map(|(i, d)| {
+                        // i128: a hostile file's pads must not overflow.
+                        let p = i128::from(pads[i]) + i128::from(pads[i + x.len()]);
+                        Some(match (d, p) {
+                            (Dim::Known(k), p) => Dim::Known(dim_of(i128::from(*k) + p)?),
+                            (other, 0) => other.clone(),
+                            _ => Dim::Unknown,
+                        })
                     })
-                    .collect(),
+                    .collect::<Option<_>>()?,
             )
         }
         "Slice" => {
@@ -322,20 +326,28 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
     }
 }
 
-/// Output length of a Slice along one axis (ONNX Slice semantics).
+/// Output length of a Slice along one axis (ONNX Slice semantics), in `i128`
+/// so that no start, end or step a file declares can overflow.
 fn slice_len(len: i64, start: i64, end: i64, step: i64) -> Option<u64> {
     if step == 0 {
         return None;
     }
-    let clamp = |v: i64, lo: i64, hi: i64| v.max(lo).min(hi);
-    let norm = |v: i64| if v < 0 { v + len } else { v };
+    let (len, start, end, step) = (len as i128, start as i128, end as i128, step as i128);
+    let clamp = |v: i128, lo: i128, hi: i128| v.max(lo).min(hi);
+    let norm = |v: i128| if v < 0 { v + len } else { v };
     let (s, e) = if step > 0 {
         (clamp(norm(start), 0, len), clamp(norm(end), 0, len))
     } else {
         (clamp(norm(start), -1, len - 1), clamp(norm(end), -1, len - 1))
     };
-    let n = if step > 0 { (e - s + step - 1) / step } else { (s - e + (-step) - 1) / (-step) };
-    Some(n.max(0) as u64)
+    let n = if step > 0 { (e - s + step - 1) / step } else { (s - e - step - 1) / -step };
+    dim_of(n)
+}
+
+/// A computed dim: negative counts as 0; past `i64::MAX` (no ONNX dim can be
+/// that long) the shape stays unknown.
+fn dim_of(n: i128) -> Option<u64> {
+    u64::try_from(n.max(0)).ok().filter(|&d| d <= i64::MAX as u64)
 }
 
 /// `[N, C, spatial…]` of a convolution or pooling: [O2] in the ONNX operator
@@ -363,9 +375,10 @@ fn spatial(
             out.push(Dim::Unknown);
             continue;
         };
-        let (input, k) = (input as i64, k as i64);
-        let stride = *strides.get(i)?;
-        let dilation = *dilations.get(i)?;
+        // i128: no dim, pad, stride or dilation a file declares can overflow.
+        let (input, k) = (i128::from(input), i128::from(k));
+        let stride = i128::from(*strides.get(i)?);
+        let dilation = i128::from(*dilations.get(i)?);
         if stride <= 0 {
             return None;
         }
@@ -373,11 +386,12 @@ fn spatial(
             "SAME_UPPER" | "SAME_LOWER" => (input + stride - 1) / stride,
             "VALID" => (input - dilation * (k - 1) - 1) / stride + 1,
             _ => {
-                let span = input + pads.get(i)? + pads.get(i + rank)? - dilation * (k - 1) - 1;
+                let (begin, end) = (i128::from(*pads.get(i)?), i128::from(*pads.get(i + rank)?));
+                let span = input + begin + end - dilation * (k - 1) - 1;
                 if ceil { (span + stride - 1) / stride + 1 } else { span.div_euclid(stride) + 1 }
             }
         };
-        out.push(Dim::Known(size.max(0) as u64));
+        out.push(Dim::Known(dim_of(size)?));
     }
     Some(out)
 }
@@ -521,5 +535,16 @@ mod tests {
             reshape(&sym, &[0, -1], false).unwrap(),
             vec![Dim::Symbol("N".into()), Dim::Known(12)]
         );
+    }
+
+    #[test]
+    fn hostile_numbers_do_not_overflow() {
+        // Regression (found by review for the fuzzing issue): these wrapped in
+        // i64 and gave wrong lengths, or panicked with overflow checks on.
+        assert_eq!(slice_len(10, 0, 10, i64::MAX), Some(1));
+        assert_eq!(slice_len(10, 9, i64::MIN, i64::MIN), Some(1));
+        assert_eq!(slice_len(10, i64::MIN, i64::MAX, 3), Some(4));
+        assert_eq!(dim_of(i128::from(u64::MAX)), None);
+        assert_eq!(dim_of(-5), Some(0));
     }
 }
