@@ -70,6 +70,7 @@ fn audit_config() -> AuditConfig {
             shapes: BTreeMap::new(),
             fills: BTreeMap::new(),
             feed: None,
+            max_input_elements: shunt::probe::inputs::MAX_INPUT_ELEMENTS,
         },
         findings: scan::standard_findings(),
         influence: None,

@@ -97,6 +97,7 @@ impl AuditConfig {
                 shapes: Default::default(),
                 fills: Default::default(),
                 feed: None,
+                max_input_elements: inputs::MAX_INPUT_ELEMENTS,
             },
             findings: scan::standard_findings(),
             influence: None,

@@ -60,6 +60,7 @@
 //! | `hostile_names` | 0; table escapes control characters, JSON keeps names intact |
 //! | `hostile_name_in_error` | 2, one line, no raw escape character |
 //! | **found by fuzzing** | |
+//! | `input_bomb` | 2, "would hold … elements in one pass" (audit; also dims whose product overflows, and a lowered limit) |
 //! | `r7_conv_weight_rank_one` | 0 (a Conv weight of rank 1 made the shape inference index past it) |
 
 use std::fs;
@@ -467,6 +468,29 @@ fn zip_bomb() {
         "declares 1000000000000 elements of float32 (4000000000000 bytes) but holds 4 bytes",
     );
     assert!(start.elapsed() < Duration::from_secs(5), "refused at once: {:?}", start.elapsed());
+}
+
+#[test]
+fn input_bomb() {
+    // A model input declared 10^6 x 10^6 per sample: the audit refuses it
+    // before allocating (the scan only reads the declaration).
+    let dir = tempdir();
+    let mut m = one_block();
+    m.graph.as_mut().unwrap().input[0] = tensor_info("x", &[1, 4, 1_000_000, 1_000_000]);
+    let path = write(dir.path(), "input_bomb.onnx", &m);
+    assert_eq!(shunt(&["scan", &path]).code, 0);
+    let run = shunt(&["audit", "--quiet", &path]);
+    assert_refused(&run, &path, "input 'x' would hold 4000000000000 elements in one pass");
+    assert!(run.stderr.contains("--max-input-elements"), "{}", run.stderr);
+    // Dims whose product does not fit in 64 bits.
+    m.graph.as_mut().unwrap().input[0] = tensor_info("x", &[1, i64::MAX, i64::MAX]);
+    let path = write(dir.path(), "input_overflow.onnx", &m);
+    let run = shunt(&["audit", "--quiet", &path]);
+    assert_refused(&run, &path, "more than 2^64");
+    // The limit can be raised, and lowered.
+    let path = write(dir.path(), "small.onnx", &one_block());
+    let run = shunt(&["audit", "--quiet", "--max-input-elements", "100", &path]);
+    assert_refused(&run, &path, "more than the limit of 100");
 }
 
 #[test]

@@ -408,7 +408,7 @@ fn layer(g: &Graph, n: NodeId) -> Layer {
         "Conv" | "ConvInteger" | "QLinearConv" | "FusedConv" => Layer {
             node: n,
             kernel: dims.iter().skip(2).map(|d| d.unwrap_or(0)).collect(),
-            in_channels: dims.get(1).copied().flatten().map(|c| c * groups),
+            in_channels: dims.get(1).copied().flatten().and_then(|c| c.checked_mul(groups)),
             out_channels: dims.first().copied().flatten(),
             strides,
             groups,
@@ -417,7 +417,7 @@ fn layer(g: &Graph, n: NodeId) -> Layer {
             node: n,
             kernel: dims.iter().skip(2).map(|d| d.unwrap_or(0)).collect(),
             in_channels: dims.first().copied().flatten(),
-            out_channels: dims.get(1).copied().flatten().map(|c| c * groups),
+            out_channels: dims.get(1).copied().flatten().and_then(|c| c.checked_mul(groups)),
             strides,
             groups,
         },

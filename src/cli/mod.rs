@@ -79,6 +79,9 @@ struct AuditArgs {
     /// Most samples per forward pass (models with a symbolic batch; default: all at once).
     #[arg(long, value_name = "N")]
     pass_batch: Option<usize>,
+    /// Most elements one model input may hold in one pass (checked before allocating).
+    #[arg(long, value_name = "N", default_value_t = shunt::probe::inputs::MAX_INPUT_ELEMENTS)]
+    max_input_elements: u64,
     /// Seed of the input generator.
     #[arg(long, value_name = "N", default_value_t = 0)]
     seed: u64,
@@ -338,6 +341,7 @@ fn run(args: Args) -> anyhow::Result<ExitCode> {
                     shapes: parse_pairs(&a.shapes, "--input", parse_shape)?,
                     fills: parse_pairs(&a.fills, "--fill", |v| v.parse::<f64>().ok())?,
                     feed: a.feed.clone(),
+                    max_input_elements: a.max_input_elements,
                 },
                 findings,
                 influence: a.influence.config()?,

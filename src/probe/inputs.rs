@@ -52,7 +52,14 @@ pub struct InputConfig {
     pub fills: BTreeMap<String, f64>,
     /// A `.npy` (single-input models) or `.npz` (entries named after inputs) file.
     pub feed: Option<PathBuf>,
+    /// Most elements one input may hold in one pass; checked before anything
+    /// is allocated (a file may declare an input of 10^12 elements).
+    pub max_input_elements: u64,
 }
+
+/// The default of [`InputConfig::max_input_elements`]: 2^28 elements, 1 GiB
+/// of `f32` for one input in one pass.
+pub const MAX_INPUT_ELEMENTS: u64 = 1 << 28;
 
 /// One graph input as the graph declares it.
 #[derive(Debug, Clone)]
@@ -223,6 +230,18 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
             };
             (shape, source, how)
         };
+        let elements = pass_shape.iter().try_fold(1u64, |acc, &d| acc.checked_mul(d));
+        if elements.is_none_or(|n| n > config.max_input_elements) {
+            let shape: Vec<String> = pass_shape.iter().map(u64::to_string).collect();
+            return Err(usage(format!(
+                "input '{}' would hold {} elements in one pass (shape {}), more than the limit of {}; \
+                 lower --pass-batch, give a smaller shape with --input, or raise --max-input-elements",
+                s.name,
+                elements.map_or_else(|| "more than 2^64".to_owned(), |n| n.to_string()),
+                shape.join("x"),
+                config.max_input_elements
+            )));
+        }
         inputs.push(Fed { name: s.name.clone(), dtype: s.dtype, pass_shape, how, source });
     }
     Ok(Feeding {
@@ -535,6 +554,7 @@ mod tests {
             shapes: BTreeMap::new(),
             fills: BTreeMap::new(),
             feed: None,
+            max_input_elements: MAX_INPUT_ELEMENTS,
         }
     }
 
