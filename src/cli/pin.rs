@@ -78,6 +78,9 @@ pub(super) struct RunArgs {
     /// Feed real inputs from a .npy or .npz file.
     #[arg(long, value_name = "FILE")]
     pub feed: Option<PathBuf>,
+    /// Most elements one model input may hold in one pass (checked before allocating).
+    #[arg(long, value_name = "N", default_value_t = shunt::probe::inputs::MAX_INPUT_ELEMENTS)]
+    pub max_input_elements: u64,
     /// No progress bar.
     #[arg(long, short = 'q')]
     pub quiet: bool,
@@ -98,6 +101,7 @@ impl RunArgs {
             shapes: parse_pairs(&self.shapes, "--input", parse_shape)?,
             fills: parse_pairs(&self.fills, "--fill", |v| v.parse::<f64>().ok())?,
             feed: self.feed.clone(),
+            max_input_elements: self.max_input_elements,
         })
     }
 }
