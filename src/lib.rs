@@ -16,6 +16,7 @@
 
 pub mod audit;
 pub mod classify;
+pub mod compare;
 pub mod error;
 pub mod expect;
 pub mod findings;

@@ -222,16 +222,25 @@ fn readme_blocks(info: &str) -> Vec<String> {
     let text = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("README.md"))
         .expect("README.md");
     let mut out = Vec::new();
-    let mut current: Option<String> = None;
+    // (info string, text) of the block being read.
+    let mut current: Option<(String, String)> = None;
     for line in text.lines() {
         match &mut current {
-            None if line.trim_end() == format!("```{info}") => current = Some(String::new()),
-            Some(_) if line.trim_end() == "```" => out.extend(current.take()),
-            Some(block) => {
+            None => {
+                if let Some(tag) = line.trim_end().strip_prefix("```") {
+                    current = Some((tag.to_owned(), String::new()));
+                }
+            }
+            Some(_) if line.trim_end() == "```" => {
+                let (tag, block) = current.take().expect("open");
+                if tag == info {
+                    out.push(block);
+                }
+            }
+            Some((_, block)) => {
                 block.push_str(line);
                 block.push('\n');
             }
-            None => {}
         }
     }
     out
@@ -319,4 +328,171 @@ fn expectation_differences_name_what_was_meant() {
     ]);
     assert_eq!(run.code, 2);
     assert!(run.stderr.contains("typo.toml") && run.stderr.contains("blcks"), "{}", run.stderr);
+}
+
+fn compare_json(a: &str, b: &str, extra: &[&str]) -> (i32, serde_json::Value) {
+    let mut args = vec!["compare", a, b, "--format", "json", "--quiet"];
+    args.extend_from_slice(extra);
+    let run = shunt(&args);
+    assert!(run.code == 0 || run.code == 1, "{}{}", run.stdout, run.stderr);
+    (run.code, json(&run))
+}
+
+fn statuses(v: &serde_json::Value) -> Vec<(Option<u64>, Option<u64>, String)> {
+    v["blocks"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| (p["a"].as_u64(), p["b"].as_u64(), p["status"].as_str().unwrap().to_owned()))
+        .collect()
+}
+
+fn same_six() -> Vec<(Option<u64>, Option<u64>, String)> {
+    (1..=6).map(|i| (Some(i), Some(i), "same".to_owned())).collect()
+}
+
+#[test]
+fn float_and_quantised_exports_align_block_by_block() {
+    let (code, v) =
+        compare_json(&torch("resnet_cifar_folded.onnx"), &torch("resnet_cifar_qdq.onnx"), &[]);
+    assert_eq!(code, 0, "{v:#}");
+    assert_eq!(v["schema"], "shunt/compare");
+    assert_eq!(v["schema_version"], 1);
+    assert_eq!(statuses(&v), same_six());
+    for p in v["blocks"].as_array().unwrap() {
+        let (a, b) = (p["ratio_a"].as_f64().unwrap(), p["ratio_b"].as_f64().unwrap());
+        assert!((p["ratio_delta"].as_f64().unwrap() - (b - a)).abs() < 1e-12);
+        // int8 QDQ moves a ratio a little, never to another regime (common practice:
+        // per-tensor int8 keeps activations within a few percent).
+        assert!((b / a - 1.0).abs() < 0.05, "{p:#}");
+    }
+    let out = &v["outputs"][0];
+    assert_eq!(out["classes"], 10);
+    assert!(out["rel_l2"].as_f64().unwrap() > 0.0, "quantisation changes the logits");
+    assert!(out["rel_l2"].as_f64().unwrap() < 0.1, "{out:#}");
+    assert!(out["cosine"].as_f64().unwrap() > 0.99, "{out:#}");
+    assert!(out["top1"].as_f64().is_some());
+    // The same inputs went to both: what was fed is recorded once.
+    assert_eq!(v["run"]["inputs"][0]["values"], "normal(0, 1)");
+    assert_eq!(v["run"]["samples"], 8);
+}
+
+#[test]
+fn folding_batchnorm_changes_nothing_measurable() {
+    let (code, v) =
+        compare_json(&torch("resnet_cifar_bn.onnx"), &torch("resnet_cifar_folded.onnx"), &[]);
+    assert_eq!(code, 0, "{v:#}");
+    assert_eq!(statuses(&v), same_six());
+    // Folding BN into the convolution is exact up to float rounding.
+    for p in v["blocks"].as_array().unwrap() {
+        assert!(p["ratio_change"].as_f64().unwrap().abs() < 1e-4, "{p:#}");
+    }
+    assert!(v["outputs"][0]["rel_l2"].as_f64().unwrap() < 1e-4, "{v:#}");
+    assert_eq!(v["outputs"][0]["top1"].as_f64(), Some(1.0));
+}
+
+#[test]
+fn a_removed_shortcut_is_an_unaligned_block_and_fails_the_comparison() {
+    let dir = tempdir();
+    let broken = shortcut_removed(dir.path());
+    let src = torch("resnet_cifar_folded.onnx");
+    let (code, v) = compare_json(&src, &broken, &[]);
+    assert_eq!(code, 1, "{v:#}");
+    let mut want = same_six();
+    want.truncate(3);
+    want.push((Some(4), None, "only-a".to_owned()));
+    want.push((Some(5), Some(4), "same".to_owned()));
+    want.push((Some(6), Some(5), "same".to_owned()));
+    assert_eq!(statuses(&v), want);
+    assert_eq!(v["structural_differences"], 1);
+    // Blocks before the cut see the same signal; the block after it does not.
+    let blocks = v["blocks"].as_array().unwrap();
+    assert!(blocks[0]["ratio_change"].as_f64().unwrap().abs() < 1e-6);
+    assert!(blocks[4]["ratio_change"].as_f64().unwrap().abs() > 0.01);
+    let table = shunt(&["compare", &src, &broken, "--quiet"]);
+    assert_eq!(table.code, 1);
+    assert!(table.stdout.contains("only in A"), "{}", table.stdout);
+    assert!(table.stdout.contains("/blocks/blocks.3/Add"), "{}", table.stdout);
+}
+
+#[test]
+fn swapped_twin_blocks_align_but_their_numbers_move() {
+    let dir = tempdir();
+    let twins = swapped(dir.path());
+    let src = torch("resnet_cifar_folded.onnx");
+    let (code, v) = compare_json(&src, &twins, &[]);
+    assert_eq!(code, 0, "structure is unchanged: {v:#}");
+    assert_eq!(statuses(&v), same_six());
+    let out = v["outputs"][0]["rel_l2"].as_f64().unwrap();
+    assert!(out > 1e-3, "different weights at blocks 1 and 2 change the output: {out}");
+    let blocks = v["blocks"].as_array().unwrap();
+    assert!(blocks[0]["ratio_change"].as_f64().unwrap().abs() > 1e-3, "{v:#}");
+    // A tolerance on outputs turns the numeric change into a failed comparison.
+    let (code, v) = compare_json(&src, &twins, &["--max-rel-l2", "1e-4"]);
+    assert_eq!(code, 1);
+    assert!(v["failures"][0].as_str().unwrap().contains("--max-rel-l2"), "{v:#}");
+}
+
+#[test]
+fn comparisons_are_deterministic_and_refuse_different_inputs() {
+    let a = torch("resnet_cifar_folded.onnx");
+    let b = torch("resnet_cifar_qdq.onnx");
+    let one = shunt(&["compare", &a, &b, "--format", "json", "--quiet", "--seed", "3"]);
+    let two = shunt(&["compare", &a, &b, "--format", "json", "--quiet", "--seed", "3"]);
+    assert_eq!(one.code, 0);
+    assert_eq!(one.stdout, two.stdout);
+    // A different input shape (mobilenet_v2 takes 3x64x64) cannot get the same tensors.
+    let run = shunt(&["compare", &a, &torch("mobilenet_v2.onnx"), "--quiet"]);
+    assert_eq!(run.code, 2);
+    assert!(
+        run.stderr.contains("mobilenet_v2.onnx") && run.stderr.contains("sample shape"),
+        "{}",
+        run.stderr
+    );
+    // Structure only: no run, no outputs, still aligned.
+    let (code, v) = compare_json(&a, &b, &["--no-run"]);
+    assert_eq!(code, 0);
+    assert!(v["run"].is_null());
+    assert_eq!(v["outputs"].as_array().unwrap().len(), 0);
+    assert_eq!(statuses(&v), same_six());
+}
+
+/// Whether two output texts agree: every token equal, except numbers, which
+/// may differ in the last printed digit (tract's kernels differ by CPU).
+fn same_text(real: &str, shown: &str) -> Result<(), String> {
+    let (r, s): (Vec<&str>, Vec<&str>) = (real.lines().collect(), shown.lines().collect());
+    if r.len() != s.len() {
+        return Err(format!("{} lines, the README shows {}", r.len(), s.len()));
+    }
+    for (a, b) in r.iter().zip(&s) {
+        let (ta, tb): (Vec<&str>, Vec<&str>) =
+            (a.split_whitespace().collect(), b.split_whitespace().collect());
+        let number = |t: &str| t.trim_end_matches([',', '%', ')']).parse::<f64>().ok();
+        let ok = ta.len() == tb.len()
+            && ta.iter().zip(&tb).all(|(x, y)| match (number(x), number(y)) {
+                (Some(p), Some(q)) => (p - q).abs() <= 2e-3 + 2e-3 * q.abs(),
+                _ => x == y,
+            });
+        if !ok {
+            return Err(format!("real:   {a}\nREADME: {b}"));
+        }
+    }
+    Ok(())
+}
+
+#[test]
+fn the_readme_compare_example_is_real_output() {
+    let block = readme_blocks("")
+        .into_iter()
+        .find(|b| b.starts_with("$ shunt compare fixtures/"))
+        .expect("a compare example in the README");
+    let (command, shown) = block.split_once('\n').unwrap();
+    let args: Vec<&str> = command.trim_start_matches("$ shunt ").split_whitespace().collect();
+    let mut args = args.clone();
+    args.push("--quiet");
+    let run = shunt(&args);
+    assert_eq!(run.code, 0, "{}", run.stderr);
+    if let Err(e) = same_text(&run.stdout, shown) {
+        panic!("the README's compare example drifted:\n{e}\n--- real output:\n{}", run.stdout);
+    }
 }

@@ -2,6 +2,7 @@
 //! 0 success, 1 a finding named by `--fail-on` occurred, 2 errors.
 #![allow(clippy::print_stdout, clippy::print_stderr)]
 
+mod compare;
 mod output;
 mod pin;
 mod progress;
@@ -38,6 +39,8 @@ enum Command {
     Pin(pin::PinArgs),
     /// Check a model against a pin file or a hand-written expectation; exit 1 on any difference.
     Verify(pin::VerifyArgs),
+    /// Align the blocks of two models, run both on the same inputs, and report what changed.
+    Compare(compare::CompareArgs),
 }
 
 #[derive(Debug, clap::Args)]
@@ -299,6 +302,7 @@ fn run(args: Args) -> anyhow::Result<ExitCode> {
     match args.command {
         Command::Pin(a) => pin::pin(&a),
         Command::Verify(a) => pin::verify(&a),
+        Command::Compare(a) => compare::compare(&a),
         Command::Scan(a) => {
             let fail_on = parse_fail_on(a.out.fail_on.as_deref())?;
             let report = scan::scan_file(&a.model, &a.limits.config())?;
