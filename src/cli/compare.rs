@@ -44,6 +44,7 @@ pub(super) fn compare(a: &CompareArgs) -> anyhow::Result<ExitCode> {
             scan: a.limits.config(),
             inputs: a.run.inputs()?,
             findings: scan::standard_findings(),
+            influence: None,
         },
         run: !a.no_run,
     };
