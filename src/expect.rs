@@ -72,8 +72,9 @@ const PLACEMENTS: [&str; 5] =
 
 /// Parses an expectation file's text; the error says what is wrong.
 pub fn read(text: &str) -> Result<Expectation, String> {
-    let e: Expectation =
-        toml::from_str(text).map_err(|e| format!("not a valid expectation file: {e}"))?;
+    let e: Expectation = toml::from_str(text).map_err(|e| {
+        format!("not a valid expectation file: {}", crate::structure::toml_message(text, &e))
+    })?;
     if let Some(v) = e.version
         && v != EXPECT_VERSION
     {

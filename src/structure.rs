@@ -166,7 +166,8 @@ pub fn write_pin(pin: &Pin, source: &str, out: &mut dyn io::Write) -> io::Result
 
 /// Reads a pin file's text; the error says what is wrong (the caller adds the path).
 pub fn read_pin(text: &str) -> Result<Pin, String> {
-    let pin: Pin = toml::from_str(text).map_err(|e| format!("not a pin file: {e}"))?;
+    let pin: Pin =
+        toml::from_str(text).map_err(|e| format!("not a pin file: {}", toml_message(text, &e)))?;
     if pin.schema != PIN_SCHEMA {
         return Err(format!("schema is '{}', expected '{PIN_SCHEMA}'", pin.schema));
     }
@@ -630,6 +631,17 @@ pub fn render_verification(v: &Verification, out: &mut dyn io::Write) -> io::Res
         writeln!(out, "  {:<18} {}", d.code, terminal_safe(&d.message))?;
     }
     Ok(())
+}
+
+/// A TOML error on one line: "line L, column C: what" (the parser's own
+/// rendering spans several lines and quotes the file).
+pub(crate) fn toml_message(text: &str, e: &toml::de::Error) -> String {
+    let what = e.message().trim_end();
+    let Some(span) = e.span() else { return what.to_owned() };
+    let before = text.get(..span.start).unwrap_or(text);
+    let line = before.matches('\n').count() + 1;
+    let column = before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1;
+    format!("line {line}, column {column}: {what}")
 }
 
 #[cfg(test)]

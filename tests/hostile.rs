@@ -61,6 +61,7 @@
 //! | `hostile_name_in_error` | 2, one line, no raw escape character |
 //! | **found by fuzzing** | |
 //! | `input_bomb` | 2, "would hold … elements in one pass" (audit; also dims whose product overflows, and a lowered limit) |
+//! | `intent_files` | 2 for pin and expectation files that are bad TOML ("line 2, column 7"), devices, FIFOs, folders, over 16 MiB or missing, and for `pin` of a garbage model |
 //! | `r7_conv_weight_rank_one` | 0 (a Conv weight of rank 1 made the shape inference index past it) |
 
 use std::fs;
@@ -866,6 +867,35 @@ fn external_checksum_not_hex() {
     for bad in ["abc", &"g".repeat(40), &"0".repeat(41)] {
         refused(&external_with_checksum(dir.path(), bad), "checksum is not a SHA-1 digest");
     }
+}
+
+// ---------------------------------------------------------------- pin and expectation files
+
+#[test]
+fn intent_files() {
+    let dir = tempdir();
+    let model = write(dir.path(), "model.onnx", &one_block());
+    let verify = |flag: &str, file: &str| shunt(&["verify", &model, flag, file]);
+    // A TOML syntax error: one line that says where.
+    let bad = write_bytes(dir.path(), "bad.toml", b"schema = \"shunt/pin\"\nbad = = 3\n");
+    assert_refused(&verify("--pin", &bad), &bad, "not a pin file: line 2, column 7");
+    assert_refused(&verify("--expect", &bad), &bad, "line 2, column 7");
+    // Devices, FIFOs and folders are never read.
+    assert_refused(&verify("--pin", "/dev/zero"), "/dev/zero", "not a regular file");
+    let fifo = dir.path().join("pipe.toml");
+    assert!(std::process::Command::new("mkfifo").arg(&fifo).status().unwrap().success());
+    let fifo = fifo.display().to_string();
+    assert_refused(&verify("--expect", &fifo), &fifo, "not a regular file");
+    let folder = dir.path().display().to_string();
+    assert_refused(&verify("--pin", &folder), &folder, "not a regular file");
+    // A 17 MiB file is refused, not read whole.
+    let big = write_bytes(dir.path(), "big.toml", &vec![b'#'; 17 << 20]);
+    assert_refused(&verify("--pin", &big), &big, "larger than 16 MiB");
+    // A missing file, and a garbage model.
+    let missing = dir.path().join("missing.toml").display().to_string();
+    assert_refused(&verify("--pin", &missing), &missing, "cannot read the pin file");
+    let garbage = write_bytes(dir.path(), "garbage.onnx", b"\xff\xff\xff not a model");
+    assert_refused(&shunt(&["pin", &garbage]), &garbage, "");
 }
 
 // ---------------------------------------------------------------- names

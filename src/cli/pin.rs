@@ -117,9 +117,26 @@ pub(super) fn pin(a: &PinArgs) -> anyhow::Result<ExitCode> {
     Ok(ExitCode::SUCCESS)
 }
 
+/// Reads a hand-written or pinned text file: a regular file (a FIFO or
+/// device is never opened) of at most 16 MiB.
 fn read_text(path: &Path, what: &str) -> anyhow::Result<String> {
-    std::fs::read_to_string(path)
-        .with_context(|| format!("{}: cannot read the {what} file", path.display()))
+    use std::io::Read;
+    const LIMIT: u64 = 16 << 20;
+    let fail = || format!("{}: cannot read the {what} file", path.display());
+    let meta = std::fs::metadata(path).with_context(fail)?;
+    if !meta.is_file() {
+        anyhow::bail!("{}: the {what} file is not a regular file", path.display());
+    }
+    let mut text = String::new();
+    std::fs::File::open(path)
+        .with_context(fail)?
+        .take(LIMIT + 1)
+        .read_to_string(&mut text)
+        .with_context(fail)?;
+    if text.len() as u64 > LIMIT {
+        anyhow::bail!("{}: the {what} file is larger than 16 MiB", path.display());
+    }
+    Ok(text)
 }
 
 pub(super) fn verify(a: &VerifyArgs) -> anyhow::Result<ExitCode> {
