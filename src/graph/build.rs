@@ -37,9 +37,14 @@ pub fn build(
         ));
     }
 
-    let mut values: Vec<Value> = Vec::new();
-    let mut by_name: HashMap<String, ValueId> = HashMap::new();
-    let mut initializers = HashMap::new();
+    // Sized up front: growing maps keyed by strings rehashes every name at
+    // each doubling, and deep graphs have tens of thousands of values.
+    let expected_values = graph.initializer.len()
+        + graph.input.len()
+        + graph.node.iter().map(|n| n.output.len()).sum::<usize>();
+    let mut values: Vec<Value> = Vec::with_capacity(expected_values);
+    let mut by_name: HashMap<String, ValueId> = HashMap::with_capacity(expected_values);
+    let mut initializers = HashMap::with_capacity(graph.initializer.len());
     let new_value = |values: &mut Vec<Value>, name: &str, source: Source| {
         let id = ValueId(values.len() as u32);
         values.push(Value {

@@ -30,7 +30,7 @@ pub fn string<'a>(attrs: &'a [AttributeProto], name: &str) -> Option<&'a str> {
 
 /// A tensor attribute (the `value` of a Constant node, for one).
 pub fn tensor<'a>(attrs: &'a [AttributeProto], name: &str) -> Option<&'a TensorProto> {
-    find(attrs, name).and_then(|a| a.t.as_ref())
+    find(attrs, name).and_then(|a| a.t.as_deref())
 }
 
 /// Every subgraph a node carries (If branches, Loop and Scan bodies), with

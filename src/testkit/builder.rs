@@ -15,7 +15,7 @@ use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, Normal};
 
 use crate::proto::attribute_proto::AttributeType;
-use crate::proto::tensor_proto::DataType;
+use crate::proto::tensor_proto::{DataLocation, DataType};
 use crate::proto::tensor_shape_proto::{Dimension, dimension};
 use crate::proto::{
     AttributeProto, GraphProto, ModelProto, NodeProto, OperatorSetIdProto, StringStringEntryProto,
@@ -238,6 +238,15 @@ pub struct ModelBuilder {
     used_names: HashMap<String, u32>,
     konst_i64: HashMap<String, Vec<i64>>,
     konst_f32: HashMap<String, Vec<f32>>,
+    external: Option<ExternalSink>,
+}
+
+/// Where [`ModelBuilder::external_weights`] puts large random weights.
+#[derive(Debug, Clone)]
+struct ExternalSink {
+    location: String,
+    min_elements: usize,
+    next_offset: u64,
 }
 
 /// What the builder knows about one tensor.
@@ -266,6 +275,7 @@ impl ModelBuilder {
             used_names: HashMap::new(),
             konst_i64: HashMap::new(),
             konst_f32: HashMap::new(),
+            external: None,
         }
     }
 
@@ -280,6 +290,23 @@ impl ModelBuilder {
     pub fn emit_value_info(mut self, on: bool) -> ModelBuilder {
         self.value_info = on;
         self
+    }
+
+    /// Keeps every random float weight of at least `min_elements` elements
+    /// in the external file `location` (relative to the model's folder) as
+    /// the ONNX external-data layout does, one after another at 64-byte
+    /// aligned offsets; no value is drawn for them. The caller creates the
+    /// file, [`external_bytes`](Self::external_bytes) long (sparse, for a
+    /// model whose weights are only metadata in a test).
+    pub fn external_weights(mut self, location: &str, min_elements: usize) -> ModelBuilder {
+        self.external =
+            Some(ExternalSink { location: location.to_owned(), min_elements, next_offset: 0 });
+        self
+    }
+
+    /// Bytes the external weight file must have to hold every weight so far.
+    pub fn external_bytes(&self) -> u64 {
+        self.external.as_ref().map_or(0, |e| e.next_offset)
     }
 
     /// Sets the graph's doc string.
@@ -368,6 +395,26 @@ impl ModelBuilder {
     /// [`Init::HeNormal`].
     pub fn init_filled(&mut self, name: &str, dims: &[i64], init: &Init, fan_in: i64) -> String {
         let count = dims.iter().product::<i64>() as usize;
+        if matches!(init, Init::HeNormal | Init::Normal(_))
+            && let Some(sink) = self.external.as_mut()
+            && count >= sink.min_elements
+        {
+            let length = count as u64 * 4;
+            let entry =
+                |key: &str, value: String| StringStringEntryProto { key: key.to_owned(), value };
+            let external_data = vec![
+                entry("location", sink.location.clone()),
+                entry("offset", sink.next_offset.to_string()),
+                entry("length", length.to_string()),
+            ];
+            sink.next_offset = (sink.next_offset + length).next_multiple_of(64);
+            let name = self.fresh(name);
+            self.push_initializer(&name, DataType::Float, dims, Vec::new());
+            let t = self.initializers.last_mut().expect("just pushed");
+            t.external_data = external_data;
+            t.data_location = DataLocation::External as i32;
+            return name;
+        }
         let values = match init {
             Init::HeNormal => self.normal(name, count, (2.0 / fan_in as f32).sqrt()),
             Init::Normal(std) => self.normal(name, count, *std),
@@ -1231,7 +1278,7 @@ fn attribute(name: &str, value: &Attr) -> AttributeProto {
             AttributeType::String
         }
         Attr::Tensor(t) => {
-            attr.t = Some(t.as_ref().clone());
+            attr.t = Some(t.clone());
             AttributeType::Tensor
         }
     };
