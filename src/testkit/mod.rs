@@ -7,6 +7,7 @@
 
 pub mod builder;
 pub mod fixtures;
+pub mod large;
 pub mod surgery;
 pub mod zoo;
 

@@ -1154,7 +1154,12 @@ fn additive_mask(b: &mut ModelBuilder, p: &str, mask: &str) -> String {
 /// rounded once, so a last-bit difference between platform maths libraries
 /// almost never reaches the stored f32 (the fixtures must regenerate to the
 /// same bytes everywhere).
-fn rotary_tables(b: &mut ModelBuilder, p: &str, seq_len: i64, head_dim: i64) -> (String, String) {
+pub(crate) fn rotary_tables(
+    b: &mut ModelBuilder,
+    p: &str,
+    seq_len: i64,
+    head_dim: i64,
+) -> (String, String) {
     let half = head_dim / 2;
     let angles: Vec<f64> = (0..seq_len)
         .flat_map(|pos| {
