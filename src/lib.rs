@@ -15,6 +15,7 @@
 #![deny(missing_docs)]
 
 pub mod audit;
+pub mod batch;
 pub mod classify;
 pub mod compare;
 pub mod error;

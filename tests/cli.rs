@@ -156,7 +156,8 @@ fn missing_file_and_folder() {
     let p = dir.path().join("absent.onnx").display().to_string();
     assert_clean_error(&shunt(&["scan", &p]), &p, "no such file");
     let d = dir.path().display().to_string();
-    assert_clean_error(&shunt(&["scan", &d]), &d, "folder");
+    // A folder is searched for models; this one holds none.
+    assert_clean_error(&shunt(&["scan", &d]), &d, "no .onnx model file found");
 }
 
 fn with_external(location: &str) -> ModelProto {

@@ -653,7 +653,8 @@ fn folder_as_model() {
     let dir = tempdir();
     let sub = dir.path().join("model.onnx");
     fs::create_dir(&sub).unwrap();
-    refused(&sub.display().to_string(), "is a folder");
+    // A folder is searched for models (even one named like a model file).
+    refused(&sub.display().to_string(), "no .onnx model file found");
 }
 
 #[test]

@@ -23,3 +23,7 @@ mod hostile;
 mod properties;
 // Structure pins, expectations and model-to-model comparison.
 mod intent;
+// Scale: models whose weights are never read.
+mod scale;
+// Several models in one command: folders, errors per model, exit codes.
+mod batch;

@@ -9,16 +9,18 @@ mod progress;
 
 use std::collections::BTreeMap;
 use std::io::Write;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 
 use anyhow::{Context, bail};
 use clap::{Parser, Subcommand, ValueEnum};
 
 use shunt::audit::{self, AuditConfig};
+use shunt::batch;
 use shunt::findings::{Code, FindingConfig};
 use shunt::probe::inputs::{Dist, InputConfig};
 use shunt::report::Report;
+use shunt::report::batch::BatchReport;
 use shunt::scan::{self, ScanConfig};
 
 /// Audit the residual structure of ONNX models.
@@ -45,12 +47,28 @@ enum Command {
 
 #[derive(Debug, clap::Args)]
 struct ScanArgs {
-    /// The ONNX model file.
-    model: PathBuf,
+    /// The ONNX model file; or several files and folders (each folder
+    /// searched recursively for `.onnx` files), reported together.
+    #[arg(required = true, value_name = "MODEL")]
+    models: Vec<PathBuf>,
     #[command(flatten)]
     out: OutputArgs,
     #[command(flatten)]
+    many: BatchArgs,
+    /// No progress bar.
+    #[arg(long, short = 'q')]
+    quiet: bool,
+    #[command(flatten)]
     limits: Limits,
+}
+
+/// Options for several models at once.
+#[derive(Debug, clap::Args)]
+struct BatchArgs {
+    /// With several models: how many to process at once (default: one per
+    /// core). Each audit holds its own model and activations in memory.
+    #[arg(long, short = 'j', value_name = "N")]
+    jobs: Option<usize>,
 }
 
 #[derive(Debug, clap::Args)]
@@ -72,10 +90,14 @@ struct OutputArgs {
 
 #[derive(Debug, clap::Args)]
 struct AuditArgs {
-    /// The ONNX model file.
-    model: PathBuf,
+    /// The ONNX model file; or several files and folders (each folder
+    /// searched recursively for `.onnx` files), reported together.
+    #[arg(required = true, value_name = "MODEL")]
+    models: Vec<PathBuf>,
     #[command(flatten)]
     out: OutputArgs,
+    #[command(flatten)]
+    many: BatchArgs,
     /// Number of samples to run (models with a fixed batch run it in passes of that batch).
     #[arg(long, value_name = "N", default_value_t = 8)]
     batch: usize,
@@ -305,8 +327,14 @@ fn run(args: Args) -> anyhow::Result<ExitCode> {
         Command::Compare(a) => compare::compare(&a),
         Command::Scan(a) => {
             let fail_on = parse_fail_on(a.out.fail_on.as_deref())?;
-            let report = scan::scan_file(&a.model, &a.limits.config())?;
-            emit(&a.out, &a.model, &report)?;
+            let config = a.limits.config();
+            let job = |path: &Path| Ok((scan::scan_file(path, &config)?, None));
+            if is_batch(&a.models) {
+                return run_batch("scan", &a.models, &a.out, &a.many, a.quiet, &fail_on, &job);
+            }
+            let model = &a.models[0];
+            let report = scan::scan_file(model, &config)?;
+            emit(&a.out, model, &report)?;
             Ok(verdict(&report, &fail_on))
         }
         Command::Audit(a) => {
@@ -317,52 +345,135 @@ fn run(args: Args) -> anyhow::Result<ExitCode> {
                 dead_channels_above: a.dead_channels_above,
                 depth_factor: a.depth_factor,
             };
-            if a.no_run {
-                if a.influence.config()?.is_some() {
-                    bail!(
-                        "--no-run cannot be combined with --knockout or --gain, which run the model"
-                    );
-                }
-                let mut report = scan::scan_file(&a.model, &a.limits.config())?;
-                report.command = "audit".to_owned();
-                let facts = scan::block_facts(&report);
-                scan::set_findings(&mut report, &facts, &findings);
-                emit(&a.out, &a.model, &report)?;
-                return Ok(verdict(&report, &fail_on));
+            if a.no_run && a.influence.config()?.is_some() {
+                bail!("--no-run cannot be combined with --knockout or --gain, which run the model");
             }
             let config = AuditConfig {
                 scan: a.limits.config(),
-                inputs: InputConfig {
-                    samples: a.batch,
-                    max_pass: a.pass_batch,
-                    seed: a.seed,
-                    dist: match a.dist {
-                        DistArg::Normal => Dist::Normal,
-                        DistArg::Uniform => Dist::Uniform,
-                    },
-                    scale: a.scale,
-                    dims: parse_pairs(&a.dims, "--dim", |v| v.parse::<u64>().ok())?,
-                    shapes: parse_pairs(&a.shapes, "--input", parse_shape)?,
-                    fills: parse_pairs(&a.fills, "--fill", |v| v.parse::<f64>().ok())?,
-                    feed: a.feed.clone(),
-                    max_input_elements: a.max_input_elements,
-                },
+                inputs: if a.no_run { no_inputs() } else { input_config(&a)? },
                 findings,
                 influence: a.influence.config()?,
             };
+            if is_batch(&a.models) {
+                let job = |path: &Path| audit_one(path, a.no_run, &config, &shunt::probe::Silent);
+                return run_batch("audit", &a.models, &a.out, &a.many, a.quiet, &fail_on, &job);
+            }
+            let model = &a.models[0];
             let bar = progress::Bar::new(a.quiet);
-            let outcome = audit::audit_file(&a.model, &config, &bar)?;
+            let (report, run_error) = audit_one(model, a.no_run, &config, &bar)?;
             bar.clear();
-            emit(&a.out, &a.model, &outcome.report)?;
-            if let Some(e) = outcome.run_error {
+            emit(&a.out, model, &report)?;
+            if let Some(e) = run_error {
                 return Err(anyhow::Error::new(e));
             }
-            Ok(verdict(&outcome.report, &fail_on))
+            Ok(verdict(&report, &fail_on))
         }
     }
 }
 
-fn emit(out: &OutputArgs, model: &std::path::Path, report: &Report) -> anyhow::Result<()> {
+/// The audit of one model: the structural audit only with `no_run`.
+fn audit_one(
+    model: &Path,
+    no_run: bool,
+    config: &AuditConfig,
+    progress: &dyn shunt::probe::Progress,
+) -> shunt::Result<(Report, Option<shunt::Error>)> {
+    if no_run {
+        let mut report = scan::scan_file(model, &config.scan)?;
+        report.command = "audit".to_owned();
+        let facts = scan::block_facts(&report);
+        scan::set_findings(&mut report, &facts, &config.findings);
+        return Ok((report, None));
+    }
+    let outcome = audit::audit_file(model, config, progress)?;
+    Ok((outcome.report, outcome.run_error))
+}
+
+fn input_config(a: &AuditArgs) -> anyhow::Result<InputConfig> {
+    Ok(InputConfig {
+        samples: a.batch,
+        max_pass: a.pass_batch,
+        seed: a.seed,
+        dist: match a.dist {
+            DistArg::Normal => Dist::Normal,
+            DistArg::Uniform => Dist::Uniform,
+        },
+        scale: a.scale,
+        dims: parse_pairs(&a.dims, "--dim", |v| v.parse::<u64>().ok())?,
+        shapes: parse_pairs(&a.shapes, "--input", parse_shape)?,
+        fills: parse_pairs(&a.fills, "--fill", |v| v.parse::<f64>().ok())?,
+        feed: a.feed.clone(),
+        max_input_elements: a.max_input_elements,
+    })
+}
+
+/// Inputs of an audit that does not run (never read).
+fn no_inputs() -> InputConfig {
+    InputConfig {
+        samples: 0,
+        max_pass: None,
+        seed: 0,
+        dist: Dist::Normal,
+        scale: 1.0,
+        dims: BTreeMap::new(),
+        shapes: BTreeMap::new(),
+        fills: BTreeMap::new(),
+        feed: None,
+    }
+}
+
+/// Several paths or a folder make a batch; one file gets its own report.
+fn is_batch(paths: &[PathBuf]) -> bool {
+    !matches!(paths, [one] if !one.is_dir())
+}
+
+/// Runs `job` over every model found, writes one batch report, prints each
+/// error on standard error, and exits 2 if any model failed, else 1 if any
+/// report has a finding named by `--fail-on`, else 0.
+fn run_batch(
+    command: &str,
+    paths: &[PathBuf],
+    out: &OutputArgs,
+    args: &BatchArgs,
+    quiet: bool,
+    fail_on: &[Code],
+    job: &(dyn Fn(&Path) -> batch::Outcome + Sync),
+) -> anyhow::Result<ExitCode> {
+    let found = batch::find_models(paths);
+    if found.is_empty() {
+        let names: Vec<String> = paths.iter().map(|p| p.display().to_string()).collect();
+        bail!("{}: no .onnx model file found", names.join(", "));
+    }
+    let threads = args.jobs.unwrap_or_else(|| batch::default_threads(found.len()));
+    if threads == 0 {
+        bail!("--jobs must be at least 1");
+    }
+    let bar = progress::Bar::new(quiet);
+    shunt::probe::Progress::step(&bar, "models", found.len() as u64);
+    let entries = batch::run(&found, threads, job, &|_| shunt::probe::Progress::advance(&bar));
+    bar.clear();
+    let report = BatchReport::new(command, entries);
+    let inputs: Vec<&Path> = found.iter().map(batch::Found::path).collect();
+    output::write(out.output.as_deref(), &inputs, |w| match out.format {
+        Format::Table => shunt::report::batch::render_table(&report, w),
+        Format::Json => shunt::report::json::render(&report, w),
+    })?;
+    for e in report.models.iter().filter_map(|m| m.error.as_deref()) {
+        let _ =
+            writeln!(std::io::stderr(), "shunt: error: {}", shunt::report::table::terminal_safe(e));
+    }
+    if report.summary.errors > 0 {
+        return Ok(ExitCode::from(2));
+    }
+    let hit = report
+        .models
+        .iter()
+        .filter_map(|m| m.report.as_ref())
+        .any(|r| verdict(r, fail_on) != ExitCode::SUCCESS);
+    Ok(if hit { ExitCode::from(1) } else { ExitCode::SUCCESS })
+}
+
+fn emit(out: &OutputArgs, model: &Path, report: &Report) -> anyhow::Result<()> {
     output::write(out.output.as_deref(), &[model], |w| match out.format {
         Format::Table => shunt::report::table::render(report, w),
         Format::Json => shunt::report::json::render(report, w),

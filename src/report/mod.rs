@@ -5,6 +5,7 @@
 //! field is filled by the stage that builds reports (`scan`), and every ONNX
 //! node or tensor the report mentions is named so a user can find it.
 
+pub mod batch;
 pub mod json;
 pub mod table;
 
