@@ -419,6 +419,7 @@ fn no_inputs() -> InputConfig {
         shapes: BTreeMap::new(),
         fills: BTreeMap::new(),
         feed: None,
+        max_input_elements: 0,
     }
 }
 
