@@ -1,0 +1,84 @@
+//! Helpers of `benches/peers.py`, which compares `shunt audit` end to end
+//! with the programs one would run instead on the same model and inputs.
+//!
+//! - `peers write DIR`: writes `DIR/resnet50.onnx` (full-width ResNet-50,
+//!   224x224, 1000 classes, symbolic batch, weights in `raw_data`) and
+//!   `DIR/input.npy`, the 8 samples `shunt audit` feeds by default (seed 0,
+//!   normal), so every program sees the same batch.
+//! - `peers tract MODEL INPUT.npy`: tract's plain forward pass as a program:
+//!   load, optimise, run once on the batch, print the logits' sum (one
+//!   thread, as tract runs).
+#![allow(clippy::print_stdout, clippy::print_stderr)]
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use ndarray::{ArrayD, IxDyn};
+use prost::Message;
+use shunt::load::ExternalData;
+use shunt::probe::inputs::{self, Dist, InputConfig, Values};
+use shunt::scan::{self, ScanConfig};
+use shunt::testkit::zoo::{self, ImageSpec, ResNetConfig};
+use tract_onnx::prelude::*;
+
+fn write(dir: &Path) {
+    std::fs::create_dir_all(dir).expect("create the folder");
+    let mut cfg = ResNetConfig::resnet50();
+    cfg.width_divisor = 1;
+    cfg.image = ImageSpec::rgb(224);
+    cfg.image.classes = 1000;
+    let model = zoo::resnet(&cfg);
+    std::fs::write(dir.join("resnet50.onnx"), model.encode_to_vec()).expect("write the model");
+    // The inputs exactly as the audit makes them by default.
+    let config = InputConfig {
+        samples: 8,
+        max_pass: None,
+        seed: 0,
+        dist: Dist::Normal,
+        scale: 1.0,
+        dims: BTreeMap::new(),
+        shapes: BTreeMap::new(),
+        fills: BTreeMap::new(),
+        feed: None,
+        max_input_elements: inputs::MAX_INPUT_ELEMENTS,
+    };
+    let analysis = scan::analyse(model, ExternalData::none(), &ScanConfig::standard())
+        .expect("analyse the model");
+    let feeding = inputs::plan(&inputs::input_specs(&analysis.graph), &config).expect("a plan");
+    let values = inputs::values(&feeding, 0);
+    let Values::F32(data) = &values[0] else { panic!("a float input") };
+    let shape: Vec<usize> = feeding.inputs[0].pass_shape.iter().map(|&d| d as usize).collect();
+    let array = ArrayD::from_shape_vec(IxDyn(&shape), data.clone()).expect("an array");
+    ndarray_npy::write_npy(dir.join("input.npy"), &array).expect("write the input");
+}
+
+fn tract_forward(model: &Path, input: &Path) -> TractResult<()> {
+    let a: ArrayD<f32> = ndarray_npy::read_npy(input).expect("read the input");
+    let shape = a.shape().to_vec();
+    let data: Vec<f32> = a.into_iter().collect();
+    let x = Tensor::from_shape(&shape, &data)?;
+    // `value_info` names a symbolic batch that the concrete input contradicts.
+    let plan = tract_onnx::onnx()
+        .with_ignore_value_info(true)
+        .model_for_path(model)?
+        .with_input_fact(0, InferenceFact::dt_shape(f32::datum_type(), &shape))?
+        .into_optimized()?
+        .into_runnable()?;
+    let out = plan.run(tvec![x.into_tvalue()])?;
+    let view = out[0].try_as_plain_ram()?;
+    let logits = view.as_slice::<f32>()?;
+    println!("{} logits, sum {}", logits.len(), logits.iter().map(|&v| v as f64).sum::<f64>());
+    Ok(())
+}
+
+fn main() {
+    let args: Vec<String> = std::env::args().skip(1).collect();
+    match args.iter().map(String::as_str).collect::<Vec<_>>().as_slice() {
+        ["write", dir] => write(Path::new(dir)),
+        ["tract", model, input] => tract_forward(Path::new(model), Path::new(input)).expect("run"),
+        _ => {
+            eprintln!("usage: peers write DIR | peers tract MODEL INPUT.npy");
+            std::process::exit(2);
+        }
+    }
+}
