@@ -581,7 +581,8 @@ fn run_influence(
                 })
                 .count()
         });
-        effective = Some(effective_depth(&shares, carrying));
+        // No measured share (no float input to perturb): no path view.
+        effective = (!shares.is_empty()).then(|| effective_depth(&shares, carrying));
     }
     let gain_setup = gain_setup.map(|mut g| {
         g.end_to_end = top.last().and_then(|&i| rows[i].gain_to_here);

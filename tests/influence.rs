@@ -465,3 +465,53 @@ fn knockout_ranking_of_a_trained_model_follows_the_ensemble_view() {
     let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
     assert!(mean(&resizing) < mean(&others), "{resizing:?} vs {others:?}");
 }
+
+#[test]
+fn vanishing_gain_and_low_impact_through_the_binary() {
+    // x + W x with W = -0.9 I: every block passes on a tenth of a change, so
+    // the gain is 1e-1, 1e-2, 1e-3 after blocks 1, 2, 3: block 2 sits at the
+    // limit 1/100 (not below it), block 3 is the first below.
+    let width = 8usize;
+    let mut b = ModelBuilder::new("shrinking", 17).seed(1);
+    let mut x = b.input("x", &[Dim::batch(), Dim::Fixed(width as i64)]);
+    for i in 0..3 {
+        let w: Vec<f32> =
+            (0..width * width).map(|k| if k / width == k % width { -0.9 } else { 0.0 }).collect();
+        let h = b.gemm(&format!("b{i}.fc"), &x, width as i64, &Init::Values(w));
+        x = b.add(&format!("b{i}.add"), &x, &h);
+    }
+    b.output(&x);
+    let dir = crate::util::tempdir();
+    let path = dir.path().join("shrinking.onnx");
+    std::fs::write(&path, prost::Message::encode_to_vec(&b.finish())).unwrap();
+    let p = path.to_str().unwrap();
+    let run =
+        shunt(&["audit", p, "--gain", "-q", "--format", "json", "--fail-on", "vanishing-gain"]);
+    assert_eq!(run.code, 1, "{}", run.stderr);
+    let r: Report = serde_json::from_str(&run.stdout).unwrap();
+    let f: Vec<(&str, Option<usize>)> =
+        r.findings.iter().map(|f| (f.code.as_str(), f.block)).collect();
+    assert_eq!(f, vec![("vanishing-gain", Some(3))]);
+    let g = influence(&r).blocks[2].gain_to_here.unwrap();
+    assert!((g - 1e-3).abs() < 1e-5, "{g}");
+
+    // Knockout: each branch is -0.9 of its shortcut, so removing one scales
+    // the outputs by 10: far from low impact; the zero-branch fixture is.
+    let run = shunt(&["audit", p, "--knockout", "-q", "--fail-on", "low-impact"]);
+    assert_eq!(run.code, 0, "{}{}", run.stdout, run.stderr);
+    let f = fixture("rezero.onnx");
+    let run = shunt(&["audit", f.to_str().unwrap(), "--knockout", "-q", "--fail-on", "low-impact"]);
+    assert_eq!(run.code, 1, "{}{}", run.stdout, run.stderr);
+    assert!(run.stdout.contains("low-impact"));
+}
+
+#[test]
+fn no_float_input_means_no_gain_but_knockout_still_runs() {
+    let f = fixture("torch/encoder_prenorm_decomposed.onnx");
+    let run = shunt(&["audit", f.to_str().unwrap(), "--knockout", "-q", "--format", "json"]);
+    assert_eq!(run.code, 0, "{}", run.stderr);
+    let r: Report = serde_json::from_str(&run.stdout).unwrap();
+    let inf = influence(&r);
+    assert!(inf.effective_depth.is_none());
+    assert!(inf.blocks.iter().all(|b| b.gain.is_none() && b.knockout.is_some()));
+}
