@@ -906,9 +906,8 @@ const RED: &str = "\x1b[31mred\x1b[0m";
 const MARKDOWN: &str = "**bold** | `code` | [link](http://example.invalid)";
 const NEWLINE: &str = "sum\nfake row";
 
-#[test]
-fn hostile_names() {
-    let dir = tempdir();
+/// One block whose names carry markup, escape sequences and newlines.
+fn hostile_names_model(dir: &Path, dangling: bool) -> String {
     let mut m = one_block();
     let g = m.graph.as_mut().unwrap();
     g.node[3].name = SCRIPT.into();
@@ -917,9 +916,27 @@ fn hostile_names() {
     // The merge output, renamed everywhere it is used.
     g.node[3].output[0] = NEWLINE.into();
     g.node[4].input[0] = NEWLINE.into();
-    // A dangling input with an escape sequence: a diagnostic carries it.
-    g.node.push(node("Relu", "\x1b]0;title\x07", &["\x1b[2Jgone"], &["z"]));
-    let path = write(dir.path(), "names.onnx", &m);
+    // A dangling input with an escape sequence: a diagnostic carries it (the
+    // model can then not be run).
+    if dangling {
+        g.node.push(node("Relu", "\x1b]0;title\x07", &["\x1b[2Jgone"], &["z"]));
+    }
+    write(dir, "names.onnx", &m)
+}
+
+/// The same block with its merge named `name` (the merge's name is in
+/// every report format).
+fn merge_named(dir: &Path, name: &str) -> String {
+    let mut m = one_block();
+    let g = m.graph.as_mut().unwrap();
+    g.node[3].name = name.into();
+    write(dir, "merge.onnx", &m)
+}
+
+#[test]
+fn hostile_names() {
+    let dir = tempdir();
+    let path = hostile_names_model(dir.path(), true);
 
     let run = shunt(&["scan", &path]);
     assert_eq!(run.code, 0, "{}", run.stderr);
@@ -948,6 +965,65 @@ fn hostile_names() {
     diagnostic(&report, "input '\x1b[2Jgone' is produced by nothing");
     let raw = shunt(&["scan", "--format", "json", &path]).stdout;
     assert!(!raw.contains('\x1b') && !raw.contains('\x07'), "JSON escapes control characters");
+}
+
+#[test]
+fn hostile_names_in_html_and_markdown() {
+    let dir = tempdir();
+    let path = hostile_names_model(dir.path(), false);
+    let html = dir.path().join("names.html");
+    let run = shunt(&["audit", &path, "--format", "html", "-o", html.to_str().unwrap(), "-q"]);
+    assert_eq!(run.code, 0, "{}", run.stderr);
+    let text = fs::read_to_string(&html).unwrap();
+    assert!(!text.contains("<script"), "markup from a name never becomes markup");
+    // askama writes numeric character references.
+    assert!(text.contains("&#60;script&#62;alert(1)&#60;/script&#62;"), "it is shown as text");
+    assert!(!text.contains('\x1b') && !text.contains('\x07'), "no raw control character");
+    assert!(!text.contains(NEWLINE), "no raw newline inside a name");
+    assert!(text.contains("sum\\u{a}fake row"), "the newline is shown escaped");
+    // In the browser: no console message (an inline script would also be
+    // refused by the page's policy, which is itself a console message), no
+    // request, and the name is text in the DOM.
+    let page = crate::browser::load(
+        &html,
+        &dir.path().join("chromium"),
+        &dir.path().join("names.png"),
+        (800, 600),
+    );
+    assert!(page.console.is_empty(), "{:#?}", page.console);
+    assert!(page.requests.is_empty(), "{:#?}", page.requests);
+    assert!(!page.dom.contains("<script"), "no script element in the DOM");
+    assert!(page.dom.contains("&lt;script&gt;alert(1)&lt;/script&gt;"));
+
+    let mut md = String::new();
+    for name in [SCRIPT, MARKDOWN, RED, NEWLINE] {
+        let run = shunt(&["audit", &merge_named(dir.path(), name), "--format", "markdown", "-q"]);
+        assert_eq!(run.code, 0, "{}", run.stderr);
+        md.push_str(&run.stdout);
+    }
+    assert!(!md.contains("<script"), "{md}");
+    assert!(md.contains("&lt;script&gt;alert(1)&lt;/script&gt;"), "{md}");
+    assert!(!md.contains('\x1b') && !md.contains('\x07'), "{md}");
+    // A name cannot open a table cell, emphasis, a code span or a link.
+    assert!(md.contains("\\*\\*bold\\*\\* \\| \\`code\\` \\| \\[link\\]"), "{md}");
+    // Every row of a table has as many unescaped cell separators as its header.
+    let pipes = |l: &str| {
+        let b = l.as_bytes();
+        (0..b.len()).filter(|&i| b[i] == b'|' && (i == 0 || b[i - 1] != b'\\')).count()
+    };
+    let mut tables = 0;
+    let mut header: Option<usize> = None;
+    for line in md.lines() {
+        match (line.starts_with('|'), header) {
+            (true, None) => {
+                header = Some(pipes(line));
+                tables += 1;
+            }
+            (true, Some(h)) => assert_eq!(pipes(line), h, "a name split a table row: {line}"),
+            (false, _) => header = None,
+        }
+    }
+    assert!(tables >= 1, "{md}");
 }
 
 #[test]

@@ -2,6 +2,8 @@
 
 // Running the binary, fixtures, the pinned reference Python.
 mod util;
+// Headless Chromium as a checker of HTML pages (console, network, DOM, screenshot).
+mod browser;
 
 // The command line: exit codes, messages, output files.
 mod cli;
@@ -27,3 +29,5 @@ mod intent;
 mod scale;
 // Several models in one command: folders, errors per model, exit codes.
 mod batch;
+// Reports for people: HTML in headless Chromium, Markdown and its size limit.
+mod report;

@@ -274,6 +274,10 @@ enum Format {
     Table,
     /// The versioned JSON document described in the README.
     Json,
+    /// One self-contained HTML page with plots (use with --output).
+    Html,
+    /// Markdown for a pull-request comment, at most 60,000 bytes.
+    Markdown,
 }
 
 /// Runs the command line and turns the outcome into an exit code.
@@ -478,6 +482,18 @@ fn emit(out: &OutputArgs, model: &Path, report: &Report) -> anyhow::Result<()> {
     output::write(out.output.as_deref(), &[model], |w| match out.format {
         Format::Table => shunt::report::table::render(report, w),
         Format::Json => shunt::report::json::render(report, w),
+        Format::Html => {
+            let ctx = shunt::report::html::HtmlContext {
+                argv: std::env::args_os().map(|a| a.to_string_lossy().into_owned()).collect(),
+            };
+            shunt::report::html::render(report, &ctx, w)
+        }
+        Format::Markdown => {
+            let config = shunt::report::markdown::MarkdownConfig {
+                max_bytes: shunt::report::markdown::DEFAULT_MAX_BYTES,
+            };
+            shunt::report::markdown::render(report, &config, w)
+        }
     })
 }
 

@@ -6,7 +6,11 @@
 //! node or tensor the report mentions is named so a user can find it.
 
 pub mod batch;
+pub mod html;
 pub mod json;
+pub mod markdown;
+pub mod marks;
+pub mod plot;
 pub mod table;
 
 use std::collections::BTreeMap;

@@ -1,0 +1,139 @@
+//! How findings look in the visual reports: one colour, one shape and one
+//! short label per finding code, so a block's mark can be read without colour.
+//!
+//! Colours are from the Okabe–Ito palette (Okabe and Ito, "Color Universal
+//! Design", 2008), chosen to stay distinct for the common forms of colour
+//! blindness; every shape is also different, and flagged marks carry a text
+//! label, so colour is never the only cue.
+
+/// The look of one kind of mark.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Mark {
+    /// CSS class and `data-kind` value: `ok`, `dead`, `dominant`, …
+    pub kind: &'static str,
+    /// Fill colour (Okabe–Ito).
+    pub fill: &'static str,
+    /// SVG path of the shape, centred on (0, 0), about 14 px across.
+    pub path: &'static str,
+    /// Words for the legend.
+    pub legend: &'static str,
+}
+
+/// Okabe–Ito blue: blocks without findings.
+pub const OK: Mark = Mark {
+    kind: "ok",
+    fill: "#0072B2",
+    path: "M-4.5,0a4.5,4.5 0 1,0 9,0a4.5,4.5 0 1,0 -9,0Z",
+    legend: "no finding (circle)",
+};
+/// Okabe–Ito vermillion, a downward triangle: the branch contributes nothing.
+pub const DEAD: Mark = Mark {
+    kind: "dead",
+    fill: "#D55E00",
+    path: "M-7,-5L7,-5L0,7Z",
+    legend: "dead branch: dead or static-dead (downward triangle)",
+};
+/// Okabe–Ito orange, an upward triangle: the branch drowns the shortcut.
+pub const DOMINANT: Mark = Mark {
+    kind: "dominant",
+    fill: "#E69F00",
+    path: "M-7,5L7,5L0,-7Z",
+    legend: "dominant branch (upward triangle)",
+};
+/// Okabe–Ito bluish green, a diamond: many dead channels.
+pub const DEAD_CHANNELS: Mark = Mark {
+    kind: "dead-channels",
+    fill: "#009E73",
+    path: "M0,-7L7,0L0,7L-7,0Z",
+    legend: "dead channels (diamond)",
+};
+/// Okabe–Ito sky blue, a square: learned layers before the block that no
+/// shortcut spans.
+pub const LOST_SHORTCUT: Mark = Mark {
+    kind: "lost-shortcut",
+    fill: "#56B4E9",
+    path: "M-6,-6L6,-6L6,6L-6,6Z",
+    legend: "lost shortcut before the block (square)",
+};
+/// Black, a cross: NaN or infinite values.
+pub const NON_FINITE: Mark = Mark {
+    kind: "non-finite",
+    fill: "#000000",
+    path: "M-7,-4L-4,-7L0,-3L4,-7L7,-4L3,0L7,4L4,7L0,3L-4,7L-7,4L-3,0Z",
+    legend: "NaN or infinite values (cross)",
+};
+/// Hollow grey: a block that was not measured.
+pub const UNMEASURED: Mark = Mark {
+    kind: "unmeasured",
+    fill: "none",
+    path: "M-4,0a4,4 0 1,0 8,0a4,4 0 1,0 -8,0Z",
+    legend: "not measured (hollow circle, drawn on the axis)",
+};
+
+/// Okabe–Ito reddish purple, a chevron up: the signal grows too much across
+/// depth (a model-wide finding, shown beside the plots, not on a block).
+pub const EXPLODING: Mark = Mark {
+    kind: "exploding-signal",
+    fill: "#CC79A7",
+    path: "M-7,1L0,-7L7,1L7,6L0,-2L-7,6Z",
+    legend: "signal grows across depth (chevron up)",
+};
+/// Okabe–Ito reddish purple, a chevron down: the signal shrinks too much.
+pub const VANISHING: Mark = Mark {
+    kind: "vanishing-signal",
+    fill: "#CC79A7",
+    path: "M-7,-1L0,7L7,-1L7,-6L0,2L-7,-6Z",
+    legend: "signal shrinks across depth (chevron down)",
+};
+
+/// Every mark of a block, in the order of the legend.
+pub const ALL: [Mark; 7] =
+    [OK, DEAD, DOMINANT, DEAD_CHANNELS, LOST_SHORTCUT, NON_FINITE, UNMEASURED];
+
+/// The mark of a block from its finding codes: the most severe one decides
+/// (non-finite, then a dead branch, dominant, dead channels, lost shortcut).
+pub fn for_codes<'a>(codes: impl IntoIterator<Item = &'a str>) -> Mark {
+    let mut best: Option<(u8, Mark)> = None;
+    for code in codes {
+        let candidate = match code {
+            "non-finite" => (0, NON_FINITE),
+            "dead" | "static-dead" => (1, DEAD),
+            "dominant" => (2, DOMINANT),
+            "dead-channels" => (3, DEAD_CHANNELS),
+            "lost-shortcut" => (4, LOST_SHORTCUT),
+            _ => continue,
+        };
+        if best.is_none_or(|(rank, _)| candidate.0 < rank) {
+            best = Some(candidate);
+        }
+    }
+    best.map_or(OK, |(_, m)| m)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_most_severe_finding_decides() {
+        assert_eq!(for_codes([]), OK);
+        assert_eq!(for_codes(["static-dead", "dead"]), DEAD);
+        assert_eq!(for_codes(["lost-shortcut", "dominant"]), DOMINANT);
+        assert_eq!(for_codes(["dead-channels", "non-finite"]), NON_FINITE);
+        assert_eq!(for_codes(["exploding-signal"]), OK);
+    }
+
+    #[test]
+    fn every_mark_differs_in_shape_and_colour() {
+        for (i, a) in ALL.iter().enumerate() {
+            for b in &ALL[i + 1..] {
+                assert_ne!(a.kind, b.kind);
+                // The unmeasured mark is the hollow form of the plain circle.
+                if a.kind != "ok" || b.kind != "unmeasured" {
+                    assert_ne!(a.path, b.path, "{} and {}", a.kind, b.kind);
+                }
+                assert_ne!(a.fill, b.fill, "{} and {}", a.kind, b.kind);
+            }
+        }
+    }
+}
