@@ -179,8 +179,12 @@ fn emit(
     inputs: &[&Path],
     v: &Verification,
 ) -> anyhow::Result<()> {
+    if matches!(format, Format::Html | Format::Markdown) {
+        anyhow::bail!("verify writes --format table or json (html and markdown are for reports)");
+    }
     output::write(path, inputs, |w| match format {
         Format::Table => structure::render_verification(v, w),
         Format::Json => shunt::report::json::render(v, w),
+        Format::Html | Format::Markdown => unreachable!("refused above"),
     })
 }
