@@ -90,6 +90,7 @@ struct Page {
     model_findings: Vec<(Mark, String)>,
     rows: Vec<RowView>,
     measured: bool,
+    influence: Option<InfluenceView>,
     not_blocks: Vec<(String, String)>,
     diagnostics: Vec<(String, String)>,
     command: String,
@@ -145,6 +146,12 @@ struct FindingView {
     output: String,
     fork: String,
     message: String,
+}
+
+struct InfluenceView {
+    facts: Vec<(&'static str, String)>,
+    rows: Vec<Vec<String>>,
+    skipped: Vec<String>,
 }
 
 struct RowView {
@@ -280,6 +287,7 @@ impl Page {
             model_findings: model_findings(r),
             rows: r.blocks.iter().map(|b| row_view(r, b)).collect(),
             measured,
+            influence: r.influence.as_ref().map(influence_view),
             not_blocks: r
                 .not_blocks
                 .iter()
@@ -534,6 +542,75 @@ fn stage_views(r: &Report) -> Vec<StageView> {
         });
     }
     views
+}
+
+fn influence_view(inf: &crate::report::InfluenceReport) -> InfluenceView {
+    let opt = |v: Option<f64>| v.map_or("–".to_owned(), num);
+    let mut facts = Vec::new();
+    if let Some(k) = &inf.knockout {
+        facts.push((
+            "knockout",
+            format!(
+                "{} blocks knocked out{}, {} forward passes; low impact below a relative change of {}",
+                k.blocks.len(),
+                if k.shortcuts { " (and their shortcuts)" } else { "" },
+                k.forward_passes,
+                k.low_impact_below
+            ),
+        ));
+        let outs: Vec<String> = k.outputs.iter().map(|o| t(&o.name)).collect();
+        facts.push(("outputs compared", outs.join(", ")));
+    }
+    if let Some(g) = &inf.gain {
+        facts.push((
+            "perturbation gain",
+            format!(
+                "input change {} of the input RMS; end to end {}; limit ×{}",
+                num(g.step),
+                opt(g.end_to_end),
+                g.gain_factor
+            ),
+        ));
+    }
+    if let Some(d) = &inf.effective_depth {
+        facts.push((
+            "effective depth",
+            format!(
+                "mean path length {} ± {} of {} blocks (median {}, central 80% {}–{}){}",
+                num(d.mean_path_length),
+                num(d.path_length_sd),
+                d.blocks,
+                d.median_path_length,
+                d.central_80[0],
+                d.central_80[1],
+                d.carrying.map_or(String::new(), |c| format!("; {c} blocks carry the outputs"))
+            ),
+        ));
+    }
+    let rows = inf
+        .blocks
+        .iter()
+        .map(|b| {
+            let k = b.knockout.as_ref();
+            vec![
+                b.block.to_string(),
+                if b.changes_resolution { "yes".to_owned() } else { String::new() },
+                k.map_or("–".to_owned(), |a| num(a.rel_l2)),
+                opt(k.and_then(|a| a.cosine)),
+                opt(k.and_then(|a| a.top1)),
+                b.rank.map_or("–".to_owned(), |r| r.to_string()),
+                if b.low_impact { "low impact".to_owned() } else { String::new() },
+                b.gain.map_or("–".to_owned(), |g| num(g.mean)),
+                opt(b.branch_share),
+                opt(b.gain_to_here),
+            ]
+        })
+        .collect();
+    InfluenceView {
+        facts,
+        rows,
+        skipped: inf.skipped.iter().map(|s| format!("#{}: {}", s.block, t(&s.reason))).collect(),
+    }
 }
 
 fn finding_view(r: &Report, f: &FindingRow) -> FindingView {

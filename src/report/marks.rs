@@ -62,6 +62,14 @@ pub const NON_FINITE: Mark = Mark {
     path: "M-7,-4L-4,-7L0,-3L4,-7L7,-4L3,0L7,4L4,7L0,3L-4,7L-7,4L-3,0Z",
     legend: "NaN or infinite values (cross)",
 };
+/// Okabe–Ito yellow, a hexagon: knocking the branch out barely changes the
+/// outputs.
+pub const LOW_IMPACT: Mark = Mark {
+    kind: "low-impact",
+    fill: "#F0E442",
+    path: "M-7,0L-3.5,-6L3.5,-6L7,0L3.5,6L-3.5,6Z",
+    legend: "low impact when knocked out (hexagon)",
+};
 /// Hollow grey: a block that was not measured.
 pub const UNMEASURED: Mark = Mark {
     kind: "unmeasured",
@@ -70,20 +78,20 @@ pub const UNMEASURED: Mark = Mark {
     legend: "not measured (hollow circle, drawn on the axis)",
 };
 
-/// Okabe–Ito reddish purple, a chevron up: the signal grows too much across
-/// depth (a model-wide finding, shown beside the plots, not on a block).
+/// Okabe–Ito reddish purple, a chevron up: the signal (or a small input
+/// change) grows too much across depth.
 pub const EXPLODING: Mark = Mark {
     kind: "exploding-signal",
     fill: "#CC79A7",
     path: "M-7,1L0,-7L7,1L7,6L0,-2L-7,6Z",
-    legend: "signal grows across depth (chevron up)",
+    legend: "signal or input change grows across depth (chevron up)",
 };
 /// Okabe–Ito reddish purple, a chevron down: the signal shrinks too much.
 pub const VANISHING: Mark = Mark {
     kind: "vanishing-signal",
     fill: "#CC79A7",
     path: "M-7,-1L0,7L7,-1L7,-6L0,2L-7,-6Z",
-    legend: "signal shrinks across depth (chevron down)",
+    legend: "signal or input change shrinks across depth (chevron down)",
 };
 
 /// Every mark of a block, in the order of the legend.
@@ -91,7 +99,8 @@ pub const ALL: [Mark; 7] =
     [OK, DEAD, DOMINANT, DEAD_CHANNELS, LOST_SHORTCUT, NON_FINITE, UNMEASURED];
 
 /// The mark of a block from its finding codes: the most severe one decides
-/// (non-finite, then a dead branch, dominant, dead channels, lost shortcut).
+/// (non-finite, then a dead branch, dominant, a growing or shrinking input
+/// change, dead channels, lost shortcut, low impact).
 pub fn for_codes<'a>(codes: impl IntoIterator<Item = &'a str>) -> Mark {
     let mut best: Option<(u8, Mark)> = None;
     for code in codes {
@@ -99,8 +108,11 @@ pub fn for_codes<'a>(codes: impl IntoIterator<Item = &'a str>) -> Mark {
             "non-finite" => (0, NON_FINITE),
             "dead" | "static-dead" => (1, DEAD),
             "dominant" => (2, DOMINANT),
-            "dead-channels" => (3, DEAD_CHANNELS),
-            "lost-shortcut" => (4, LOST_SHORTCUT),
+            "exploding-gain" => (3, EXPLODING),
+            "vanishing-gain" => (3, VANISHING),
+            "dead-channels" => (4, DEAD_CHANNELS),
+            "lost-shortcut" => (5, LOST_SHORTCUT),
+            "low-impact" => (6, LOW_IMPACT),
             _ => continue,
         };
         if best.is_none_or(|(rank, _)| candidate.0 < rank) {
@@ -121,6 +133,7 @@ mod tests {
         assert_eq!(for_codes(["lost-shortcut", "dominant"]), DOMINANT);
         assert_eq!(for_codes(["dead-channels", "non-finite"]), NON_FINITE);
         assert_eq!(for_codes(["exploding-signal"]), OK);
+        assert_eq!(for_codes(["low-impact", "exploding-gain"]), EXPLODING);
     }
 
     #[test]
@@ -128,11 +141,11 @@ mod tests {
         for (i, a) in ALL.iter().enumerate() {
             for b in &ALL[i + 1..] {
                 assert_ne!(a.kind, b.kind);
-                // The unmeasured mark is the hollow form of the plain circle.
-                if a.kind != "ok" || b.kind != "unmeasured" {
-                    assert_ne!(a.path, b.path, "{} and {}", a.kind, b.kind);
+                assert_ne!(a.path, b.path, "{} and {}", a.kind, b.kind);
+                // Growing and shrinking share a colour and differ in direction.
+                if a.kind != "exploding-signal" || b.kind != "vanishing-signal" {
+                    assert_ne!(a.fill, b.fill, "{} and {}", a.kind, b.kind);
                 }
-                assert_ne!(a.fill, b.fill, "{} and {}", a.kind, b.kind);
             }
         }
     }
