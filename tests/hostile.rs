@@ -1006,6 +1006,12 @@ fn hostile_names_in_html_and_markdown() {
     assert!(!md.contains('\x1b') && !md.contains('\x07'), "{md}");
     // A name cannot open a table cell, emphasis, a code span or a link.
     assert!(md.contains("\\*\\*bold\\*\\* \\| \\`code\\` \\| \\[link\\]"), "{md}");
+    // DOT: a name stays inside its quoted string.
+    let dot = shunt(&["scan", &path, "--format", "dot"]);
+    assert_eq!(dot.code, 0, "{}", dot.stderr);
+    crate::report::assert_dot_well_formed(&dot.stdout);
+    assert!(!dot.stdout.contains('\x1b') && !dot.stdout.contains(NEWLINE), "{}", dot.stdout);
+
     // Every row of a table has as many unescaped cell separators as its header.
     let pipes = |l: &str| {
         let b = l.as_bytes();

@@ -228,3 +228,50 @@ fn markdown_stays_under_its_limit_and_says_what_it_left_out() {
     assert!(md.contains("more block row(s) elided"), "{md}");
     assert!(!md.contains("more finding(s) elided"), "{md}");
 }
+
+/// Unescaped double quotes in a line of DOT (an even count means every
+/// string is closed on its line).
+fn dot_quotes(line: &str) -> usize {
+    let b = line.as_bytes();
+    let mut n = 0;
+    let mut i = 0;
+    while i < b.len() {
+        match b[i] {
+            b'\\' => i += 1,
+            b'"' => n += 1,
+            _ => {}
+        }
+        i += 1;
+    }
+    n
+}
+
+/// Every line of `dot` closes its strings, and braces balance.
+pub fn assert_dot_well_formed(dot: &str) {
+    assert!(dot.starts_with("digraph shunt {\n") && dot.ends_with("}\n"), "{dot}");
+    for line in dot.lines() {
+        assert_eq!(dot_quotes(line) % 2, 0, "an open string: {line}");
+    }
+}
+
+#[test]
+fn demo_dot_structure() {
+    let model = fixture("demo/tile_grader.onnx");
+    let run = shunt(&["audit", model.to_str().unwrap(), "--format", "dot", "--quiet"]);
+    assert_eq!(run.code, 0, "{}", run.stderr);
+    let dot = &run.stdout;
+    assert_dot_well_formed(dot);
+    // 8 blocks: one branch box and one merge each, two edges into each merge.
+    assert_eq!(dot.matches("[shape=box").count(), 8);
+    assert_eq!(dot.matches("[shape=circle").count(), 8);
+    assert_eq!(dot.matches("-> \"merge ").count(), 16);
+    assert!(
+        dot.contains("label=\"#5 branch\\nconv3x3 16→16\\nconv3x3 16→16\\nstatic-dead, dead\"")
+    );
+    assert!(dot.contains("[style=dashed, label=\"projection (Conv→BatchNormalization)\"]"));
+    // The planted lost shortcut: stage1.1's two layers between blocks 1 and 2.
+    assert!(
+        dot.contains("\"tensor stage1.0.add\" -> \"tensor stage1.1.relu\" [style=dotted, color=\"#D55E00\", label=\"2 learned layer(s), no shortcut\"];"),
+        "{dot}"
+    );
+}

@@ -278,6 +278,8 @@ enum Format {
     Html,
     /// Markdown for a pull-request comment, at most 60,000 bytes.
     Markdown,
+    /// The block structure in the DOT graph language.
+    Dot,
 }
 
 /// Runs the command line and turns the outcome into an exit code.
@@ -494,6 +496,7 @@ fn emit(out: &OutputArgs, model: &Path, report: &Report) -> anyhow::Result<()> {
             };
             shunt::report::markdown::render(report, &config, w)
         }
+        Format::Dot => shunt::report::dot::render(report, w),
     })
 }
 

@@ -179,12 +179,14 @@ fn emit(
     inputs: &[&Path],
     v: &Verification,
 ) -> anyhow::Result<()> {
-    if matches!(format, Format::Html | Format::Markdown) {
-        anyhow::bail!("verify writes --format table or json (html and markdown are for reports)");
+    if matches!(format, Format::Html | Format::Markdown | Format::Dot) {
+        anyhow::bail!(
+            "verify writes --format table or json (html, markdown and dot are for reports)"
+        );
     }
     output::write(path, inputs, |w| match format {
         Format::Table => structure::render_verification(v, w),
         Format::Json => shunt::report::json::render(v, w),
-        Format::Html | Format::Markdown => unreachable!("refused above"),
+        Format::Html | Format::Markdown | Format::Dot => unreachable!("refused above"),
     })
 }

@@ -95,8 +95,18 @@ pub const VANISHING: Mark = Mark {
 };
 
 /// Every mark of a block, in the order of the legend.
-pub const ALL: [Mark; 7] =
-    [OK, DEAD, DOMINANT, DEAD_CHANNELS, LOST_SHORTCUT, NON_FINITE, UNMEASURED];
+pub const ALL: [Mark; 10] = [
+    OK,
+    DEAD,
+    DOMINANT,
+    EXPLODING,
+    VANISHING,
+    DEAD_CHANNELS,
+    LOST_SHORTCUT,
+    LOW_IMPACT,
+    NON_FINITE,
+    UNMEASURED,
+];
 
 /// The mark of a block from its finding codes: the most severe one decides
 /// (non-finite, then a dead branch, dominant, a growing or shrinking input

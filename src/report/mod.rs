@@ -6,6 +6,7 @@
 //! node or tensor the report mentions is named so a user can find it.
 
 pub mod batch;
+pub mod dot;
 pub mod html;
 pub mod json;
 pub mod markdown;
