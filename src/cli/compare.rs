@@ -39,6 +39,11 @@ pub(super) struct CompareArgs {
 }
 
 pub(super) fn compare(a: &CompareArgs) -> anyhow::Result<ExitCode> {
+    if matches!(a.format, Format::Html | Format::Markdown | Format::Dot) {
+        anyhow::bail!(
+            "compare writes --format table or json (html, markdown and dot are for audit and scan reports)"
+        );
+    }
     let config = CompareConfig {
         audit: AuditConfig {
             scan: a.limits.config(),
@@ -57,6 +62,7 @@ pub(super) fn compare(a: &CompareArgs) -> anyhow::Result<ExitCode> {
     output::write(a.output.as_deref(), &[&a.a, &a.b], |w| match a.format {
         Format::Table => compare::render(&c, w),
         Format::Json => shunt::report::json::render(&c, w),
+        Format::Html | Format::Markdown | Format::Dot => unreachable!("refused above"),
     })?;
     Ok(if c.failures.is_empty() { ExitCode::SUCCESS } else { ExitCode::from(1) })
 }
