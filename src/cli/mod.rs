@@ -446,6 +446,11 @@ fn run_batch(
     fail_on: &[Code],
     job: &(dyn Fn(&Path) -> batch::Outcome + Sync),
 ) -> anyhow::Result<ExitCode> {
+    if matches!(out.format, Format::Html | Format::Markdown | Format::Dot) {
+        bail!(
+            "several models or a folder take --format table or json (html, markdown and dot are for one model)"
+        );
+    }
     let found = batch::find_models(paths);
     if found.is_empty() {
         let names: Vec<String> = paths.iter().map(|p| p.display().to_string()).collect();
@@ -464,6 +469,7 @@ fn run_batch(
     output::write(out.output.as_deref(), &inputs, |w| match out.format {
         Format::Table => shunt::report::batch::render_table(&report, w),
         Format::Json => shunt::report::json::render(&report, w),
+        Format::Html | Format::Markdown | Format::Dot => unreachable!("refused above"),
     })?;
     for e in report.models.iter().filter_map(|m| m.error.as_deref()) {
         let _ =
