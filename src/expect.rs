@@ -12,7 +12,9 @@ use serde::Deserialize;
 
 use crate::findings::Code;
 use crate::report::Report;
-use crate::structure::{Difference, VERIFY_SCHEMA, VERIFY_SCHEMA_VERSION, Verification, plural};
+use crate::structure::{
+    Difference, PLACEMENTS, VERIFY_SCHEMA, VERIFY_SCHEMA_VERSION, Verification, plural,
+};
 
 /// The version of the expectation format this build reads.
 pub const EXPECT_VERSION: u32 = 1;
@@ -66,9 +68,6 @@ pub struct Limits {
     /// Largest allowed mean RMS(branch)/RMS(shortcut) of any block.
     pub ratio_max: Option<f64>,
 }
-
-const PLACEMENTS: [&str; 5] =
-    ["post-activation", "pre-activation", "pre-norm", "post-norm", "unactivated"];
 
 /// Parses an expectation file's text; the error says what is wrong.
 pub fn read(text: &str) -> Result<Expectation, String> {

@@ -164,6 +164,12 @@ pub fn write_pin(pin: &Pin, source: &str, out: &mut dyn io::Write) -> io::Result
     out.write_all(s.as_bytes())
 }
 
+/// The shortcut kinds a pin or expectation file may name.
+pub(crate) const SHORTCUTS: [&str; 3] = ["identity", "projection", "resampled"];
+/// The placements a pin or expectation file may name.
+pub(crate) const PLACEMENTS: [&str; 5] =
+    ["post-activation", "pre-activation", "pre-norm", "post-norm", "unactivated"];
+
 /// Reads a pin file's text; the error says what is wrong (the caller adds the path).
 pub fn read_pin(text: &str) -> Result<Pin, String> {
     let pin: Pin =
@@ -178,6 +184,24 @@ pub fn read_pin(text: &str) -> Result<Pin, String> {
         ));
     }
     for (i, b) in pin.blocks.iter().enumerate() {
+        // A hand-edited pin with an unknown word would only ever report a
+        // difference; say what is wrong with the file instead.
+        if !SHORTCUTS.contains(&b.shortcut.as_str()) {
+            return Err(format!(
+                "block {}: shortcut '{}' is not one of {}",
+                i + 1,
+                b.shortcut,
+                SHORTCUTS.join(", ")
+            ));
+        }
+        if !PLACEMENTS.contains(&b.placement.as_str()) {
+            return Err(format!(
+                "block {}: placement '{}' is not one of {}",
+                i + 1,
+                b.placement,
+                PLACEMENTS.join(", ")
+            ));
+        }
         if let Some(s) = b.stage
             && !pin.stages.iter().any(|st| st.id == s)
         {

@@ -892,6 +892,14 @@ fn intent_files() {
     // A 17 MiB file is refused, not read whole.
     let big = write_bytes(dir.path(), "big.toml", &vec![b'#'; 17 << 20]);
     assert_refused(&verify("--pin", &big), &big, "larger than 16 MiB");
+    // A pin whose words are not ours (a control sequence as the placement).
+    let pin = dir.path().join("model.pin.toml").display().to_string();
+    assert_eq!(shunt(&["pin", &model, "-o", &pin]).code, 0);
+    let text = fs::read_to_string(&pin).unwrap();
+    let evil = text.replacen("placement = \"post-activation\"", "placement = \"\\u001b[2J\"", 1);
+    assert_ne!(evil, text);
+    let evil = write_bytes(dir.path(), "evil.pin.toml", evil.as_bytes());
+    assert_refused(&verify("--pin", &evil), &evil, "block 1: placement '\\u{1b}[2J' is not one of");
     // A missing file, and a garbage model.
     let missing = dir.path().join("missing.toml").display().to_string();
     assert_refused(&verify("--pin", &missing), &missing, "cannot read the pin file");
