@@ -11,7 +11,7 @@ use std::io::Read;
 use std::path::{Path, PathBuf};
 
 use ndarray::ArrayD;
-use ndarray_npy::{NpzReader, ReadNpyExt};
+use ndarray_npy::ReadNpyExt;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::StandardNormal;
@@ -418,12 +418,17 @@ pub fn read_feed_bytes(
     if npz { read_npz(std::io::Cursor::new(bytes), names) } else { read_npy(bytes, names) }
 }
 
+/// Largest `.npz` entry decompressed, in bytes (a small archive may inflate
+/// to far more than it holds).
+const MAX_NPZ_ENTRY: u64 = 4 << 30;
+
 fn read_npz<R: std::io::Read + std::io::Seek>(
     reader: R,
     names: &[&str],
 ) -> std::result::Result<BTreeMap<String, ArrayD<f64>>, String> {
-    let mut npz = NpzReader::new(reader).map_err(|e| format!("not a readable .npz file ({e})"))?;
-    let entries = npz.names().map_err(|e| format!("not a readable .npz file ({e})"))?;
+    let mut zip =
+        zip::ZipArchive::new(reader).map_err(|e| format!("not a readable .npz file ({e})"))?;
+    let entries: Vec<String> = zip.file_names().map(str::to_owned).collect();
     let mut out = BTreeMap::new();
     for &name in names {
         let entry =
@@ -434,9 +439,17 @@ fn read_npz<R: std::io::Read + std::io::Seek>(
                 entries.join(", ")
             ));
         };
-        let entry = entry.clone();
-        let array =
-            read_npz_entry(&mut npz, &entry).map_err(|m| format!("entry '{entry}': {m}"))?;
+        let in_entry = |m: String| format!("entry '{entry}': {m}");
+        let mut bytes = Vec::new();
+        zip.by_name(entry)
+            .map_err(|e| in_entry(format!("cannot be read ({e})")))?
+            .take(MAX_NPZ_ENTRY + 1)
+            .read_to_end(&mut bytes)
+            .map_err(|e| in_entry(format!("cannot be read ({e})")))?;
+        if bytes.len() as u64 > MAX_NPZ_ENTRY {
+            return Err(in_entry(format!("inflates to more than {MAX_NPZ_ENTRY} bytes")));
+        }
+        let array = read_npy_any(&bytes).map_err(in_entry)?;
         out.insert(name.to_owned(), array);
     }
     same_samples(out)
@@ -466,7 +479,43 @@ fn same_samples(
     Ok(arrays)
 }
 
+/// Largest `.npy` header read, in bytes: numpy's own loader refuses headers
+/// over 10,000 bytes by default (`max_header_size` of `numpy.load`, added
+/// because parsing a large literal is slow) and so does this one.
+const MAX_NPY_HEADER: usize = 10_000;
+
+/// Checks a `.npy` header before the array reader parses it: the magic, a
+/// known version, a header length within the bytes and [`MAX_NPY_HEADER`],
+/// and a flat dictionary. The reader's literal parser takes time exponential
+/// in the nesting of brackets (fuzzing found a 138-byte header of four nested
+/// dictionaries that took seconds), and a feed header never nests: it is
+/// `{'descr': '<f4', 'fortran_order': False, 'shape': (2, 3), }`.
+fn check_npy_header(bytes: &[u8]) -> std::result::Result<(), String> {
+    let bad = |m: &str| Err(format!("not a readable .npy array ({m})"));
+    let Some(rest) = bytes.strip_prefix(b"\x93NUMPY") else {
+        return bad("no .npy magic string");
+    };
+    let (len, start) = match rest {
+        [1, _, a, b, ..] => (usize::from(u16::from_le_bytes([*a, *b])), 10),
+        [2 | 3, _, a, b, c, d, ..] => (u32::from_le_bytes([*a, *b, *c, *d]) as usize, 12),
+        [1..=3, ..] | [] => return bad("truncated header"),
+        [v, ..] => return bad(&format!("unknown format version {v}")),
+    };
+    if len > MAX_NPY_HEADER {
+        return bad(&format!("a header of {len} bytes, more than {MAX_NPY_HEADER}"));
+    }
+    let Some(header) = bytes.get(start..start + len) else {
+        return bad("truncated header");
+    };
+    let count = |c: u8| header.iter().filter(|&&b| b == c).count();
+    if count(b'{') != 1 || count(b'}') != 1 || count(b'[') + count(b']') > 0 || count(b'(') > 1 {
+        return bad("the header is not a flat dictionary of descr, fortran_order and shape");
+    }
+    Ok(())
+}
+
 fn read_npy_any(bytes: &[u8]) -> std::result::Result<ArrayD<f64>, String> {
+    check_npy_header(bytes)?;
     if let Ok(a) = ArrayD::<f32>::read_npy(bytes) {
         return Ok(a.mapv(|v| v as f64));
     }
@@ -484,28 +533,6 @@ fn read_npy_any(bytes: &[u8]) -> std::result::Result<ArrayD<f64>, String> {
         Err(e) => Err(format!(
             "not a readable .npy array of float32, float64, int64, int32 or bool ({e})"
         )),
-    }
-}
-
-fn read_npz_entry<R: std::io::Read + std::io::Seek>(
-    npz: &mut NpzReader<R>,
-    name: &str,
-) -> std::result::Result<ArrayD<f64>, String> {
-    if let Ok(a) = npz.by_name::<ndarray::OwnedRepr<f32>, ndarray::IxDyn>(name) {
-        return Ok(a.mapv(|v| v as f64));
-    }
-    if let Ok(a) = npz.by_name::<ndarray::OwnedRepr<f64>, ndarray::IxDyn>(name) {
-        return Ok(a);
-    }
-    if let Ok(a) = npz.by_name::<ndarray::OwnedRepr<i64>, ndarray::IxDyn>(name) {
-        return Ok(a.mapv(|v| v as f64));
-    }
-    if let Ok(a) = npz.by_name::<ndarray::OwnedRepr<i32>, ndarray::IxDyn>(name) {
-        return Ok(a.mapv(|v| v as f64));
-    }
-    match npz.by_name::<ndarray::OwnedRepr<bool>, ndarray::IxDyn>(name) {
-        Ok(a) => Ok(a.mapv(|v| if v { 1.0 } else { 0.0 })),
-        Err(e) => Err(format!("not an array of float32, float64, int64, int32 or bool ({e})")),
     }
 }
 
@@ -613,5 +640,35 @@ mod tests {
         assert!(ids.iter().any(|&t| t != ids[0]));
         assert_eq!(v[1], Values::I64(vec![1; 24]));
         assert!(f.inputs[1].how.contains("mask"));
+    }
+
+    #[test]
+    fn npy_headers_are_checked_before_parsing() {
+        // Regression: found by the npy_feed fuzz target, a 138-byte header of
+        // nested dictionaries that the literal parser took seconds over.
+        // (Also in fuzz/corpus/npy_feed/r7-nested-header.)
+        let nested: &[u8] = b"\x93NUMPY\x01\x00v\x00{{{{'decr':{'decr': '<i8',{{ 'rcr': '<i8',{{ '<i8',[{'\x07ecr': 1\x0d\x0a8', 'fortran_order': F1\x0d\x0a8', 'fortran_order': Fa  (  \x0a\x01\x00\x00\x00\x00\x00\x00\x00o?";
+        let e = read_feed_bytes(nested, false, &["x"]).unwrap_err();
+        assert!(e.contains("not a flat dictionary"), "{e}");
+        // A well-formed header (as numpy writes it) still reads.
+        let header = b"{'descr': '<f4', 'fortran_order': False, 'shape': (2,), }";
+        let mut npy = b"\x93NUMPY\x01\x00".to_vec();
+        let padded = header.len() + 1 + (64 - (10 + header.len() + 1) % 64) % 64;
+        npy.extend_from_slice(&(padded as u16).to_le_bytes());
+        npy.extend_from_slice(header);
+        npy.resize(10 + padded - 1, b' ');
+        npy.push(b'\n');
+        npy.extend_from_slice(&[0, 0, 128, 63, 0, 0, 0, 64]);
+        let ok = read_feed_bytes(&npy, false, &["x"]).unwrap();
+        assert_eq!(ok["x"].as_slice().unwrap(), &[1.0, 2.0]);
+        // A header longer than numpy's own default limit.
+        let mut long = b"\x93NUMPY\x02\x00".to_vec();
+        long.extend_from_slice(&20_000u32.to_le_bytes());
+        long.resize(12 + 20_000, b' ');
+        let e = read_feed_bytes(&long, false, &["x"]).unwrap_err();
+        assert!(e.contains("more than 10000"), "{e}");
+        for short in [&b"\x93NUMPY"[..], b"\x93NUMPY\x01", b"\x93NUMPY\x09\x00"] {
+            assert!(read_feed_bytes(short, false, &["x"]).is_err());
+        }
     }
 }
