@@ -34,7 +34,7 @@ use serde_json::{Value, json};
 use shunt::audit::{self, AuditConfig};
 use shunt::load::ExternalData;
 use shunt::probe::Progress;
-use shunt::probe::inputs::{self, Dist, InputConfig, Values};
+use shunt::probe::inputs::{self, InputConfig, Values};
 use shunt::scan::{self, ScanConfig};
 use shunt::testkit::zoo::{self, ImageSpec, ResNetConfig};
 use tract_onnx::prelude::*;
@@ -60,18 +60,7 @@ fn bench_dir() -> PathBuf {
 fn audit_config() -> AuditConfig {
     AuditConfig {
         scan: ScanConfig::standard(),
-        inputs: InputConfig {
-            samples: BATCH,
-            max_pass: None,
-            seed: 0,
-            dist: Dist::Normal,
-            scale: 1.0,
-            dims: BTreeMap::new(),
-            shapes: BTreeMap::new(),
-            fills: BTreeMap::new(),
-            feed: None,
-            max_input_elements: shunt::probe::inputs::MAX_INPUT_ELEMENTS,
-        },
+        inputs: InputConfig::standard(BATCH),
         findings: scan::standard_findings(),
         influence: None,
     }

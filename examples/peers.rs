@@ -10,13 +10,12 @@
 //!   thread, as tract runs).
 #![allow(clippy::print_stdout, clippy::print_stderr)]
 
-use std::collections::BTreeMap;
 use std::path::Path;
 
 use ndarray::{ArrayD, IxDyn};
 use prost::Message;
 use shunt::load::ExternalData;
-use shunt::probe::inputs::{self, Dist, InputConfig, Values};
+use shunt::probe::inputs::{self, InputConfig, Values};
 use shunt::scan::{self, ScanConfig};
 use shunt::testkit::zoo::{self, ImageSpec, ResNetConfig};
 use tract_onnx::prelude::*;
@@ -30,18 +29,7 @@ fn write(dir: &Path) {
     let model = zoo::resnet(&cfg);
     std::fs::write(dir.join("resnet50.onnx"), model.encode_to_vec()).expect("write the model");
     // The inputs exactly as the audit makes them by default.
-    let config = InputConfig {
-        samples: 8,
-        max_pass: None,
-        seed: 0,
-        dist: Dist::Normal,
-        scale: 1.0,
-        dims: BTreeMap::new(),
-        shapes: BTreeMap::new(),
-        fills: BTreeMap::new(),
-        feed: None,
-        max_input_elements: inputs::MAX_INPUT_ELEMENTS,
-    };
+    let config = InputConfig::standard(8);
     let analysis = scan::analyse(model, ExternalData::none(), &ScanConfig::standard())
         .expect("analyse the model");
     let feeding = inputs::plan(&inputs::input_specs(&analysis.graph), &config).expect("a plan");

@@ -87,18 +87,7 @@ impl AuditConfig {
     pub fn standard() -> AuditConfig {
         AuditConfig {
             scan: ScanConfig::standard(),
-            inputs: InputConfig {
-                samples: 8,
-                max_pass: None,
-                seed: 0,
-                dist: inputs::Dist::Normal,
-                scale: 1.0,
-                dims: Default::default(),
-                shapes: Default::default(),
-                fills: Default::default(),
-                feed: None,
-                max_input_elements: inputs::MAX_INPUT_ELEMENTS,
-            },
+            inputs: InputConfig::standard(8),
             findings: scan::standard_findings(),
             influence: None,
         }

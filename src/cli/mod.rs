@@ -415,18 +415,7 @@ fn input_config(a: &AuditArgs) -> anyhow::Result<InputConfig> {
 
 /// Inputs of an audit that does not run (never read).
 fn no_inputs() -> InputConfig {
-    InputConfig {
-        samples: 0,
-        max_pass: None,
-        seed: 0,
-        dist: Dist::Normal,
-        scale: 1.0,
-        dims: BTreeMap::new(),
-        shapes: BTreeMap::new(),
-        fills: BTreeMap::new(),
-        feed: None,
-        max_input_elements: 0,
-    }
+    InputConfig { max_input_elements: 0, ..InputConfig::standard(0) }
 }
 
 /// Several paths or a folder make a batch; one file gets its own report.

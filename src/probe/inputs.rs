@@ -61,6 +61,25 @@ pub struct InputConfig {
 /// of `f32` for one input in one pass.
 pub const MAX_INPUT_ELEMENTS: u64 = 1 << 28;
 
+impl InputConfig {
+    /// The documented defaults for `samples` samples: standard normal inputs
+    /// with seed 0, all at once, nothing overridden, the default size limit.
+    pub fn standard(samples: usize) -> InputConfig {
+        InputConfig {
+            samples,
+            max_pass: None,
+            seed: 0,
+            dist: Dist::Normal,
+            scale: 1.0,
+            dims: BTreeMap::new(),
+            shapes: BTreeMap::new(),
+            fills: BTreeMap::new(),
+            feed: None,
+            max_input_elements: MAX_INPUT_ELEMENTS,
+        }
+    }
+}
+
 /// One graph input as the graph declares it.
 #[derive(Debug, Clone)]
 pub struct InputSpec {
@@ -571,18 +590,7 @@ mod tests {
     }
 
     fn config(samples: usize) -> InputConfig {
-        InputConfig {
-            samples,
-            max_pass: None,
-            seed: 7,
-            dist: Dist::Normal,
-            scale: 1.0,
-            dims: BTreeMap::new(),
-            shapes: BTreeMap::new(),
-            fills: BTreeMap::new(),
-            feed: None,
-            max_input_elements: MAX_INPUT_ELEMENTS,
-        }
+        InputConfig { seed: 7, ..InputConfig::standard(samples) }
     }
 
     #[test]
