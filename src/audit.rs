@@ -12,6 +12,7 @@ use crate::findings::{self, FindingConfig, InfluenceFacts, InfluenceThresholds};
 use crate::gate::{self, Site};
 use crate::graph::op;
 use crate::load::{self, ExternalData, tensor};
+use crate::lower;
 use crate::probe::inputs::{self, Feeding, InputConfig};
 use crate::probe::{self, BlockSamples, GatedPlan, ModelSource, Progress, Watch};
 use crate::proto::ModelProto;
@@ -119,13 +120,21 @@ pub fn audit_file(path: &Path, config: &AuditConfig, progress: &dyn Progress) ->
         &loaded.model,
         &loaded.external,
     );
+    let lowered = lower::lower(loaded.model, &loaded.external).map_err(|e| e.at(path))?;
+    // tract runs what was analysed: the lowered model when a rewrite changed
+    // it (external payloads still resolve against the model's folder).
+    let lowered_bytes = lowered.changed().then(|| lowered.model.encode_to_vec());
     // The surgery works on a copy of the decoded model (payloads in
     // `raw_data` are shared, not copied).
-    let surgery = config.influence.as_ref().map(|_| loaded.model.clone());
+    let surgery = config.influence.as_ref().map(|_| lowered.model.clone());
     let analysis =
-        scan::analyse(loaded.model, loaded.external, &config.scan).map_err(|e| e.at(path))?;
+        scan::analyse_lowered(lowered, loaded.external, &config.scan).map_err(|e| e.at(path))?;
     let dir = path.parent().unwrap_or(Path::new("."));
-    run(info, analysis, ModelSource::Path(path), surgery.map(|m| (m, Some(dir))), config, progress)
+    let source = match &lowered_bytes {
+        Some(bytes) => ModelSource::BytesIn(bytes, dir),
+        None => ModelSource::Path(path),
+    };
+    run(info, analysis, source, surgery.map(|m| (m, Some(dir))), config, progress)
         .map_err(|e| e.at(path))
 }
 
@@ -136,11 +145,12 @@ pub fn audit_model(
     config: &AuditConfig,
     progress: &dyn Progress,
 ) -> Result<Audit> {
-    let bytes = model.encode_to_vec();
     let external = ExternalData::none();
-    let info = scan::model_info(label, bytes.len() as u64, &model, &external);
-    let surgery = config.influence.as_ref().map(|_| (model.clone(), None));
-    let analysis = scan::analyse(model, external, &config.scan)?;
+    let info = scan::model_info(label, model.encoded_len() as u64, &model, &external);
+    let lowered = lower::lower(model, &external)?;
+    let bytes = lowered.model.encode_to_vec();
+    let surgery = config.influence.as_ref().map(|_| (lowered.model.clone(), None));
+    let analysis = scan::analyse_lowered(lowered, external, &config.scan)?;
     run(info, analysis, ModelSource::Bytes(&bytes), surgery, config, progress)
 }
 

@@ -24,6 +24,7 @@ pub mod findings;
 pub mod gate;
 pub mod graph;
 pub mod load;
+pub mod lower;
 pub mod probe;
 pub mod proto;
 pub mod report;

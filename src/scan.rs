@@ -10,6 +10,7 @@ use crate::error::{Diagnostic, Result, Severity};
 use crate::findings::{self, BlockFacts, FindingConfig, Run};
 use crate::graph::{self, BuildConfig, Dim, Dominance, Graph, NodeId, ValueId};
 use crate::load::{self, ExternalData, LoadConfig, tensor};
+use crate::lower::{self, Lowered};
 use crate::proto::ModelProto;
 use crate::report::{self, *};
 use crate::residual::{self, Detection, Reason, ShortcutKind};
@@ -54,11 +55,25 @@ pub struct Analysis {
     pub bare_runs: Vec<BareRun>,
     /// Diagnostics from building the graph.
     pub diagnostics: Vec<Diagnostic>,
+    /// Operators lowered before the analysis: `(domain, op_type, nodes)`.
+    pub lowered: Vec<(String, String, usize)>,
 }
 
-/// Analyses a decoded model.
+/// Lowers and analyses a decoded model.
 pub fn analyse(model: ModelProto, external: ExternalData, config: &ScanConfig) -> Result<Analysis> {
-    let (graph, mut diagnostics) = graph::build(model, external, &config.build)?;
+    let lowered = lower::lower(model, &external)?;
+    analyse_lowered(lowered, external, config)
+}
+
+/// Analyses a lowered model.
+pub fn analyse_lowered(
+    lowered: Lowered,
+    external: ExternalData,
+    config: &ScanConfig,
+) -> Result<Analysis> {
+    let summary = lowered.summary();
+    let (mut graph, mut diagnostics) = graph::build(lowered.model, external, &config.build)?;
+    graph.set_origins(lowered.origins);
     let dom = Dominance::compute(&graph);
     let detection = residual::find_blocks(&graph, &dom);
     let kinds: Vec<Kind> = classify::classify_all(&graph, &detection.blocks, &config.classify);
@@ -76,7 +91,16 @@ pub fn analyse(model: ModelProto, external: ExternalData, config: &ScanConfig) -
         }
         let _ = i;
     }
-    Ok(Analysis { graph, detection, kinds, stages, stage_of, bare_runs, diagnostics })
+    Ok(Analysis {
+        graph,
+        detection,
+        kinds,
+        stages,
+        stage_of,
+        bare_runs,
+        diagnostics,
+        lowered: summary,
+    })
 }
 
 /// Reads, decodes and analyses a model file.
@@ -165,7 +189,17 @@ pub(crate) fn model_info(
 
 fn node_ref(g: &Graph, n: NodeId) -> NodeRef {
     let node = g.node(n);
-    NodeRef { name: node.name.clone(), index: node.index, op_type: node.op.clone() }
+    NodeRef {
+        name: node.name.clone(),
+        index: node.index,
+        op_type: node.op.clone(),
+        lowered_from: node.origin.as_ref().map(|o| NodeOrigin {
+            name: o.name.clone(),
+            index: o.index,
+            op_type: o.op_type.clone(),
+            domain: o.domain.clone(),
+        }),
+    }
 }
 
 fn value_name(g: &Graph, v: ValueId) -> String {
@@ -353,6 +387,15 @@ fn structure_report(model: ModelInfo, a: &Analysis) -> Report {
         schema_version: report::REPORT_SCHEMA_VERSION,
         command: "scan".to_owned(),
         model,
+        lowered: a
+            .lowered
+            .iter()
+            .map(|(domain, op_type, nodes)| LoweredRow {
+                domain: domain.clone(),
+                op_type: op_type.clone(),
+                nodes: *nodes,
+            })
+            .collect(),
         run: None,
         run_error: None,
         findings: Vec::new(),

@@ -720,6 +720,7 @@ mod tests {
             name: "n".to_owned(),
             index: 0,
             op_type: op.to_owned(),
+            lowered_from: None,
         };
         let l = |op: &str, kernel: Vec<u64>, i: u64, o: u64, s: Vec<i64>, g: u64| LayerRow {
             node: node(op),

@@ -43,6 +43,47 @@ enum Command {
     Verify(pin::VerifyArgs),
     /// Align the blocks of two models, run both on the same inputs, and report what changed.
     Compare(compare::CompareArgs),
+    /// Write the model as shunt analyses and runs it: fused, contrib and quantised
+    /// operators rewritten into standard ONNX operators, every tensor name kept.
+    Lower(LowerArgs),
+}
+
+#[derive(Debug, clap::Args)]
+struct LowerArgs {
+    /// The ONNX model file.
+    #[arg(value_name = "MODEL")]
+    model: PathBuf,
+    /// Where to write the lowered model (written atomically; never over the model).
+    /// External data is not copied: keep the file beside the model's own data.
+    #[arg(long, short = 'o', value_name = "FILE")]
+    output: PathBuf,
+    #[command(flatten)]
+    limits: Limits,
+}
+
+/// `shunt lower`: writes the lowered model and says on standard error what
+/// was rewritten.
+fn lower_command(args: &LowerArgs) -> anyhow::Result<ExitCode> {
+    use prost::Message;
+    let config = args.limits.config();
+    let loaded = shunt::load::load(&args.model, &config.load)?;
+    let lowered =
+        shunt::lower::lower(loaded.model, &loaded.external).map_err(|e| e.at(&args.model))?;
+    let bytes = lowered.model.encode_to_vec();
+    output::write(Some(&args.output), &[&args.model], |out| out.write_all(&bytes))?;
+    let summary = lowered.summary();
+    if summary.is_empty() {
+        eprintln!("shunt: nothing to lower; the model is written unchanged");
+    }
+    for (domain, op, n) in summary {
+        let domain = if domain.is_empty() { String::new() } else { format!("{domain}.") };
+        eprintln!(
+            "shunt: lowered {n} {}{}",
+            shunt::report::table::terminal_safe(&domain),
+            shunt::report::table::terminal_safe(&op)
+        );
+    }
+    Ok(ExitCode::SUCCESS)
 }
 
 #[derive(Debug, clap::Args)]
@@ -331,6 +372,7 @@ fn run(args: Args) -> anyhow::Result<ExitCode> {
         Command::Pin(a) => pin::pin(&a),
         Command::Verify(a) => pin::verify(&a),
         Command::Compare(a) => compare::compare(&a),
+        Command::Lower(a) => lower_command(&a),
         Command::Scan(a) => {
             let fail_on = parse_fail_on(a.out.fail_on.as_deref())?;
             let config = a.limits.config();

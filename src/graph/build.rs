@@ -147,6 +147,7 @@ pub fn build(
             outputs,
             attrs: n.attribute,
             subgraphs,
+            origin: None,
         });
     }
 

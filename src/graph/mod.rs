@@ -48,6 +48,8 @@ pub struct Node {
     pub attrs: Vec<AttributeProto>,
     /// Number of subgraphs the node carries (If, Loop, Scan).
     pub subgraphs: usize,
+    /// The model's node this one was lowered from, if a rewrite emitted it.
+    pub origin: Option<crate::lower::Origin>,
 }
 
 /// Where a value comes from.
@@ -131,6 +133,14 @@ pub struct Graph {
 }
 
 impl Graph {
+    /// Records, for each node in model order, the node it was lowered from
+    /// ([`crate::lower::Lowered::origins`]; empty when nothing was lowered).
+    pub fn set_origins(&mut self, origins: Vec<Option<crate::lower::Origin>>) {
+        for (node, origin) in self.nodes.iter_mut().zip(origins) {
+            node.origin = origin;
+        }
+    }
+
     /// A node by id.
     pub fn node(&self, id: NodeId) -> &Node {
         &self.nodes[id.0 as usize]

@@ -22,7 +22,10 @@ use serde::{Deserialize, Serialize};
 pub const REPORT_SCHEMA: &str = "shunt/report";
 /// Version of the report JSON schema; bumped on every change of its fields.
 /// Version 1 was the scan-only document `shunt/scan`.
-pub const REPORT_SCHEMA_VERSION: u32 = 3;
+///
+/// Version 4 added `lowered` and `NodeRef::lowered_from` (both left out when
+/// empty), for models whose fused or quantised operators were lowered.
+pub const REPORT_SCHEMA_VERSION: u32 = 4;
 
 /// The result of `shunt scan` or `shunt audit` on one model.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -36,6 +39,10 @@ pub struct Report {
     pub command: String,
     /// The model file and its graph.
     pub model: ModelInfo,
+    /// Operators rewritten into standard ONNX operators before the analysis
+    /// (fused, contrib and quantised ops), counted by type; empty when none.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub lowered: Vec<LoweredRow>,
     /// What was fed and how, when the model was run.
     pub run: Option<RunRow>,
     /// Why running the model failed, if it did (the structure is still reported).
@@ -128,6 +135,36 @@ pub struct NodeRef {
     pub index: usize,
     /// ONNX op type.
     pub op_type: String,
+    /// For a node of the lowered graph: the model's node it was lowered from
+    /// (its `name` and `index` are then the lowered graph's).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub lowered_from: Option<NodeOrigin>,
+}
+
+/// The model's own node that a lowered node came from.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct NodeOrigin {
+    /// Its name, or `{op_type}#{index}` when the model leaves it unnamed.
+    pub name: String,
+    /// Position in the model's node list (0-based).
+    pub index: usize,
+    /// Its op type.
+    pub op_type: String,
+    /// Its domain (empty for the default domain).
+    pub domain: String,
+}
+
+/// How many nodes of one operator type were lowered.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LoweredRow {
+    /// The operator's domain (empty for the default domain).
+    pub domain: String,
+    /// The operator type.
+    pub op_type: String,
+    /// How many of its nodes were lowered.
+    pub nodes: usize,
 }
 
 /// Counts over the whole model.
