@@ -205,7 +205,8 @@ pub fn watches(a: &Analysis) -> Vec<Watch> {
                 .iter()
                 .any(|&n| op::is_parametrised(g, n) && g.node(n).op.contains("Conv")),
             relu_after: k.placement == Placement::PostActivation
-                && k.placement_node.is_some_and(|n| g.node(n).op == "Relu"),
+                && k.placement_node
+                    .is_some_and(|n| matches!(g.node(n).op.as_str(), "Relu" | "QuantizeLinear")),
         })
         .collect()
 }

@@ -252,6 +252,11 @@ fn placement(
             _ => {}
         }
     }
+    // 3b: no activation node, but a quantisation that clamps negatives:
+    // `relu(x + F(x))` after a quantiser folded the ReLU into the zero point.
+    if let Some(q) = clamping_quantize(g, block.output) {
+        return (Placement::PostActivation, Some(q));
+    }
     if let Some(n) = decomposed_layer_norm(g, value, None)
         && consumers.len() == 2
         && decomposed_norm_output(g, n).is_none_or(feeds_block)
@@ -276,6 +281,41 @@ fn placement(
         }
     }
     (Placement::Unactivated, None)
+}
+
+/// A `QuantizeLinear` that `v` reaches through single-consumer pass-through
+/// ops and whose zero point is the bottom of its integer range, so that every
+/// negative value saturates to the smallest code, which dequantises to 0: a
+/// ReLU folded into the quantisation ([Q1]: `y = saturate(round(x / scale) +
+/// zero_point)`; an omitted zero point is a uint8 0).
+pub fn clamping_quantize(g: &Graph, mut v: ValueId) -> Option<NodeId> {
+    loop {
+        let consumers: Vec<NodeId> = g.consumers(v).collect();
+        let [c] = consumers.as_slice() else { return None };
+        let node = g.node(*c);
+        if node.op == "QuantizeLinear" {
+            return zero_point_at_bottom(g, *c).then_some(*c);
+        }
+        if op::family(g, *c) != Family::PassThrough || g.is_output(v) {
+            return None;
+        }
+        v = node.outputs[0];
+    }
+}
+
+/// Whether a `QuantizeLinear`'s zero points are all the smallest value of
+/// their integer type (uint8/uint16 0, int8 -128, int16 -32768).
+fn zero_point_at_bottom(g: &Graph, q: NodeId) -> bool {
+    let Some(zp) = g.input(q, 2) else { return true };
+    let Some(t) = g.constant_tensor(zp) else { return false };
+    let bottom = match t.data_type {
+        2 | 4 => 0.0,      // uint8, uint16
+        3 => -128.0,       // int8
+        5 => -32768.0,     // int16
+        _ => return false, // 4-bit and float8 types: not seen after a merge
+    };
+    g.constant_f32(zp, 1 << 16)
+        .is_some_and(|values| !values.is_empty() && values.iter().all(|&x| x == bottom))
 }
 
 /// The producer of `v`, looking through pass-through ops.

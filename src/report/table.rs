@@ -51,6 +51,15 @@ fn shortcut_cell(b: &BlockRow) -> String {
     }
 }
 
+/// The merge node; a merge a rewrite emitted names the model's own node it
+/// was inside.
+fn merge_cell(b: &BlockRow) -> String {
+    match &b.merge.lowered_from {
+        Some(o) => terminal_safe(&format!("inside {} '{}'", o.op_type, o.name)),
+        None => terminal_safe(&b.merge.name),
+    }
+}
+
 fn notes_cell(b: &BlockRow) -> String {
     let mut notes = Vec::new();
     if let Some(d) = &b.static_dead {
@@ -66,6 +75,11 @@ fn notes_cell(b: &BlockRow) -> String {
             (Some(lo), Some(hi)) => notes.push(format!("end scale {lo:.3e}..{hi:.3e}")),
             _ => notes.push("end scale (unread)".to_owned()),
         }
+    }
+    if b.placement == "post-activation"
+        && let Some(n) = b.placement_node.as_ref().filter(|n| n.op_type == "QuantizeLinear")
+    {
+        notes.push(format!("activation implicit in quantisation at {}", terminal_safe(&n.name)));
     }
     if b.branch.gates > 0 {
         notes.push(format!("{} gate(s)", b.branch.gates));
@@ -174,7 +188,7 @@ fn structure_table(r: &Report) -> Table {
             t.add_row(vec![
                 b.id.to_string(),
                 stage,
-                terminal_safe(&b.merge.name),
+                merge_cell(b),
                 terminal_safe(&shortcut_cell(b)),
                 b.placement.clone(),
                 layers.join(", "),
@@ -214,7 +228,7 @@ fn measurement_table(r: &Report) -> Table {
         t.add_row(vec![
             b.id.to_string(),
             stage_cell(b),
-            terminal_safe(&b.merge.name),
+            merge_cell(b),
             b.shortcut.kind.clone(),
             b.placement.clone(),
             num(s.and_then(|s| s.shortcut_rms).map(|x| x.mean)),
