@@ -272,11 +272,19 @@ impl BlockKey {
         format!("{stage}, {}, {}, [{}]", self.shortcut, self.placement, self.branch.join(", "))
     }
 
+    /// Whether the stage shapes may be the same: equal, or one unknown. A
+    /// shape the static inference could not derive in one export (run-time
+    /// Reshape targets) is no evidence of a different stage.
+    fn same_stage_shape(&self, other: &BlockKey) -> bool {
+        self.stage_shape == other.stage_shape || self.stage_shape == "?" || other.stage_shape == "?"
+    }
+
     /// How well two keys match, or `None` when they may not be paired: the
-    /// stage shape must be equal and at least two of shortcut, placement,
-    /// branch and depth must agree. The branch counts double.
+    /// stage shapes must agree (or one be unknown) and at least two of
+    /// shortcut, placement, branch and depth must agree. The branch counts
+    /// double.
     pub fn score(&self, other: &BlockKey) -> Option<u32> {
-        if self.stage_shape != other.stage_shape {
+        if !self.same_stage_shape(other) {
             return None;
         }
         let agree = u32::from(self.shortcut == other.shortcut)
@@ -286,9 +294,10 @@ impl BlockKey {
         (agree >= 2).then_some(1 + agree)
     }
 
-    /// Whether everything but the stage id agrees.
+    /// Whether everything but the stage id agrees (an unknown stage shape
+    /// agrees with any).
     pub fn same(&self, other: &BlockKey) -> bool {
-        self.stage_shape == other.stage_shape
+        self.same_stage_shape(other)
             && self.shortcut == other.shortcut
             && self.placement == other.placement
             && self.branch == other.branch

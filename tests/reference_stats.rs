@@ -71,7 +71,7 @@ fn refresh_hint(case: &Case) -> String {
 
 /// Runs `stats.py` on `model` and `inputs` (paths relative to the repository
 /// root, so the JSON names them the same way on every machine).
-fn run_stats(model: &str, inputs: &str, extra: &[&str]) -> Value {
+pub(crate) fn run_stats(model: &str, inputs: &str, extra: &[&str]) -> Value {
     let dir = util::tempdir();
     let out = dir.path().join("values.json");
     let run = Command::new(util::reference_python())
@@ -161,7 +161,7 @@ fn check_drift(case: &Case, committed: &Value) {
     }
 }
 
-fn audit(model: &str, inputs: &str) -> Value {
+pub(crate) fn audit(model: &str, inputs: &str) -> Value {
     let model = root().join(model);
     let inputs = root().join(inputs);
     let run = util::shunt(&[
@@ -223,7 +223,7 @@ fn ratios(num: &[f64], den: &[f64]) -> Vec<f64> {
 /// Check 2: shunt's block statistics equal onnxruntime's on the same inputs.
 ///
 /// Returns the number of blocks whose branch is exactly zero.
-fn check_blocks(case: &str, report: &Value, reference: &Value) -> usize {
+pub(crate) fn check_blocks(case: &str, report: &Value, reference: &Value) -> usize {
     let blocks = report["blocks"].as_array().expect("blocks");
     assert!(!blocks.is_empty(), "{case}: no blocks");
     assert!(report["run_error"].is_null(), "{case}: {}", report["run_error"]);

@@ -19,6 +19,8 @@ mod fixtures;
 mod real_exports;
 // Statistics against onnxruntime on the same inputs.
 mod reference_stats;
+// Optimised, quantised and half-precision models: lowering against onnxruntime.
+mod lowering;
 // Broken and hostile model files: each with its expected error.
 mod hostile;
 // Properties: random graphs and mutated bytes never panic; census invariance.
