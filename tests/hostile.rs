@@ -63,6 +63,8 @@
 //! | `input_bomb` | 2, "would hold … elements in one pass" (audit; also dims whose product overflows, and a lowered limit) |
 //! | `intent_files` | 2 for pin and expectation files that are bad TOML ("line 2, column 7"), devices, FIFOs, folders, over 16 MiB or missing, and for `pin` of a garbage model |
 //! | `r7_conv_weight_rank_one` | 0 (a Conv weight of rank 1 made the shape inference index past it) |
+//! | **lowered ops** | |
+//! | `lowered_ops_refuse_malformed_nodes` | 2 naming the node: a missing or extra input, an attribute of the wrong type, an unknown activation, a zero or NaN scale, a uint8 zero point of 300 |
 
 use std::fs;
 use std::path::Path;
@@ -1062,4 +1064,92 @@ fn r7_conv_weight_rank_one() {
     let m = model(block_graph(weight("w1", &[4, 4, 3, 3]), weight("w2", &[144])));
     let report = scanned(&write(dir.path(), "conv_rank1.onnx", &m));
     assert_eq!(report["summary"]["blocks"], 1, "{}", report["blocks"]);
+}
+
+// ---------------------------------------------------------------- lowered ops
+
+/// A single-operator model of fixtures/transformed/ops, decoded for mutation.
+fn op_model(stem: &str) -> ModelProto {
+    let path = crate::util::fixture("transformed/ops").join(format!("{stem}.onnx"));
+    ModelProto::decode(fs::read(&path).unwrap().as_slice()).unwrap()
+}
+
+fn first_node(m: &mut ModelProto) -> &mut NodeProto {
+    &mut m.graph.as_mut().unwrap().node[0]
+}
+
+fn set_initializer(m: &mut ModelProto, name: &str, f: impl FnOnce(&mut TensorProto)) {
+    let g = m.graph.as_mut().unwrap();
+    let t = g.initializer.iter_mut().find(|t| t.name == name).expect("the initializer");
+    f(t);
+}
+
+/// Every rule refuses malformed nodes with one line naming the node: missing
+/// or extra inputs, an attribute of the wrong type, an unknown activation, a
+/// zero or non-finite scale, a zero point outside its type's range
+/// (fixtures/transformed/ops; the limits are those of [Q1] and the contrib
+/// operator documentation).
+#[test]
+fn lowered_ops_refuse_malformed_nodes() {
+    let dir = tempdir();
+    let mut cases: Vec<(&str, ModelProto, &str)> = Vec::new();
+
+    let mut m = op_model("SkipLayerNormalization_minimal");
+    first_node(&mut m).input.truncate(2);
+    cases.push(("sln_missing_gamma", m, "expects"));
+
+    let mut m = op_model("SkipLayerNormalization_minimal");
+    for a in &mut first_node(&mut m).attribute {
+        if a.name == "epsilon" {
+            a.r#type = AttributeType::Int as i32;
+        }
+    }
+    cases.push(("sln_epsilon_int", m, "epsilon"));
+
+    let mut m = op_model("FusedConv_relu_z");
+    for a in &mut first_node(&mut m).attribute {
+        if a.name == "activation" {
+            a.s = b"Wobble".to_vec();
+        }
+    }
+    cases.push(("fusedconv_unknown_activation", m, "Wobble"));
+
+    let mut m = op_model("QLinearAdd");
+    first_node(&mut m).input.push("A".to_owned());
+    cases.push(("qlinearadd_extra_input", m, "expects"));
+
+    let mut m = op_model("QLinearAdd");
+    let scale = first_node(&mut m).input[1].clone();
+    set_initializer(&mut m, &scale, |t| {
+        t.float_data = vec![0.0];
+        t.raw_data = Default::default();
+    });
+    cases.push(("qlinearadd_zero_scale", m, "scale"));
+
+    let mut m = op_model("QLinearAdd");
+    let scale = first_node(&mut m).input[4].clone();
+    set_initializer(&mut m, &scale, |t| {
+        t.float_data = vec![f32::NAN];
+        t.raw_data = Default::default();
+    });
+    cases.push(("qlinearadd_nan_scale", m, "scale"));
+
+    let mut m = op_model("QLinearConv");
+    let zp = first_node(&mut m).input[2].clone();
+    set_initializer(&mut m, &zp, |t| {
+        // uint8 zero points live in int32_data when not raw: 300 is out of range.
+        t.int32_data = vec![300];
+        t.raw_data = Default::default();
+    });
+    cases.push(("qlinearconv_zero_point_range", m, "zero point"));
+
+    assert_eq!(cases.len(), 7);
+    for (name, model, needle) in cases {
+        let path = write(dir.path(), &format!("{name}.onnx"), &model);
+        let run = shunt(&["scan", &path]);
+        assert_refused(&run, &path, needle);
+        let node = &model.graph.as_ref().unwrap().node[0];
+        let label = if node.name.is_empty() { node.op_type.clone() } else { node.name.clone() };
+        assert!(run.stderr.contains(&label), "{name}: the message names the node: {}", run.stderr);
+    }
 }
