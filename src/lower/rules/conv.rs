@@ -303,6 +303,11 @@ fn rank_of(ctx: &Ctx<'_>, name: &str) -> Option<usize> {
         return Some(shape.len());
     }
     let producer = ctx.nodes().iter().find(|n| n.output.iter().any(|o| o == name))?;
+    if producer.domain.is_empty() && producer.op_type == "Reshape" {
+        return ctx
+            .constant(producer.input.get(1)?)
+            .map(|t| t.dims.iter().product::<i64>() as usize);
+    }
     let conv = matches!(
         (producer.domain.as_str(), producer.op_type.as_str()),
         ("" | "ai.onnx", "Conv") | (MS_DOMAIN, "FusedConv") | (NCHWC_DOMAIN, "Conv")
@@ -1149,6 +1154,21 @@ mod tests {
         let l = run(m).unwrap();
         let reshape = nodes(&l).iter().find(|n| n.op_type == "Reshape").unwrap();
         assert_eq!(init(&l, &reshape.input[1]).int64_data, [-1, 1, 1]);
+
+        // Weight standardisation: X is a weight reshaped to [1, O, I*k*k].
+        let mut m = bn(false, vec![], vec![]);
+        let g = m.graph.as_mut().unwrap();
+        g.node.insert(0, node("", "Reshape", "flat", &["w", "shape"], &["x"]));
+        g.initializer.push(TensorProto {
+            name: "shape".into(),
+            dims: vec![3],
+            data_type: 7,
+            int64_data: vec![1, 4, 18],
+            ..Default::default()
+        });
+        let l = run(m).unwrap();
+        let reshape = nodes(&l).iter().find(|n| n.name.starts_with("bn/")).unwrap();
+        assert_eq!(init(&l, &reshape.input[1]).int64_data, [-1, 1]);
 
         let l = run(bn(false, vec![], vec![])).unwrap();
         let got = &ops(&l)[4..10];
