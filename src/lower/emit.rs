@@ -33,6 +33,7 @@ pub struct Ctx<'a> {
     emitted: usize,
     initializers: Vec<TensorProto>,
     needs_opset: bool,
+    nchwc_block: Option<i64>,
 }
 
 impl<'a> Ctx<'a> {
@@ -53,6 +54,7 @@ impl<'a> Ctx<'a> {
             emitted: 0,
             initializers: Vec::new(),
             needs_opset: false,
+            nchwc_block: None,
         }
     }
 
@@ -314,6 +316,18 @@ impl<'a> Ctx<'a> {
     /// onnxruntime's NCHWc ops).
     pub fn nodes(&self) -> &'a [NodeProto] {
         self.nodes
+    }
+
+    /// Sets the NCHWc block size the caller knows the model was written with
+    /// (that of the machine whose onnxruntime optimised it), for the models
+    /// whose shapes fit both block sizes.
+    pub fn set_nchwc_block(&mut self, block: Option<i64>) {
+        self.nchwc_block = block;
+    }
+
+    /// The NCHWc block size the caller gave, if any.
+    pub fn nchwc_block(&self) -> Option<i64> {
+        self.nchwc_block
     }
 
     /// The shape a tensor is declared with: a graph input, output or

@@ -473,12 +473,23 @@ impl Region {
         }
     }
 
-    /// The block size, when exactly one fits.
+    /// The block size: the one that fits the model's shapes, or, when both
+    /// fit, the one the caller gave ([`Ctx::nchwc_block`]); a given block size
+    /// the shapes rule out is refused.
     fn block(&self, ctx: &Ctx<'_>) -> Result<i64> {
         if let Some(r) = &self.reshaped {
             return Err(ctx.bad(format!(
                 "node '{r}' reshapes a blocked tensor into its channel blocks; not supported"
             )));
+        }
+        if let Some(b) = ctx.nchwc_block() {
+            return match BLOCK_SIZES.iter().position(|&k| k == b) {
+                None => Err(ctx.bad(format!("NCHWc block size {b} is neither 8 nor 16"))),
+                Some(k) => match &self.ruled_out[k] {
+                    Some(why) => Err(ctx.bad(format!("NCHWc block size {b} does not fit: {why}"))),
+                    None => Ok(b),
+                },
+            };
         }
         match &self.ruled_out {
             [None, Some(_)] => Ok(BLOCK_SIZES[0]),
@@ -488,8 +499,8 @@ impl Region {
             }
             [None, None] => Err(ctx.bad(
                 "the NCHWc block size (8 with AVX2, 16 with AVX-512 or on ARM64) cannot be told \
-                 from the model: every blocked channel count fits both; the weights' layout is \
-                 ambiguous",
+                 from the model: every blocked channel count fits both, and the weights' layout \
+                 depends on it",
             )),
         }
     }
@@ -1351,6 +1362,36 @@ mod tests {
         // A ReorderOutput that no block size explains.
         let e = error(stem(16, 24, 8));
         assert!(e.contains("no NCHWc block size fits"), "{e}");
+    }
+
+    /// A block size given by the caller decides when the shapes do not, and
+    /// is refused when they rule it out.
+    #[test]
+    fn nchwc_block_size_given_by_the_caller() {
+        let m = stem(16, 32, 32);
+        let region = |block: Option<i64>, m: &ModelProto| -> Result<i64> {
+            let g = m.graph.as_ref().unwrap();
+            let external = ExternalData::none();
+            let mut ctx = Ctx::new(g, &g.node, 17, &external);
+            ctx.set_nchwc_block(block);
+            let origin = crate::lower::Origin {
+                name: "c1".into(),
+                op_type: "Conv".into(),
+                domain: NCHWC_DOMAIN.into(),
+                index: 0,
+            };
+            ctx.begin(&origin);
+            Region::of(&ctx).block(&ctx)
+        };
+        assert_eq!(region(Some(16), &m).unwrap(), 16);
+        assert_eq!(region(Some(8), &m).unwrap(), 8);
+        assert!(region(None, &m).is_err());
+        assert!(region(Some(4), &m).unwrap_err().message().contains("neither 8 nor 16"));
+        // 24 channels padded to 32: 8 is ruled out.
+        let m = stem(16, 24, 24);
+        assert_eq!(region(None, &m).unwrap(), 16);
+        let e = region(Some(8), &m).unwrap_err();
+        assert!(e.message().contains("block size 8 does not fit: node 'ro'"), "{}", e.message());
     }
 
     #[test]
