@@ -6,7 +6,10 @@ use std::collections::{HashMap, HashSet};
 
 use crate::error::{Error, Result};
 use crate::load::{ExternalData, tensor};
-use crate::proto::{AttributeProto, GraphProto, NodeProto, TensorProto, attribute_proto};
+use crate::proto::{
+    AttributeProto, GraphProto, NodeProto, TensorProto, attribute_proto, tensor_shape_proto,
+    type_proto,
+};
 
 use super::{Origin, constants, malformed, names_of};
 
@@ -21,6 +24,8 @@ const WEIGHT_BYTES: u64 = 1 << 30;
 pub struct Ctx<'a> {
     /// The default domain's opset of the model.
     pub opset: i64,
+    graph: &'a GraphProto,
+    nodes: &'a [NodeProto],
     names: HashSet<String>,
     consts: HashMap<&'a str, &'a TensorProto>,
     external: &'a ExternalData,
@@ -28,6 +33,7 @@ pub struct Ctx<'a> {
     emitted: usize,
     initializers: Vec<TensorProto>,
     needs_opset: bool,
+    nchwc_block: Option<i64>,
 }
 
 impl<'a> Ctx<'a> {
@@ -39,6 +45,8 @@ impl<'a> Ctx<'a> {
     ) -> Ctx<'a> {
         Ctx {
             opset,
+            graph,
+            nodes,
             names: names_of(graph, nodes),
             consts: constants(graph, nodes),
             external,
@@ -46,6 +54,7 @@ impl<'a> Ctx<'a> {
             emitted: 0,
             initializers: Vec::new(),
             needs_opset: false,
+            nchwc_block: None,
         }
     }
 
@@ -300,6 +309,44 @@ impl<'a> Ctx<'a> {
         let l = self.init_f32("min", &[], vec![lo]);
         let h = self.init_f32("max", &[], vec![hi]);
         vec![self.node("Clip", &[x, &l, &h], &[out], vec![])]
+    }
+
+    /// Every node of the model being lowered, as it was before lowering, for
+    /// rules that must look beyond their node (the blocked-layout region of
+    /// onnxruntime's NCHWc ops).
+    pub fn nodes(&self) -> &'a [NodeProto] {
+        self.nodes
+    }
+
+    /// Sets the NCHWc block size the caller knows the model was written with
+    /// (that of the machine whose onnxruntime optimised it), for the models
+    /// whose shapes fit both block sizes.
+    pub fn set_nchwc_block(&mut self, block: Option<i64>) {
+        self.nchwc_block = block;
+    }
+
+    /// The NCHWc block size the caller gave, if any.
+    pub fn nchwc_block(&self) -> Option<i64> {
+        self.nchwc_block
+    }
+
+    /// The shape a tensor is declared with: a graph input, output or
+    /// `value_info` entry (`None` for a dimension that is not a number), or a
+    /// constant's dims. `None` when nothing declares it.
+    pub fn declared_shape(&self, name: &str) -> Option<Vec<Option<i64>>> {
+        if let Some(t) = self.constant(name) {
+            return Some(t.dims.iter().map(|&d| Some(d)).collect());
+        }
+        let g = self.graph;
+        let v = g.input.iter().chain(&g.output).chain(&g.value_info).find(|v| v.name == name)?;
+        let Some(type_proto::Value::TensorType(tt)) = v.r#type.as_ref()?.value.as_ref() else {
+            return None;
+        };
+        let dims = tt.shape.as_ref()?.dim.iter().map(|d| match d.value {
+            Some(tensor_shape_proto::dimension::Value::DimValue(v)) if v >= 0 => Some(v),
+            _ => None,
+        });
+        Some(dims.collect())
     }
 }
 
