@@ -49,6 +49,15 @@ pub(super) const RULES: &[(&str, &str, Rule)] = &[
     (MS_DOMAIN, "QLinearAdd", qlinear_add),
     (MS_DOMAIN, "QLinearMul", qlinear_mul),
     (MS_DOMAIN, "QLinearGlobalAveragePool", qlinear_global_average_pool),
+    (MS_DOMAIN, "QLinearAveragePool", qlinear_average_pool),
+    (MS_DOMAIN, "QLinearConcat", qlinear_concat),
+    (MS_DOMAIN, "QLinearSigmoid", qlinear_sigmoid),
+    (MS_DOMAIN, "QLinearLeakyRelu", qlinear_leaky_relu),
+    (MS_DOMAIN, "QLinearSoftmax", qlinear_softmax),
+    (MS_DOMAIN, "QLinearReduceMean", qlinear_reduce_mean),
+    (MS_DOMAIN, "QLinearWhere", qlinear_where),
+    (MS_DOMAIN, "DynamicQuantizeMatMul", dynamic_quantize_matmul),
+    (MS_DOMAIN, "MatMulIntegerToFloat", matmul_integer_to_float),
 ];
 
 /// ONNX `TensorProto.DataType` codes used here.
@@ -827,6 +836,302 @@ fn qlinear_global_average_pool(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Re
     Ok(Rewrite::Into(nodes))
 }
 
+/// Emits a float op from its dequantised input (first name) into its output
+/// (second name).
+type FloatOp<'f> = dyn Fn(&mut Ctx<'_>, &str, &str) -> Result<Vec<NodeProto>> + 'f;
+
+/// The unary ops `X, X_scale, X_zero_point?, Y_scale, Y_zero_point?`:
+/// `DequantizeLinear`, the float op (`make` emits it from the dequantised
+/// input into the given output), `QuantizeLinear`.
+fn unary(ctx: &mut Ctx<'_>, node: &NodeProto, make: &FloatOp<'_>) -> Result<Rewrite> {
+    inputs(ctx, node, (4, 5), &[0, 1, 3])?;
+    need_qdq_opset(ctx)?;
+    let x = ctx.required(node, 0)?;
+    let xq = quant(ctx, node, "X", 1, Some(2), Grain::Tensor)?;
+    let yq = quant(ctx, node, "Y", 3, Some(4), Grain::Tensor)?;
+    let ty = same_type(ctx, &[&xq, &yq])?;
+    let (mut nodes, xf) = dequantize(ctx, x, &xq, 1, None)?;
+    let yf = ctx.name("y_float");
+    nodes.extend(make(ctx, &xf, &yf)?);
+    nodes.push(quantize(ctx, &yf, &yq, ty, &node.output[0])?);
+    Ok(Rewrite::Into(nodes))
+}
+
+/// `com.microsoft.QLinearSigmoid` (contrib docs,
+/// "com.microsoft.QLinearSigmoid"): `quantize(Sigmoid(dequantize(X)))`.
+fn qlinear_sigmoid(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
+    copy_attributes(ctx, node, &[], &[])?;
+    unary(ctx, node, &|ctx, x, y| Ok(vec![ctx.node("Sigmoid", &[x], &[y], vec![])]))
+}
+
+/// `com.microsoft.QLinearLeakyRelu` (contrib docs,
+/// "com.microsoft.QLinearLeakyRelu"): `quantize(LeakyRelu(dequantize(X),
+/// alpha))`, alpha 0.01 by default as LeakyRelu's.
+fn qlinear_leaky_relu(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
+    let attrs = copy_attributes(ctx, node, &[("alpha", AttrKind::Float)], &[])?;
+    if let Some(a) = ctx.attr_float(node, "alpha")?
+        && !a.is_finite()
+    {
+        return Err(ctx.bad(format!("alpha is {a}")));
+    }
+    unary(ctx, node, &|ctx, x, y| Ok(vec![ctx.node("LeakyRelu", &[x], &[y], attrs.clone())]))
+}
+
+/// `com.microsoft.QLinearAveragePool` (contrib docs,
+/// "com.microsoft.QLinearAveragePool"): "Dequantize(Input) -> AveragePool on
+/// fp32 data -> Quantize(output)", with AveragePool's attributes. Only
+/// `channels_last=0`.
+fn qlinear_average_pool(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
+    let attrs = copy_attributes(
+        ctx,
+        node,
+        &[
+            ("auto_pad", AttrKind::String),
+            ("ceil_mode", AttrKind::Int),
+            ("count_include_pad", AttrKind::Int),
+            ("kernel_shape", AttrKind::Ints),
+            ("pads", AttrKind::Ints),
+            ("strides", AttrKind::Ints),
+        ],
+        &["channels_last"],
+    )?;
+    if ctx.attr_int(node, "channels_last")?.unwrap_or(0) != 0 {
+        return Err(ctx.bad("channels_last=1 (NHWC) is not supported"));
+    }
+    if ctx.attr_ints(node, "kernel_shape")?.is_none() {
+        return Err(ctx.bad("attribute 'kernel_shape' is missing"));
+    }
+    unary(ctx, node, &|ctx, x, y| Ok(vec![ctx.node("AveragePool", &[x], &[y], attrs.clone())]))
+}
+
+/// `com.microsoft.QLinearReduceMean` (contrib docs,
+/// "com.microsoft.QLinearReduceMean"): "Dequantize(Input) -> ReduceMean on
+/// fp32 data -> Quantize(output)"; `axes` and `keepdims` are required.
+fn qlinear_reduce_mean(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
+    copy_attributes(ctx, node, &[("axes", AttrKind::Ints), ("keepdims", AttrKind::Int)], &[])?;
+    let axes =
+        ctx.attr_ints(node, "axes")?.ok_or_else(|| ctx.bad("attribute 'axes' is missing"))?;
+    let keep = ctx
+        .attr_int(node, "keepdims")?
+        .ok_or_else(|| ctx.bad("attribute 'keepdims' is missing"))?;
+    unary(ctx, node, &|ctx, x, y| Ok(ctx.reduce_mean(x, &axes, keep != 0, y)))
+}
+
+/// `com.microsoft.QLinearSoftmax` (contrib docs,
+/// "com.microsoft.QLinearSoftmax"): Softmax with the semantics of the opset
+/// named by its required `opset` attribute: from 13 along `axis` (default
+/// -1), before 13 over the input coerced to 2-D at `axis` (default 1).
+/// Emitted as `Softmax` when the model's opset has the same semantics;
+/// old semantics in a new model become `Flatten(axis)`, `Softmax(-1)`,
+/// `Reshape` to the input's shape. New semantics in an old model are
+/// supported only for the last axis.
+fn qlinear_softmax(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
+    inputs(ctx, node, (5, 5), &[0, 1, 3, 4])?;
+    copy_attributes(ctx, node, &[("opset", AttrKind::Int), ("axis", AttrKind::Int)], &[])?;
+    let opset =
+        ctx.attr_int(node, "opset")?.ok_or_else(|| ctx.bad("attribute 'opset' is missing"))?;
+    let new = opset >= 13;
+    let axis = ctx.attr_int(node, "axis")?.unwrap_or(if new { -1 } else { 1 });
+    let model_new = ctx.opset >= 13;
+    if new && !model_new && axis != -1 {
+        return Err(ctx.bad(format!(
+            "Softmax-{opset} semantics along axis {axis} cannot be written at the model's opset {} \
+             without the input's rank",
+            ctx.opset
+        )));
+    }
+    let x = ctx.required(node, 0)?.to_owned();
+    unary(ctx, node, &|ctx, xf, y| {
+        if new == model_new || axis == -1 {
+            return Ok(vec![ctx.node("Softmax", &[xf], &[y], vec![emit::int("axis", axis)])]);
+        }
+        // Softmax-1/11 semantics in an opset >= 13 model.
+        let (flat, f) = ctx.node1("Flatten", &[xf], "flat", vec![emit::int("axis", axis)]);
+        let (soft, s) = ctx.node1("Softmax", &[&f], "softmax", vec![emit::int("axis", -1)]);
+        let (shape, sh) = ctx.node1("Shape", &[&x], "shape", vec![]);
+        let back = ctx.node("Reshape", &[&s, &sh], &[y], vec![]);
+        Ok(vec![flat, soft, shape, back])
+    })
+}
+
+/// `com.microsoft.QLinearConcat(Y_scale, Y_zero_point, (X, X_scale,
+/// X_zero_point)…)` with `axis` (contrib docs, "com.microsoft.QLinearConcat"):
+/// each input dequantised, `Concat`, `QuantizeLinear`. (onnxruntime copies
+/// an input whose parameters equal the output's; DequantizeLinear then
+/// QuantizeLinear with equal parameters gives the same integers back.)
+fn qlinear_concat(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
+    let n = node.input.len();
+    if n < 5 || !(n - 2).is_multiple_of(3) {
+        return Err(ctx.bad(format!(
+            "expects Y_scale, Y_zero_point and then (tensor, scale, zero point) triples, has {n} inputs"
+        )));
+    }
+    let required: Vec<usize> = (0..n).filter(|s| *s < 2 || (s - 2) % 3 != 2).collect();
+    inputs(ctx, node, (5, n), &required)?;
+    need_qdq_opset(ctx)?;
+    let attrs = copy_attributes(ctx, node, &[("axis", AttrKind::Int)], &[])?;
+    if ctx.attr_int(node, "axis")?.is_none() {
+        return Err(ctx.bad("attribute 'axis' is missing"));
+    }
+    let yq = quant(ctx, node, "Y", 0, Some(1), Grain::Tensor)?;
+    let mut quants = Vec::new();
+    for k in 0..(n - 2) / 3 {
+        let slot = 2 + 3 * k;
+        quants.push(quant(
+            ctx,
+            node,
+            &format!("input {k}"),
+            slot + 1,
+            Some(slot + 2),
+            Grain::Tensor,
+        )?);
+    }
+    let mut all: Vec<&Quant> = quants.iter().collect();
+    all.push(&yq);
+    let ty = same_type(ctx, &all)?;
+    let mut nodes = Vec::new();
+    let mut floats = Vec::new();
+    for (k, q) in quants.iter().enumerate() {
+        let x = ctx.required(node, 2 + 3 * k)?;
+        check_operand(ctx, x, q)?;
+        let (dq, xf) = dequantize(ctx, x, q, 1, None)?;
+        nodes.extend(dq);
+        floats.push(xf);
+    }
+    let refs: Vec<&str> = floats.iter().map(String::as_str).collect();
+    let (concat, yf) = ctx.node1("Concat", &refs, "y_float", attrs);
+    nodes.push(concat);
+    nodes.push(quantize(ctx, &yf, &yq, ty, &node.output[0])?);
+    Ok(Rewrite::Into(nodes))
+}
+
+/// `com.microsoft.QLinearWhere(condition, X, x_scale, x_zero_point, Y,
+/// y_scale, y_zero_point, z_scale, z_zero_point)` (contrib docs,
+/// "com.microsoft.QLinearWhere"): `Where` of the dequantised X and Y,
+/// quantised with z's parameters.
+fn qlinear_where(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
+    ctx.arity(node, (9, 9), (1, 1))?;
+    need_qdq_opset(ctx)?;
+    copy_attributes(ctx, node, &[], &[])?;
+    let cond = ctx.required(node, 0)?;
+    let x = ctx.required(node, 1)?;
+    let y = ctx.required(node, 4)?;
+    let xq = quant(ctx, node, "X", 2, Some(3), Grain::Tensor)?;
+    let yq = quant(ctx, node, "Y", 5, Some(6), Grain::Tensor)?;
+    let zq = quant(ctx, node, "Z", 7, Some(8), Grain::Tensor)?;
+    let ty = same_type(ctx, &[&xq, &yq, &zq])?;
+    check_operand(ctx, x, &xq)?;
+    check_operand(ctx, y, &yq)?;
+    let (mut nodes, xf) = dequantize(ctx, x, &xq, 1, None)?;
+    let (yn, yf) = dequantize(ctx, y, &yq, 1, None)?;
+    nodes.extend(yn);
+    let (w, zf) = ctx.node1("Where", &[cond, &xf, &yf], "z_float", vec![]);
+    nodes.push(w);
+    nodes.push(quantize(ctx, &zf, &zq, ty, &node.output[0])?);
+    Ok(Rewrite::Into(nodes))
+}
+
+/// `DequantizeLinear(b)` of a MatMul's right operand, per column (its last
+/// axis) when the parameters are per column.
+fn dequantize_columns(
+    ctx: &mut Ctx<'_>,
+    b: &str,
+    bq: &Quant,
+) -> Result<(Vec<NodeProto>, String, Option<usize>)> {
+    check_operand(ctx, b, bq)?;
+    let dims = const_dims(ctx, b);
+    let cols = dims.as_ref().and_then(|d| d.last().copied());
+    if let (Some(n), Some(d)) = (bq.channels, &dims)
+        && cols != Some(n as i64)
+    {
+        return Err(ctx.bad(format!(
+            "{} scale/zero point have {n} values but {} has shape {d:?}",
+            bq.what, bq.what
+        )));
+    }
+    let axis = dims.as_ref().map_or(-1, |d| d.len() as i64 - 1);
+    let (nodes, bf) = dequantize(ctx, b, bq, axis, dims.as_ref().map(Vec::len))?;
+    Ok((nodes, bf, cols.map(|c| c as usize)))
+}
+
+/// `MatMul(a, b)` then, with a float bias, `Add(·, bias)`, into `out`.
+fn matmul_bias(
+    ctx: &mut Ctx<'_>,
+    a: &str,
+    b: &str,
+    bias: Option<&str>,
+    out: &str,
+) -> Vec<NodeProto> {
+    match bias {
+        None => vec![ctx.node("MatMul", &[a, b], &[out], vec![])],
+        Some(bias) => {
+            let (mm, y) = ctx.node1("MatMul", &[a, b], "matmul", vec![]);
+            vec![mm, ctx.node("Add", &[&y, bias], &[out], vec![])]
+        }
+    }
+}
+
+/// `com.microsoft.DynamicQuantizeMatMul(A, B, b_scale, b_zero_point?,
+/// bias?)` (contrib docs, "com.microsoft.DynamicQuantizeMatMul"): A (float)
+/// is quantised to uint8 at run time as DynamicQuantizeLinear does, then
+/// multiplied with B (per tensor or per column), bias added; float output.
+/// → `DynamicQuantizeLinear(A)`, `DequantizeLinear` × 2, `MatMul`, `Add`.
+fn dynamic_quantize_matmul(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
+    inputs(ctx, node, (3, 5), &[0, 1, 2])?;
+    copy_attributes(ctx, node, &[], &[])?;
+    if ctx.opset < 11 {
+        return Err(ctx.bad(format!(
+            "the model imports opset {}; DynamicQuantizeLinear needs opset >= 11",
+            ctx.opset
+        )));
+    }
+    let a = ctx.required(node, 0)?;
+    let b = ctx.required(node, 1)?;
+    let bq = quant(ctx, node, "B", 2, Some(3), Grain::Channel)?;
+    let aq_name = ctx.name("a_quantized");
+    let as_name = ctx.name("a_scale");
+    let az_name = ctx.name("a_zero_point");
+    let dql = ctx.node("DynamicQuantizeLinear", &[a], &[&aq_name, &as_name, &az_name], vec![]);
+    let aq = Quant {
+        what: "A".into(),
+        scale: as_name.clone(),
+        zero: Some(az_name.clone()),
+        ty: Some(QType::U8),
+        scales: None,
+        zeros: None,
+        channels: None,
+        maybe_channels: false,
+    };
+    let mut nodes = vec![dql];
+    let (an, af) = dequantize(ctx, &aq_name, &aq, 1, None)?;
+    nodes.extend(an);
+    let (bn, bf, _) = dequantize_columns(ctx, b, &bq)?;
+    nodes.extend(bn);
+    nodes.extend(matmul_bias(ctx, &af, &bf, ctx.input(node, 4), &node.output[0]));
+    Ok(Rewrite::Into(nodes))
+}
+
+/// `com.microsoft.MatMulIntegerToFloat(A, B, a_scale, b_scale,
+/// a_zero_point?, b_zero_point?, bias?)` (contrib docs,
+/// "com.microsoft.MatMulIntegerToFloat"): `(A - a_zp)(B - b_zp) a_scale
+/// b_scale + bias`, float output; A per tensor (a per-column A scale, as
+/// the document allows, is not supported), B per tensor or per column. →
+/// `DequantizeLinear` × 2, `MatMul`, `Add`.
+fn matmul_integer_to_float(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
+    inputs(ctx, node, (4, 7), &[0, 1, 2, 3])?;
+    need_qdq_opset(ctx)?;
+    copy_attributes(ctx, node, &[], &[])?;
+    let a = ctx.required(node, 0)?;
+    let b = ctx.required(node, 1)?;
+    let aq = quant(ctx, node, "A", 2, Some(4), Grain::Tensor)?;
+    let bq = quant(ctx, node, "B", 3, Some(5), Grain::Channel)?;
+    let (mut nodes, af) = dequantize(ctx, a, &aq, 1, None)?;
+    let (bn, bf, _) = dequantize_columns(ctx, b, &bq)?;
+    nodes.extend(bn);
+    nodes.extend(matmul_bias(ctx, &af, &bf, ctx.input(node, 6), &node.output[0]));
+    Ok(Rewrite::Into(nodes))
+}
+
 #[cfg(test)]
 mod tests {
     //! Rules checked against the ONNX specification (QLinearConv-10,
@@ -1209,5 +1514,177 @@ mod tests {
         c.opset = 9;
         c.node(MS_DOMAIN, "QLinearAdd", &["a", "as", "az", "b", "bs", "bz", "cs", "cz"], vec![]);
         assert!(err(&c).contains("opset >= 10"));
+    }
+
+    /// The operands of a unary op: X and Y uint8 with scalar parameters.
+    fn unary_case(opset: i64) -> Case {
+        let mut c = Case::new(opset);
+        c.f32("xs", &[], &[0.5]).int("xz", UINT8, &[], &[128]).f32("ys", &[], &[0.25]).int(
+            "yz",
+            UINT8,
+            &[],
+            &[0],
+        );
+        c
+    }
+
+    // Contrib docs, "com.microsoft.QLinearSigmoid" / "QLinearLeakyRelu":
+    // quantize(f(dequantize(X))); the activation is a single node.
+    #[test]
+    fn activations() {
+        let mut c = unary_case(17);
+        c.node(MS_DOMAIN, "QLinearSigmoid", &["x", "xs", "xz", "ys", "yz"], vec![]);
+        let l = c.lower().unwrap();
+        assert_eq!(ops(&l), ["DequantizeLinear", "Sigmoid", "QuantizeLinear"]);
+        let mut c = unary_case(17);
+        c.node(
+            MS_DOMAIN,
+            "QLinearLeakyRelu",
+            &["x", "xs", "xz", "ys", "yz"],
+            vec![emit::float("alpha", 0.2)],
+        );
+        let l = c.lower().unwrap();
+        assert_eq!(ops(&l), ["DequantizeLinear", "LeakyRelu", "QuantizeLinear"]);
+        assert_eq!(nodes(&l)[1].attribute[0].f, 0.2);
+        c.nodes[0].attribute[0] = emit::int("alpha", 1);
+        assert!(err(&c).contains("attribute 'alpha'"));
+        c.nodes[0].attribute.clear();
+        c.nodes[0].input.truncate(3);
+        assert!(err(&c).contains("expects 4 to 5 inputs"));
+    }
+
+    // Contrib docs, "com.microsoft.QLinearAveragePool" and
+    // "QLinearReduceMean": DQ → float op → Q.
+    #[test]
+    fn pools_and_reduce_mean() {
+        let mut c = unary_case(17);
+        c.node(
+            MS_DOMAIN,
+            "QLinearAveragePool",
+            &["x", "xs", "xz", "ys", "yz"],
+            vec![emit::ints("kernel_shape", &[2, 2]), emit::int("count_include_pad", 1)],
+        );
+        let l = c.lower().unwrap();
+        assert_eq!(ops(&l), ["DequantizeLinear", "AveragePool", "QuantizeLinear"]);
+        assert_eq!(nodes(&l)[1].attribute.len(), 2);
+        c.nodes[0].attribute.push(emit::int("channels_last", 1));
+        assert!(err(&c).contains("channels_last=1"));
+        c.nodes[0].attribute.remove(0);
+        c.nodes[0].attribute.pop();
+        assert!(err(&c).contains("'kernel_shape' is missing"));
+        // ReduceMean: axes an attribute before opset 18, an input from 18.
+        for (opset, inputs) in [(17, 1), (18, 2)] {
+            let mut c = unary_case(opset);
+            c.node(
+                MS_DOMAIN,
+                "QLinearReduceMean",
+                &["x", "xs", "xz", "ys", "yz"],
+                vec![emit::ints("axes", &[2, 3]), emit::int("keepdims", 1)],
+            );
+            let l = c.lower().unwrap();
+            assert_eq!(ops(&l), ["DequantizeLinear", "ReduceMean", "QuantizeLinear"]);
+            assert_eq!(nodes(&l)[1].input.len(), inputs);
+            c.nodes[0].attribute.pop();
+            assert!(err(&c).contains("'keepdims' is missing"));
+        }
+    }
+
+    // Contrib docs, "com.microsoft.QLinearSoftmax": the `opset` attribute
+    // names the Softmax semantics.
+    #[test]
+    fn softmax_semantics() {
+        let soft = |model_opset: i64, op_opset: i64, axis: Option<i64>| {
+            let mut c = unary_case(model_opset);
+            let mut attrs = vec![emit::int("opset", op_opset)];
+            attrs.extend(axis.map(|a| emit::int("axis", a)));
+            c.node(MS_DOMAIN, "QLinearSoftmax", &["x", "xs", "xz", "ys", "yz"], attrs);
+            c.lower().map(|l| ops(&l))
+        };
+        let plain = ["DequantizeLinear", "Softmax", "QuantizeLinear"];
+        assert_eq!(soft(17, 13, None).unwrap(), plain);
+        assert_eq!(soft(11, 11, Some(1)).unwrap(), plain);
+        assert_eq!(soft(11, 13, None).unwrap(), plain);
+        assert_eq!(
+            soft(17, 11, None).unwrap(),
+            ["DequantizeLinear", "Flatten", "Softmax", "Shape", "Reshape", "QuantizeLinear"]
+        );
+        let e = soft(11, 13, Some(1)).unwrap_err().message().to_owned();
+        assert!(e.contains("axis 1"), "{e}");
+        let mut c = unary_case(17);
+        c.node(MS_DOMAIN, "QLinearSoftmax", &["x", "xs", "xz", "ys", "yz"], vec![]);
+        assert!(err(&c).contains("'opset' is missing"));
+    }
+
+    // Contrib docs, "com.microsoft.QLinearConcat": Y's parameters, then
+    // (tensor, scale, zero point) triples.
+    #[test]
+    fn concat() {
+        let mut c = unary_case(17);
+        let attrs = vec![emit::int("axis", 1)];
+        c.node(
+            MS_DOMAIN,
+            "QLinearConcat",
+            &["ys", "yz", "a", "xs", "xz", "b", "xs", ""],
+            attrs.clone(),
+        );
+        let l = c.lower().unwrap();
+        assert_eq!(ops(&l), ["DequantizeLinear", "DequantizeLinear", "Concat", "QuantizeLinear"]);
+        assert_eq!(nodes(&l)[1].input.len(), 2);
+        c.nodes[0].input.pop();
+        assert!(err(&c).contains("triples"));
+        c.nodes[0].input[3] = String::new();
+        c.nodes[0].input.push("xz".into());
+        assert!(err(&c).contains("input 3 is missing"));
+        c.nodes[0].input[3] = "xs".into();
+        c.nodes[0].attribute.clear();
+        assert!(err(&c).contains("'axis' is missing"));
+    }
+
+    // Contrib docs, "com.microsoft.QLinearWhere".
+    #[test]
+    fn where_op() {
+        let mut c = unary_case(17);
+        c.node(
+            MS_DOMAIN,
+            "QLinearWhere",
+            &["cond", "a", "xs", "xz", "b", "xs", "xz", "ys", "yz"],
+            vec![],
+        );
+        let l = c.lower().unwrap();
+        assert_eq!(ops(&l), ["DequantizeLinear", "DequantizeLinear", "Where", "QuantizeLinear"]);
+        assert_eq!(nodes(&l)[2].input[0], "cond");
+    }
+
+    // Contrib docs, "com.microsoft.DynamicQuantizeMatMul" and
+    // "MatMulIntegerToFloat": float outputs, B per column, bias added.
+    #[test]
+    fn float_output_matmuls() {
+        let mut c = Case::new(17);
+        c.int("b", INT8, &[3, 2], &[1, 2, 3, 4, 5, 6])
+            .f32("bs", &[2], &[0.1, 0.2])
+            .int("bz", INT8, &[2], &[0, 1])
+            .f32("bias", &[2], &[1.0, 2.0])
+            .f32("as", &[], &[0.5]);
+        c.node(MS_DOMAIN, "DynamicQuantizeMatMul", &["a", "b", "bs", "bz", "bias"], vec![]);
+        let l = c.lower().unwrap();
+        assert_eq!(
+            ops(&l),
+            ["DynamicQuantizeLinear", "DequantizeLinear", "DequantizeLinear", "MatMul", "Add"]
+        );
+        let n = nodes(&l);
+        assert_eq!(n[1].input, n[0].output);
+        assert_eq!(axis(&n[2]), Some(1));
+        assert_eq!(n[4].output, ["out"]);
+        c.opset = 10;
+        assert!(err(&c).contains("opset >= 11"));
+        c.opset = 17;
+        c.nodes.clear();
+        c.node(MS_DOMAIN, "MatMulIntegerToFloat", &["a", "b", "as", "bs"], vec![]);
+        let l = c.lower().unwrap();
+        assert_eq!(ops(&l), ["DequantizeLinear", "DequantizeLinear", "MatMul"]);
+        assert_eq!(nodes(&l)[2].output, ["out"]);
+        c.nodes[0].input[3] = "as".into();
+        c.nodes[0].input[2] = "bs".into();
+        assert!(err(&c).contains("A scale 'bs' has shape [2], expected a scalar"));
     }
 }
