@@ -462,8 +462,10 @@ fn quick_gelu(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
 /// `scale` defaults to `1/sqrt(d)`. `mask_index` must be the 2-D raw mask
 /// `[B, T]` (a `Reshape(mask, [0, 0])` fails at run time on any other rank):
 /// positions with mask 0 get `mask_filter_value` (default -10000) added.
-/// `unidirectional = 1` adds `mask_filter_value` to the scores of later
-/// positions (opset >= 11 for Range). `past`, `attention_bias`,
+/// `unidirectional = 1` adds the lowest float to the scores of later
+/// positions (opset >= 11 for Range): onnxruntime 1.23.2 gives later keys
+/// no weight at all, even in a row whose earlier keys are all padding
+/// (checked by running both; adding `mask_filter_value` there would not). `past`, `attention_bias`,
 /// `past_sequence_length`, a `present` output, `do_rotary` and
 /// `past_present_share_buffer` are refused.
 fn attention(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
@@ -617,8 +619,8 @@ fn attention(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
         let (n, later) = ctx.node1("Greater", &[&cols, &rows], "later", vec![]);
         out.push(n);
         let zero = ctx.init_f32("zero", &[], vec![0.0]);
-        let f = ctx.init_f32("mask_filter", &[], vec![filter]);
-        let (n, causal) = ctx.node1("Where", &[&later, &f, &zero], "causal", vec![]);
+        let lowest = ctx.init_f32("lowest", &[], vec![f32::MIN]);
+        let (n, causal) = ctx.node1("Where", &[&later, &lowest, &zero], "causal", vec![]);
         out.push(n);
         let (n, masked) = ctx.node1("Add", &[&scores, &causal], "scores_causal", vec![]);
         out.push(n);
