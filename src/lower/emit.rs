@@ -34,6 +34,10 @@ pub struct Ctx<'a> {
     initializers: Vec<TensorProto>,
     needs_opset: bool,
     nchwc_block: Option<i64>,
+    /// Ranks declared for graph inputs, outputs and `value_info`, and the
+    /// producer of each tensor, for [`Ctx::rank`].
+    declared_ranks: HashMap<&'a str, usize>,
+    producers: HashMap<&'a str, &'a NodeProto>,
 }
 
 impl<'a> Ctx<'a> {
@@ -55,6 +59,17 @@ impl<'a> Ctx<'a> {
             initializers: Vec::new(),
             needs_opset: false,
             nchwc_block: None,
+            declared_ranks: graph
+                .input
+                .iter()
+                .chain(&graph.output)
+                .chain(&graph.value_info)
+                .filter_map(|v| Some((v.name.as_str(), declared_rank(v)?)))
+                .collect(),
+            producers: nodes
+                .iter()
+                .flat_map(|n| n.output.iter().map(move |o| (o.as_str(), n)))
+                .collect(),
         }
     }
 
@@ -347,6 +362,52 @@ impl<'a> Ctx<'a> {
             _ => None,
         });
         Some(dims.collect())
+    }
+
+    /// The rank of a tensor when it is known without running the model: a
+    /// constant's, a declared one (graph input, output, `value_info`), or one
+    /// followed through `Cast`, `Identity` and the reductions with
+    /// `keepdims = 0` and constant axes. `None` when unknown.
+    pub fn rank(&self, name: &str) -> Option<usize> {
+        self.rank_at(name, 0)
+    }
+
+    fn rank_at(&self, name: &str, depth: usize) -> Option<usize> {
+        if let Some(t) = self.constant(name) {
+            return Some(t.dims.len());
+        }
+        if let Some(&r) = self.declared_ranks.get(name) {
+            return Some(r);
+        }
+        let node = self.producers.get(name).filter(|_| depth < 64)?;
+        let input = node.input.first()?;
+        match node.op_type.as_str() {
+            "Cast" | "Identity" => self.rank_at(input, depth + 1),
+            op if op.starts_with("Reduce") => {
+                let keep = crate::load::attr::int(&node.attribute, "keepdims").unwrap_or(1);
+                let r = self.rank_at(input, depth + 1)?;
+                if keep != 0 {
+                    return Some(r);
+                }
+                let axes = match crate::load::attr::ints(&node.attribute, "axes") {
+                    Some(a) => a.len(),
+                    None => {
+                        self.constant(node.input.get(1)?)?.dims.iter().product::<i64>() as usize
+                    }
+                };
+                r.checked_sub(axes)
+            }
+            _ => None,
+        }
+    }
+}
+
+/// The rank a `ValueInfoProto` declares, if it declares a tensor shape.
+fn declared_rank(v: &crate::proto::ValueInfoProto) -> Option<usize> {
+    use crate::proto::type_proto::Value;
+    match v.r#type.as_ref()?.value.as_ref()? {
+        Value::TensorType(t) => Some(t.shape.as_ref()?.dim.len()),
+        _ => None,
     }
 }
 

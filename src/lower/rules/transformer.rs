@@ -46,6 +46,11 @@ fn bias_add(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
     Ok(Rewrite::Into(vec![biased_node, merge]))
 }
 
+/// An int32 scalar tensor (name set by [`Ctx::init`]).
+fn int32_scalar(v: i32) -> crate::proto::TensorProto {
+    crate::proto::TensorProto { data_type: 6, int32_data: vec![v], ..Default::default() }
+}
+
 /// A named optional output of `node`.
 fn output(node: &NodeProto, slot: usize) -> Option<&str> {
     node.output.get(slot).map(String::as_str).filter(|s| !s.is_empty())
@@ -231,8 +236,7 @@ fn swap_last_two(ctx: &mut Ctx<'_>, x: &str, out: &mut Vec<NodeProto>) -> Result
             ctx.opset
         )));
     }
-    let (n, y) =
-        ctx.node1("Einsum", &[x], "transposed", vec![string("equation", "...ij->...ji")]);
+    let (n, y) = ctx.node1("Einsum", &[x], "transposed", vec![string("equation", "...ij->...ji")]);
     out.push(n);
     Ok(y)
 }
@@ -296,13 +300,14 @@ fn fused_gemm(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
         "HardSigmoid" => (true, true, false),
         "Selu" => (true, false, true),
         other => {
-            return Err(ctx.bad(format!(
-                "activation '{other}' is not supported (no standard ONNX op)"
-            )));
+            return Err(
+                ctx.bad(format!("activation '{other}' is not supported (no standard ONNX op)"))
+            );
         }
     };
     let mut act_attrs = Vec::new();
-    for (value, wanted, name) in [(a, takes.0, "alpha"), (b, takes.1, "beta"), (g, takes.2, "gamma")]
+    for (value, wanted, name) in
+        [(a, takes.0, "alpha"), (b, takes.1, "beta"), (g, takes.2, "gamma")]
     {
         if let (Some(v), true) = (value, wanted) {
             act_attrs.push(float(name, v));
@@ -362,7 +367,8 @@ fn gelu_tanh(ctx: &mut Ctx<'_>, x: &str, y: &str, out: &mut Vec<NodeProto>) {
     out.push(n);
     let (n, inner) = ctx.node1("Add", &[x, &term], "inner", vec![]);
     out.push(n);
-    let beta = ctx.init_f32("sqrt_2_over_pi", &[], vec![(2.0 / std::f64::consts::PI).sqrt() as f32]);
+    let beta =
+        ctx.init_f32("sqrt_2_over_pi", &[], vec![(2.0 / std::f64::consts::PI).sqrt() as f32]);
     let (n, arg) = ctx.node1("Mul", &[&inner, &beta], "tanh_arg", vec![]);
     out.push(n);
     let (n, t) = ctx.node1("Tanh", &[&arg], "tanh", vec![]);
@@ -459,9 +465,13 @@ fn quick_gelu(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
 /// Q, K, V, each reshaped to `[B, S, heads, d]` (Reshape's 0 copies B and S,
 /// so any batch and length work) and transposed to heads first;
 /// `Softmax(Q K^T * scale + masks) V`, heads merged back to `[B, S, Hv]`.
-/// `scale` defaults to `1/sqrt(d)`. `mask_index` must be the 2-D raw mask
-/// `[B, T]` (a `Reshape(mask, [0, 0])` fails at run time on any other rank):
-/// positions with mask 0 get `mask_filter_value` (default -10000) added.
+/// `scale` defaults to `1/sqrt(d)`. `mask_index` is either the 2-D raw mask
+/// `[B, T]` (keys with mask 0 masked) or the 1-D key lengths `[B]` (right
+/// padding, keys at or past the length masked; the form onnxruntime's BERT
+/// optimiser writes, from a ReduceSum of the raw mask), told apart by the
+/// rank [`Ctx::rank`] finds; masked keys get `mask_filter_value` (default
+/// -10000) added. Other forms (`[2B]`, `[3B + 2]`, 3-D, 4-D) and a mask of
+/// unknown rank are refused.
 /// `unidirectional = 1` adds the lowest float to the scores of later
 /// positions (opset >= 11 for Range): onnxruntime 1.23.2 gives later keys
 /// no weight at all, even in a row whose earlier keys are all padding
@@ -524,10 +534,9 @@ fn attention(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
     if let Some(t) = ctx.constant(w)
         && (t.dims.len() != 2 || t.dims[1] != sizes.iter().sum::<i64>())
     {
-        return Err(ctx.bad(format!(
-            "weights of shape {:?} do not match hidden sizes {sizes:?}",
-            t.dims
-        )));
+        return Err(
+            ctx.bad(format!("weights of shape {:?} do not match hidden sizes {sizes:?}", t.dims))
+        );
     }
     if sizes[0] % heads != 0 || sizes[2] % heads != 0 {
         return Err(ctx.bad(format!("hidden sizes {sizes:?} do not divide by {heads} heads")));
@@ -582,16 +591,65 @@ fn attention(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
     let (n, mut scores) = ctx.node1("Mul", &[&qk, &s], "scores", vec![]);
     out.push(n);
     if let Some(mask) = ctx.input(node, 3) {
-        let shape = ctx.init_i64("mask_shape", &[2], vec![0, 0]);
-        let (n, m2) = ctx.node1("Reshape", &[mask, &shape], "mask_2d", vec![]);
-        out.push(n);
-        let zero_i = ctx.init("mask_zero", crate::proto::TensorProto {
-            data_type: 6,
-            int32_data: vec![0],
-            ..Default::default()
-        });
-        let (n, keep) = ctx.node1("Greater", &[&m2, &zero_i], "mask_keep", vec![]);
-        out.push(n);
+        let keep = match ctx.rank(mask) {
+            Some(2) => {
+                // Raw mask [B, T]: 0 masks a key, anything above 0 keeps it.
+                let zero_i = ctx.init("mask_zero", int32_scalar(0));
+                let (n, keep) = ctx.node1("Greater", &[mask, &zero_i], "mask_keep", vec![]);
+                out.push(n);
+                keep
+            }
+            Some(1) if ctx.opset < 11 => {
+                return Err(ctx.bad(format!(
+                    "a mask_index of key lengths needs Range (opset >= 11); the model has opset {}",
+                    ctx.opset
+                )));
+            }
+            Some(1) => {
+                // Key lengths [B] (right padding): key j is kept when j < len[b].
+                // Reshaping to [B, 1] with B taken from the input refuses, at
+                // run time, the [2B] and [3B + 2] forms of the same rank.
+                let (n, shape) = ctx.node1("Shape", &[x], "input_shape", vec![]);
+                out.push(n);
+                let first = ctx.init_i64("batch_axis", &[1], vec![0]);
+                let (n, batch) =
+                    ctx.node1("Gather", &[&shape, &first], "batch", vec![int("axis", 0)]);
+                out.push(n);
+                let one = ctx.init_i64("one", &[1], vec![1]);
+                let (n, col) =
+                    ctx.node1("Concat", &[&batch, &one], "lengths_shape", vec![int("axis", 0)]);
+                out.push(n);
+                let (n, lens) = ctx.node1("Reshape", &[mask, &col], "lengths", vec![]);
+                out.push(n);
+                let (n, lens64) = ctx.node1("Cast", &[&lens], "lengths_i64", vec![int("to", 7)]);
+                out.push(n);
+                let (n, kshape) = ctx.node1("Shape", &[&k], "key_shape", vec![]);
+                out.push(n);
+                let last = ctx.init_i64("key_axis", &[], vec![3]);
+                let (n, total) =
+                    ctx.node1("Gather", &[&kshape, &last], "key_len", vec![int("axis", 0)]);
+                out.push(n);
+                let start = ctx.init_i64("range_start", &[], vec![0]);
+                let step = ctx.init_i64("range_step", &[], vec![1]);
+                let (n, pos) =
+                    ctx.node1("Range", &[&start, &total, &step], "key_positions", vec![]);
+                out.push(n);
+                let (n, keep) = ctx.node1("Less", &[&pos, &lens64], "mask_keep", vec![]);
+                out.push(n);
+                keep
+            }
+            Some(r) => {
+                return Err(ctx.bad(format!(
+                    "mask_index of rank {r} is not supported (only [B, T] raw masks and [B] lengths)"
+                )));
+            }
+            None => {
+                return Err(ctx.bad(
+                    "mask_index has no known rank (declare its shape in value_info), \
+                     so its form cannot be told",
+                ));
+            }
+        };
         let zero = ctx.init_f32("zero", &[], vec![0.0]);
         let f = ctx.init_f32("mask_filter", &[], vec![filter]);
         let (n, add) = ctx.node1("Where", &[&keep, &zero, &f], "mask_add", vec![]);
@@ -636,4 +694,415 @@ fn attention(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
     let shape = ctx.init_i64("output_shape", &[3], vec![0, 0, sizes[2]]);
     out.push(ctx.node("Reshape", &[&merged, &shape], &[&node.output[0]], vec![]));
     Ok(Rewrite::Into(out))
+}
+
+#[cfg(test)]
+mod tests {
+    //! Each test cites the contrib docs section (onnxruntime 1.23,
+    //! docs/ContribOperators.md) whose semantics it checks; numeric agreement
+    //! with onnxruntime is checked on the per-op fixtures.
+    use super::*;
+    use crate::load::ExternalData;
+    use crate::lower::{Lowered, lower};
+    use crate::proto::{
+        AttributeProto, GraphProto, ModelProto, OperatorSetIdProto, TensorProto, TensorShapeProto,
+        TypeProto, ValueInfoProto, tensor_shape_proto, type_proto,
+    };
+
+    fn f32_init(name: &str, dims: &[i64]) -> TensorProto {
+        let n = dims.iter().product::<i64>() as usize;
+        TensorProto {
+            name: name.into(),
+            dims: dims.to_vec(),
+            data_type: 1,
+            float_data: vec![0.5; n],
+            ..Default::default()
+        }
+    }
+
+    fn value(name: &str, elem_type: i32, rank: usize) -> ValueInfoProto {
+        let dim = tensor_shape_proto::Dimension {
+            value: Some(tensor_shape_proto::dimension::Value::DimValue(2)),
+            ..Default::default()
+        };
+        ValueInfoProto {
+            name: name.into(),
+            r#type: Some(TypeProto {
+                value: Some(type_proto::Value::TensorType(type_proto::Tensor {
+                    elem_type,
+                    shape: Some(TensorShapeProto { dim: vec![dim; rank] }),
+                })),
+                ..Default::default()
+            }),
+            ..Default::default()
+        }
+    }
+
+    /// A model of `nodes` with the given initializers and graph inputs.
+    fn model(
+        opset: i64,
+        nodes: Vec<NodeProto>,
+        inits: Vec<TensorProto>,
+        inputs: Vec<ValueInfoProto>,
+    ) -> ModelProto {
+        ModelProto {
+            ir_version: 8,
+            opset_import: vec![
+                OperatorSetIdProto { domain: String::new(), version: opset },
+                OperatorSetIdProto { domain: MS_DOMAIN.into(), version: 1 },
+            ],
+            graph: Some(GraphProto {
+                name: "g".into(),
+                node: nodes,
+                initializer: inits,
+                input: inputs,
+                ..Default::default()
+            }),
+            ..Default::default()
+        }
+    }
+
+    fn ms(
+        op: &str,
+        inputs: &[&str],
+        outputs: &[&str],
+        attribute: Vec<AttributeProto>,
+    ) -> NodeProto {
+        NodeProto {
+            name: format!("{op}_n"),
+            op_type: op.into(),
+            domain: MS_DOMAIN.into(),
+            input: inputs.iter().map(|s| (*s).into()).collect(),
+            output: outputs.iter().map(|s| (*s).into()).collect(),
+            attribute,
+            ..Default::default()
+        }
+    }
+
+    fn run(opset: i64, node: NodeProto, inits: Vec<TensorProto>) -> Result<Lowered> {
+        run_with(opset, node, inits, vec![])
+    }
+
+    fn run_with(
+        opset: i64,
+        node: NodeProto,
+        inits: Vec<TensorProto>,
+        inputs: Vec<ValueInfoProto>,
+    ) -> Result<Lowered> {
+        lower(model(opset, vec![node], inits, inputs), &ExternalData::none())
+    }
+
+    fn nodes(l: &Lowered) -> &[NodeProto] {
+        &l.model.graph.as_ref().unwrap().node
+    }
+
+    fn ops(l: &Lowered) -> Vec<&str> {
+        nodes(l).iter().map(|n| n.op_type.as_str()).collect()
+    }
+
+    fn find<'a>(l: &'a Lowered, op: &str) -> Vec<&'a NodeProto> {
+        nodes(l).iter().filter(|n| n.op_type == op).collect()
+    }
+
+    fn producer<'a>(l: &'a Lowered, out: &str) -> &'a NodeProto {
+        nodes(l).iter().find(|n| n.output.iter().any(|o| o == out)).expect("a producer")
+    }
+
+    fn err(r: Result<Lowered>) -> String {
+        let e = r.expect_err("an error");
+        let m = e.message().to_owned();
+        assert!(m.contains("_n'"), "the error names the node: {m}");
+        m
+    }
+
+    fn ln_inits() -> Vec<TensorProto> {
+        vec![f32_init("gamma", &[8]), f32_init("beta", &[8]), f32_init("bias", &[8])]
+    }
+
+    // Contrib docs, com.microsoft.SkipLayerNormalization: the sum is
+    // input + skip + bias; with the bias on the branch side the merge Add's
+    // inputs are the biased branch and the skip, and the sum keeps output 3's name.
+    #[test]
+    fn skip_layer_norm_opset17_is_merge_then_layer_norm() {
+        let n = ms(
+            "SkipLayerNormalization",
+            &["input", "skip", "gamma", "beta", "bias"],
+            &["out", "", "", "sum"],
+            vec![float("epsilon", 1e-5)],
+        );
+        let l = run(17, n, ln_inits()).unwrap();
+        assert_eq!(ops(&l), ["Add", "Add", "LayerNormalization"]);
+        let biased = producer(&l, "sum");
+        assert_eq!(biased.input[1], "skip");
+        let first = producer(&l, &biased.input[0]);
+        assert_eq!(first.input, ["input", "bias"]);
+        let ln = find(&l, "LayerNormalization")[0];
+        assert_eq!(ln.input, ["sum", "gamma", "beta"]);
+        assert_eq!(ln.output, ["out"]);
+        assert_eq!(l.rewrites.len(), 1);
+    }
+
+    // Below opset 17 the layer norm is spelled as PyTorch's exporter spells it
+    // (fixtures/torch/encoder_prenorm_decomposed.onnx); mean and inv_std_var
+    // (keepdims) keep their names.
+    #[test]
+    fn skip_layer_norm_opset16_is_decomposed_with_statistics() {
+        let n = ms(
+            "SkipLayerNormalization",
+            &["input", "skip", "gamma", "beta"],
+            &["out", "mean", "inv", "sum"],
+            vec![],
+        );
+        let l = run(16, n, ln_inits()).unwrap();
+        assert_eq!(
+            ops(&l),
+            [
+                "Add",
+                "ReduceMean",
+                "Sub",
+                "Pow",
+                "ReduceMean",
+                "Add",
+                "Sqrt",
+                "Reciprocal",
+                "Div",
+                "Mul",
+                "Add"
+            ]
+        );
+        assert_eq!(producer(&l, "sum").input, ["input", "skip"]);
+        assert_eq!(producer(&l, "mean").op_type, "ReduceMean");
+        assert_eq!(producer(&l, "inv").op_type, "Reciprocal");
+        assert_eq!(producer(&l, "out").op_type, "Add");
+        // Default epsilon 1e-12 (contrib docs, attribute epsilon).
+        let g = l.model.graph.as_ref().unwrap();
+        assert!(g.initializer.iter().any(|t| t.float_data == [1e-12]));
+    }
+
+    // Contrib docs, com.microsoft.SkipSimplifiedLayerNormalization: RMS norm.
+    #[test]
+    fn skip_simplified_layer_norm_forms() {
+        let inits = || vec![f32_init("gamma", &[8]), f32_init("bias", &[8])];
+        let n = || {
+            ms("SkipSimplifiedLayerNormalization", &["input", "skip", "gamma"], &["out"], vec![])
+        };
+        let l = run(17, n(), inits()).unwrap();
+        assert_eq!(ops(&l), ["Add", "Pow", "ReduceMean", "Add", "Sqrt", "Div", "Mul"]);
+        let l = run(23, n(), inits()).unwrap();
+        assert_eq!(ops(&l), ["Add", "RMSNormalization"]);
+        let with_bias = ms(
+            "SkipSimplifiedLayerNormalization",
+            &["input", "skip", "gamma", "bias"],
+            &["out", "", "inv", "sum"],
+            vec![],
+        );
+        let l = run(23, with_bias, inits()).unwrap();
+        assert_eq!(producer(&l, "inv").op_type, "Reciprocal", "inv_std_var needs the spelled form");
+        assert_eq!(producer(&l, "sum").input[1], "skip");
+        let mean = ms(
+            "SkipSimplifiedLayerNormalization",
+            &["input", "skip", "gamma"],
+            &["out", "mean"],
+            vec![],
+        );
+        assert!(err(run(17, mean, inits())).contains("mean"));
+    }
+
+    #[test]
+    fn malformed_skip_norms_are_errors() {
+        let short = ms("SkipLayerNormalization", &["input", "skip"], &["out"], vec![]);
+        assert!(err(run(17, short, ln_inits())).contains("expects 3 to 5 inputs"));
+        let typed = ms(
+            "SkipLayerNormalization",
+            &["input", "skip", "gamma"],
+            &["out"],
+            vec![int("epsilon", 1)],
+        );
+        assert!(err(run(17, typed, ln_inits())).contains("epsilon"));
+        let negative = ms(
+            "SkipLayerNormalization",
+            &["input", "skip", "gamma"],
+            &["out"],
+            vec![float("epsilon", -1.0)],
+        );
+        err(run(17, negative, ln_inits()));
+    }
+
+    // Contrib docs, com.microsoft.FusedMatMul: alpha * op(A) @ op(B).
+    #[test]
+    fn fused_matmul_transposes_and_scales() {
+        let n = ms(
+            "FusedMatMul",
+            &["a", "w"],
+            &["y"],
+            vec![int("transA", 1), int("transB", 1), float("alpha", 0.5)],
+        );
+        let l = run(17, n, vec![f32_init("w", &[6, 8])]).unwrap();
+        assert_eq!(ops(&l), ["Einsum", "Transpose", "MatMul", "Mul"]);
+        assert_eq!(find(&l, "Transpose")[0].attribute[0].ints, [1, 0]);
+        assert_eq!(producer(&l, "y").op_type, "Mul");
+        let plain = ms("FusedMatMul", &["a", "b"], &["y"], vec![]);
+        assert_eq!(ops(&run(17, plain, vec![]).unwrap()), ["MatMul"]);
+        let batch = ms("FusedMatMul", &["a", "b"], &["y"], vec![int("transBatchA", 1)]);
+        assert!(err(run(17, batch, vec![])).contains("transBatchA"));
+        let old = ms("FusedMatMul", &["a", "b"], &["y"], vec![int("transA", 1)]);
+        assert!(err(run(11, old, vec![])).contains("Einsum"));
+    }
+
+    // Contrib docs, com.microsoft.FusedGemm: Gemm, then the activation.
+    #[test]
+    fn fused_gemm_is_gemm_then_activation() {
+        let n = ms(
+            "FusedGemm",
+            &["a", "w", "c"],
+            &["y"],
+            vec![
+                string("activation", "LeakyRelu"),
+                float("activation_alpha", 0.2),
+                int("transB", 1),
+            ],
+        );
+        let l = run(13, n, vec![f32_init("w", &[4, 5]), f32_init("c", &[4])]).unwrap();
+        assert_eq!(ops(&l), ["Gemm", "LeakyRelu"]);
+        let act = producer(&l, "y");
+        assert_eq!((act.attribute[0].name.as_str(), act.attribute[0].f), ("alpha", 0.2));
+        assert_eq!(find(&l, "Gemm")[0].attribute[0].name, "transB");
+        let unknown = ms("FusedGemm", &["a", "w"], &["y"], vec![string("activation", "Frob")]);
+        assert!(err(run(13, unknown, vec![])).contains("'Frob'"));
+        let missing = ms("FusedGemm", &["a", "w"], &["y"], vec![]);
+        err(run(13, missing, vec![]));
+    }
+
+    // Contrib docs, com.microsoft.Gelu / BiasGelu / FastGelu / QuickGelu.
+    #[test]
+    fn gelu_family_by_opset() {
+        let g = || ms("Gelu", &["x"], &["y"], vec![]);
+        assert_eq!(ops(&run(17, g(), vec![]).unwrap()), ["Div", "Erf", "Add", "Mul", "Mul"]);
+        let l = run(20, g(), vec![]).unwrap();
+        assert_eq!(ops(&l), ["Gelu"]);
+        assert_eq!(&l.model.graph.as_ref().unwrap().node[0].attribute[0].s[..], b"none");
+        let bias = ms("BiasGelu", &["x", "b"], &["y"], vec![]);
+        assert_eq!(ops(&run(20, bias, vec![]).unwrap()), ["Add", "Gelu"]);
+        let fast = || ms("FastGelu", &["x", "b"], &["y"], vec![]);
+        let l = run(20, fast(), vec![]).unwrap();
+        assert_eq!(ops(&l), ["Add", "Gelu"]);
+        assert_eq!(&find(&l, "Gelu")[0].attribute[0].s[..], b"tanh");
+        assert_eq!(
+            ops(&run(17, fast(), vec![]).unwrap()),
+            ["Add", "Pow", "Mul", "Add", "Mul", "Tanh", "Add", "Mul", "Mul"]
+        );
+        let quick = || ms("QuickGelu", &["x"], &["y"], vec![]);
+        let l = run(17, quick(), vec![]).unwrap();
+        assert_eq!(ops(&l), ["Mul", "Sigmoid", "Mul", "Div"]);
+        // The Mul takes z and Sigmoid(z): a swish, not a gate.
+        let swish = find(&l, "Mul")[1];
+        assert_eq!(producer(&l, &swish.input[1]).input[0], swish.input[0]);
+        assert_eq!(ops(&run(24, quick(), vec![]).unwrap()), ["Swish"]);
+        let zero = ms("QuickGelu", &["x"], &["y"], vec![float("alpha", 0.0)]);
+        err(run(17, zero, vec![]));
+        let extra = ms("Gelu", &["x", "z"], &["y"], vec![]);
+        err(run(17, extra, vec![]));
+    }
+
+    fn attention_inits() -> Vec<TensorProto> {
+        vec![f32_init("w", &[8, 24]), f32_init("b", &[24])]
+    }
+
+    // Contrib docs, com.microsoft.Attention: merged QKV projection, heads,
+    // softmax(Q K^T * scale + mask) V.
+    #[test]
+    fn attention_plain_and_masks() {
+        let n = ms("Attention", &["x", "w", "b"], &["y"], vec![int("num_heads", 2)]);
+        let l = run(13, n, attention_inits()).unwrap();
+        assert_eq!(
+            ops(&l),
+            [
+                "MatMul",
+                "Add",
+                "Split",
+                "Reshape",
+                "Transpose",
+                "Reshape",
+                "Transpose",
+                "Reshape",
+                "Transpose",
+                "MatMul",
+                "Mul",
+                "Softmax",
+                "MatMul",
+                "Transpose",
+                "Reshape"
+            ]
+        );
+        assert_eq!(producer(&l, "y").op_type, "Reshape");
+        let g = l.model.graph.as_ref().unwrap();
+        assert!(g.initializer.iter().any(|t| t.float_data == [0.5]), "scale 1/sqrt(4)");
+        assert!(g.initializer.iter().any(|t| t.int64_data == [0, 0, 2, 4]));
+        // Split takes its sizes as an attribute before opset 13.
+        let n = ms("Attention", &["x", "w", "b"], &["y"], vec![int("num_heads", 2)]);
+        let split = run(12, n, attention_inits()).unwrap();
+        assert_eq!(find(&split, "Split")[0].input.len(), 1);
+
+        // A 2-D raw mask (declared) and 1-D lengths (through Cast and a
+        // ReduceSum with keepdims = 0, as onnxruntime's optimiser writes it).
+        let n = ms("Attention", &["x", "w", "b", "mask"], &["y"], vec![int("num_heads", 2)]);
+        let raw = run_with(13, n.clone(), attention_inits(), vec![value("mask", 6, 2)]).unwrap();
+        assert!(ops(&raw).contains(&"Greater") && !ops(&raw).contains(&"Less"));
+        let cast = NodeProto {
+            op_type: "Cast".into(),
+            input: vec!["raw".into()],
+            output: vec!["raw32".into()],
+            attribute: vec![int("to", 6)],
+            ..Default::default()
+        };
+        let sum = NodeProto {
+            op_type: "ReduceSum".into(),
+            input: vec!["raw32".into(), "axes".into()],
+            output: vec!["mask".into()],
+            attribute: vec![int("keepdims", 0)],
+            ..Default::default()
+        };
+        let axes = TensorProto {
+            name: "axes".into(),
+            dims: vec![1],
+            data_type: 7,
+            int64_data: vec![1],
+            ..Default::default()
+        };
+        let mut inits = attention_inits();
+        inits.push(axes);
+        let m = model(13, vec![cast, sum, n.clone()], inits, vec![value("raw", 7, 2)]);
+        let lengths = lower(m, &ExternalData::none()).unwrap();
+        assert!(ops(&lengths).contains(&"Less") && ops(&lengths).contains(&"Range"));
+        assert!(err(run(13, n, attention_inits())).contains("no known rank"));
+    }
+
+    #[test]
+    fn attention_unsupported_forms_are_errors() {
+        let heads = || int("num_heads", 2);
+        let past = ms("Attention", &["x", "w", "b", "", "past"], &["y"], vec![heads()]);
+        assert!(err(run(13, past, attention_inits())).contains("past"));
+        let present = ms("Attention", &["x", "w", "b"], &["y", "present"], vec![heads()]);
+        assert!(err(run(13, present, attention_inits())).contains("present"));
+        let rotary = ms("Attention", &["x", "w", "b"], &["y"], vec![heads(), int("do_rotary", 1)]);
+        assert!(err(run(13, rotary, attention_inits())).contains("do_rotary"));
+        let none = ms("Attention", &["x", "w", "b"], &["y"], vec![]);
+        assert!(err(run(13, none, attention_inits())).contains("num_heads"));
+        let odd = ms("Attention", &["x", "w", "b"], &["y"], vec![int("num_heads", 3)]);
+        assert!(err(run(13, odd, attention_inits())).contains("divide"));
+        let mask3 = ms("Attention", &["x", "w", "b", "mask"], &["y"], vec![heads()]);
+        let r = run_with(13, mask3, attention_inits(), vec![value("mask", 6, 3)]);
+        assert!(err(r).contains("rank 3"));
+        let causal =
+            ms("Attention", &["x", "w", "b"], &["y"], vec![heads(), int("unidirectional", 1)]);
+        assert!(err(run(10, causal.clone(), attention_inits())).contains("opset"));
+        assert!(ops(&run(13, causal, attention_inits()).unwrap()).contains(&"Range"));
+        let sizes = ms(
+            "Attention",
+            &["x", "w", "b"],
+            &["y"],
+            vec![heads(), ints("qkv_hidden_sizes", &[8, 4, 12])],
+        );
+        assert!(err(run(13, sizes, attention_inits())).contains("qkv_hidden_sizes"));
+    }
 }
