@@ -45,8 +45,9 @@ const BLOCK_SIZES: [i64; 2] = [8, 16];
 /// `com.microsoft.FusedConv(X, W, B?, Z?)` ([ORT-CONTRIB] "com.microsoft.FusedConv";
 /// [ORT-SRC] `conv.cc`, `Conv<float>::Compute`: the sum `Z` is copied into the
 /// output and the convolution accumulates onto it (`Beta = 1`) before the
-/// activation runs; `conv_add_act_fusion.cc` makes `Z` the other input of the
-/// `Add` that followed the convolution, i.e. the shortcut of a residual block):
+/// activation runs, as the float16 kernel of `fp16_conv.cc` does too;
+/// `conv_add_act_fusion.cc` makes `Z` the other input of the `Add` that
+/// followed the convolution, i.e. the shortcut of a residual block):
 /// `act(Conv(X, W, B) + Z)`. Emits `Conv`, then `Add(conv, Z)` (the merge) when
 /// `Z` is given, then the activation as one standard node.
 fn fused_conv(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
@@ -334,13 +335,16 @@ fn rank_of(ctx: &Ctx<'_>, name: &str) -> Option<usize> {
 //
 // The lowering turns the whole region back into plain NCHW, keeping the padded
 // channel counts (so every shape in the region stays what onnxruntime has):
-// weights are un-blocked, ReorderInput becomes an Identity (a Transpose from
-// NHWC) and ReorderOutput a Slice to its `channels` (an Identity when no
-// channel is padded). Elementwise ops and channel Concat give the same values
-// in either layout, so they are kept. Padded channels may carry other values
-// than onnxruntime's (its zero-padded weights and biases make them `act(0)`
-// there too, but nothing reads them: every consumer of a padded tensor is
-// elementwise, per channel, or the final ReorderOutput that drops them).
+// weights are un-blocked into new initializers, ReorderInput becomes an
+// Identity (a Transpose from NHWC, a zero Pad where the channels are padded)
+// and ReorderOutput a Slice to its `channels` (an Identity when no channel is
+// padded). Elementwise ops and channel Concat give the same values in either
+// layout, so they are kept. Padded channels hold what they hold in
+// onnxruntime: onnxruntime pads weights and biases with zeros on both the
+// output and the input side (1.23 pads the input channels of a Conv reading a
+// padded tensor), so a padded channel is act(0) and is read only through zero
+// weights, per channel, or by the ReorderOutput that drops it. The blocked
+// weights stay in the model as unused initializers.
 
 /// What the model tells about its blocked region: which tensors are blocked,
 /// their padded channel counts where known, and the block sizes that fit.
