@@ -13,6 +13,7 @@
 //!   `core/optimizer/conv_add_act_fusion.cc` (what the fused sum is);
 //! - [ONNX]: the ONNX operator specification, "BatchNormalization".
 
+use std::cell::RefCell;
 use std::collections::{HashMap, HashSet};
 
 use crate::error::Result;
@@ -44,8 +45,9 @@ const BLOCK_SIZES: [i64; 2] = [8, 16];
 /// `com.microsoft.FusedConv(X, W, B?, Z?)` ([ORT-CONTRIB] "com.microsoft.FusedConv";
 /// [ORT-SRC] `conv.cc`, `Conv<float>::Compute`: the sum `Z` is copied into the
 /// output and the convolution accumulates onto it (`Beta = 1`) before the
-/// activation runs; `conv_add_act_fusion.cc` makes `Z` the other input of the
-/// `Add` that followed the convolution, i.e. the shortcut of a residual block):
+/// activation runs, as the float16 kernel of `fp16_conv.cc` does too;
+/// `conv_add_act_fusion.cc` makes `Z` the other input of the `Add` that
+/// followed the convolution, i.e. the shortcut of a residual block):
 /// `act(Conv(X, W, B) + Z)`. Emits `Conv`, then `Add(conv, Z)` (the merge) when
 /// `Z` is given, then the activation as one standard node.
 fn fused_conv(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
@@ -333,13 +335,16 @@ fn rank_of(ctx: &Ctx<'_>, name: &str) -> Option<usize> {
 //
 // The lowering turns the whole region back into plain NCHW, keeping the padded
 // channel counts (so every shape in the region stays what onnxruntime has):
-// weights are un-blocked, ReorderInput becomes an Identity (a Transpose from
-// NHWC) and ReorderOutput a Slice to its `channels` (an Identity when no
-// channel is padded). Elementwise ops and channel Concat give the same values
-// in either layout, so they are kept. Padded channels may carry other values
-// than onnxruntime's (its zero-padded weights and biases make them `act(0)`
-// there too, but nothing reads them: every consumer of a padded tensor is
-// elementwise, per channel, or the final ReorderOutput that drops them).
+// weights are un-blocked into new initializers, ReorderInput becomes an
+// Identity (a Transpose from NHWC, a zero Pad where the channels are padded)
+// and ReorderOutput a Slice to its `channels` (an Identity when no channel is
+// padded). Elementwise ops and channel Concat give the same values in either
+// layout, so they are kept. Padded channels hold what they hold in
+// onnxruntime: onnxruntime pads weights and biases with zeros on both the
+// output and the input side (1.23 pads the input channels of a Conv reading a
+// padded tensor), so a padded channel is act(0) and is read only through zero
+// weights, per channel, or by the ReorderOutput that drops it. The blocked
+// weights stay in the model as unused initializers.
 
 /// What the model tells about its blocked region: which tensors are blocked,
 /// their padded channel counts where known, and the block sizes that fit.
@@ -361,6 +366,7 @@ impl Region {
             ruled_out: [None, None],
             reshaped: None,
         };
+        let index = Index::of(ctx.nodes());
         for n in ctx.nodes() {
             let Some(out) = n.output.first().filter(|o| !o.is_empty()) else { continue };
             let in0 = n.input.first().map(String::as_str).unwrap_or("");
@@ -384,9 +390,9 @@ impl Region {
                         let c = if last {
                             ctx.declared_shape(in0).and_then(|s| s.get(3).copied().flatten())
                         } else {
-                            logical_channels(ctx, in0, 0)
+                            index.logical_channels(ctx, in0)
                         };
-                        if let Some(cp) = consumer_channels(ctx, out) {
+                        if let Some(cp) = index.consumer_channels(ctx, out) {
                             r.channels.insert(out.clone(), cp);
                             if let Some(c) = c {
                                 r.rule(
@@ -538,17 +544,18 @@ fn reorder_input(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
     if ctx.declared_shape(x).is_some_and(|s| s.len() != 4) {
         return Err(ctx.bad("the input is not 4-D"));
     }
+    let index = Index::of(ctx.nodes());
     let channels = match ctx.attr_int(node, "channels")? {
         Some(c) if c > 0 => Some(c),
         Some(c) => return Err(ctx.bad(format!("channels {c} is not positive"))),
         None if last => ctx.declared_shape(x).and_then(|s| s[3]),
-        None => logical_channels(ctx, x, 0),
+        None => index.logical_channels(ctx, x),
     };
     let out = node.output[0].as_str();
     let pad = match channels {
         None => 0,
         Some(c) => {
-            let padded = match consumer_channels(ctx, out) {
+            let padded = match index.consumer_channels(ctx, out) {
                 Some(cp) => cp,
                 None if c % 16 == 0 => c,
                 None => {
@@ -577,47 +584,82 @@ fn reorder_input(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
     Ok(Rewrite::Into(nodes))
 }
 
-/// The (padded) channel count the NCHWc Convs reading `name` expect: their
-/// weight's input channels times their groups.
-fn consumer_channels(ctx: &Ctx<'_>, name: &str) -> Option<i64> {
-    ctx.nodes().iter().find_map(|n| {
-        let reads = n.domain == NCHWC_DOMAIN && n.op_type == "Conv" && n.input.first()? == name;
-        let [_, i, _, _] = weight_dims(ctx, n).filter(|_| reads)?;
-        Some(i * attr_i(n, "group").unwrap_or(1))
-    })
+/// Who makes and who reads each tensor, built once per look at the region,
+/// with the channel counts found so far.
+struct Index<'a> {
+    producer: HashMap<&'a str, &'a NodeProto>,
+    readers: HashMap<&'a str, Vec<&'a NodeProto>>,
+    channels: RefCell<HashMap<&'a str, Option<i64>>>,
 }
 
-/// The channel count of a plain NCHW tensor, when the model tells it: its
-/// declared shape, the `channels` of the ReorderOutput or the weight of the
-/// Conv that made it, or the same through elementwise ops and channel Concat.
-fn logical_channels(ctx: &Ctx<'_>, name: &str, depth: usize) -> Option<i64> {
-    if let Some(c) = ctx.declared_shape(name).and_then(|s| s.get(1).copied().flatten()) {
-        return Some(c);
+impl<'a> Index<'a> {
+    fn of(nodes: &'a [NodeProto]) -> Index<'a> {
+        let mut producer = HashMap::new();
+        let mut readers: HashMap<&str, Vec<&NodeProto>> = HashMap::new();
+        for n in nodes {
+            for o in n.output.iter().filter(|o| !o.is_empty()) {
+                producer.insert(o.as_str(), n);
+            }
+            for i in n.input.iter().filter(|i| !i.is_empty()) {
+                readers.entry(i.as_str()).or_default().push(n);
+            }
+        }
+        Index { producer, readers, channels: RefCell::new(HashMap::new()) }
     }
-    if depth > 64 {
-        return None;
+
+    /// The (padded) channel count the NCHWc Convs reading `name` expect: their
+    /// weight's input channels times their groups.
+    fn consumer_channels(&self, ctx: &Ctx<'_>, name: &str) -> Option<i64> {
+        self.readers.get(name)?.iter().find_map(|n| {
+            let reads = n.domain == NCHWC_DOMAIN && n.op_type == "Conv" && n.input[0] == name;
+            let [_, i, _, _] = weight_dims(ctx, n).filter(|_| reads)?;
+            Some(i * attr_i(n, "group").unwrap_or(1))
+        })
     }
-    let n = ctx.nodes().iter().find(|n| n.output.first().is_some_and(|o| o == name))?;
-    let all_inputs = |n: &NodeProto| -> Option<Vec<i64>> {
-        n.input.iter().map(|i| logical_channels(ctx, i, depth + 1)).collect()
-    };
-    match (n.domain.as_str(), n.op_type.as_str()) {
-        (NCHWC_DOMAIN, "ReorderOutput") if attr_i(n, "channels_last").unwrap_or(0) == 0 => {
-            attr_i(n, "channels")
+
+    /// The channel count of a plain NCHW tensor, when the model tells it: its
+    /// declared shape, the `channels` of the ReorderOutput or the weight of the
+    /// Conv that made it, or the same through elementwise ops and channel
+    /// Concat.
+    fn logical_channels(&self, ctx: &Ctx<'_>, name: &'a str) -> Option<i64> {
+        if let Some(&known) = self.channels.borrow().get(name) {
+            return known;
         }
-        ("" | "ai.onnx", "Conv") => ctx.constant(n.input.get(1)?)?.dims.first().copied(),
-        ("" | "ai.onnx", "Relu" | "Sigmoid" | "Tanh" | "LeakyRelu" | "Clip" | "HardSigmoid")
-        | ("" | "ai.onnx", "Identity" | "BatchNormalization") => {
-            logical_channels(ctx, n.input.first()?, depth + 1)
+        self.channels.borrow_mut().insert(name, None);
+        let c = self.find_channels(ctx, name);
+        self.channels.borrow_mut().insert(name, c);
+        c
+    }
+
+    fn find_channels(&self, ctx: &Ctx<'_>, name: &'a str) -> Option<i64> {
+        if let Some(c) = ctx.declared_shape(name).and_then(|s| s.get(1).copied().flatten()) {
+            return Some(c);
         }
-        ("" | "ai.onnx", "Add" | "Sub" | "Mul" | "Div" | "Sum" | "Max" | "Min") => {
-            let c = all_inputs(n)?;
-            c.iter().all(|&v| v == c[0]).then(|| c[0])
+        let n = *self.producer.get(name)?;
+        let all_inputs = || -> Option<Vec<i64>> {
+            n.input.iter().map(|i| self.logical_channels(ctx, i)).collect()
+        };
+        match (n.domain.as_str(), n.op_type.as_str()) {
+            (NCHWC_DOMAIN, "ReorderOutput") if attr_i(n, "channels_last").unwrap_or(0) == 0 => {
+                attr_i(n, "channels")
+            }
+            ("" | "ai.onnx", "Conv") => ctx.constant(n.input.get(1)?)?.dims.first().copied(),
+            (
+                "" | "ai.onnx",
+                "Relu" | "Sigmoid" | "Tanh" | "LeakyRelu" | "Clip" | "HardSigmoid",
+            )
+            | ("" | "ai.onnx", "Identity" | "BatchNormalization") => {
+                self.logical_channels(ctx, n.input.first()?)
+            }
+            ("" | "ai.onnx", "Add" | "Sub" | "Mul" | "Div" | "Sum" | "Max" | "Min") => {
+                let c = all_inputs()?;
+                c.iter().all(|&v| v == c[0]).then(|| c[0])
+            }
+            ("" | "ai.onnx", "Concat") if attr_i(n, "axis") == Some(1) => {
+                Some(all_inputs()?.iter().sum())
+            }
+            _ => None,
         }
-        ("" | "ai.onnx", "Concat") if attr_i(n, "axis") == Some(1) => {
-            Some(all_inputs(n)?.iter().sum())
-        }
-        _ => None,
     }
 }
 
