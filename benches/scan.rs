@@ -113,7 +113,8 @@ fn phases(path: &Path) -> Vec<(&'static str, Duration)> {
         };
         let loaded = shunt::load::load(path, &config.load).expect("load");
         lap(&mut row, "read + decode");
-        let lowered = shunt::lower::lower(loaded.model, &loaded.external).expect("lower");
+        let lowered =
+            shunt::lower::lower(loaded.model, &loaded.external, &config.lower).expect("lower");
         lap(&mut row, "lower (nothing to rewrite)");
         let (g, _) = graph::build(lowered.model, loaded.external, &config.build).expect("build");
         lap(&mut row, "graph build");
@@ -267,7 +268,9 @@ fn lowering_every_activation(dir: &Path) {
             rewritten += 1;
         }
     }
-    let t = time(RUNS, || shunt::lower::lower(model.clone(), &loaded.external).expect("lower"));
+    let t = time(RUNS, || {
+        shunt::lower::lower(model.clone(), &loaded.external, &config.lower).expect("lower")
+    });
     let copy = time(RUNS, || model.clone());
     println!();
     println!(

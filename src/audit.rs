@@ -120,7 +120,8 @@ pub fn audit_file(path: &Path, config: &AuditConfig, progress: &dyn Progress) ->
         &loaded.model,
         &loaded.external,
     );
-    let lowered = lower::lower(loaded.model, &loaded.external).map_err(|e| e.at(path))?;
+    let lowered =
+        lower::lower(loaded.model, &loaded.external, &config.scan.lower).map_err(|e| e.at(path))?;
     // tract runs what was analysed: the lowered model when a rewrite changed
     // it (external payloads still resolve against the model's folder).
     let lowered_bytes = lowered.changed().then(|| lowered.model.encode_to_vec());
@@ -147,7 +148,7 @@ pub fn audit_model(
 ) -> Result<Audit> {
     let external = ExternalData::none();
     let info = scan::model_info(label, model.encoded_len() as u64, &model, &external);
-    let lowered = lower::lower(model, &external)?;
+    let lowered = lower::lower(model, &external, &config.scan.lower)?;
     let bytes = lowered.model.encode_to_vec();
     let surgery = config.influence.as_ref().map(|_| (lowered.model.clone(), None));
     let analysis = scan::analyse_lowered(lowered, external, &config.scan)?;

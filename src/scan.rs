@@ -10,7 +10,7 @@ use crate::error::{Diagnostic, Result, Severity};
 use crate::findings::{self, BlockFacts, FindingConfig, Run};
 use crate::graph::{self, BuildConfig, Dim, Dominance, Graph, NodeId, ValueId};
 use crate::load::{self, ExternalData, LoadConfig, tensor};
-use crate::lower::{self, Lowered};
+use crate::lower::{self, LowerConfig, Lowered};
 use crate::proto::ModelProto;
 use crate::report::{self, *};
 use crate::residual::{self, Detection, Reason, ShortcutKind};
@@ -24,6 +24,8 @@ pub struct ScanConfig {
     pub build: BuildConfig,
     /// Limits for reading weights.
     pub classify: ClassifyConfig,
+    /// What lowering cannot work out from the model alone.
+    pub lower: LowerConfig,
 }
 
 impl ScanConfig {
@@ -34,6 +36,7 @@ impl ScanConfig {
             load: LoadConfig { max_file_bytes: 4 << 30 },
             build: BuildConfig { max_nodes: 1_000_000 },
             classify: ClassifyConfig { max_inspect_bytes: 16 << 20 },
+            lower: LowerConfig::standard(),
         }
     }
 }
@@ -61,7 +64,7 @@ pub struct Analysis {
 
 /// Lowers and analyses a decoded model.
 pub fn analyse(model: ModelProto, external: ExternalData, config: &ScanConfig) -> Result<Analysis> {
-    let lowered = lower::lower(model, &external)?;
+    let lowered = lower::lower(model, &external, &config.lower)?;
     analyse_lowered(lowered, external, config)
 }
 
@@ -73,6 +76,7 @@ pub fn analyse_lowered(
 ) -> Result<Analysis> {
     let summary = lowered.summary();
     let (mut graph, mut diagnostics) = graph::build(lowered.model, external, &config.build)?;
+    diagnostics.extend(lowered.notes);
     graph.set_origins(lowered.origins);
     let dom = Dominance::compute(&graph);
     let detection = residual::find_blocks(&graph, &dom);

@@ -67,8 +67,8 @@ fn lower_command(args: &LowerArgs) -> anyhow::Result<ExitCode> {
     use prost::Message;
     let config = args.limits.config();
     let loaded = shunt::load::load(&args.model, &config.load)?;
-    let lowered =
-        shunt::lower::lower(loaded.model, &loaded.external).map_err(|e| e.at(&args.model))?;
+    let lowered = shunt::lower::lower(loaded.model, &loaded.external, &config.lower)
+        .map_err(|e| e.at(&args.model))?;
     let bytes = lowered.model.encode_to_vec();
     output::write(Some(&args.output), &[&args.model], |out| out.write_all(&bytes))?;
     let summary = lowered.summary();
@@ -297,6 +297,11 @@ struct Limits {
     /// Largest weight tensor read to check whether a branch is zeroed, in bytes.
     #[arg(long, value_name = "BYTES", default_value_t = 16 << 20)]
     max_inspect_bytes: u64,
+    /// The NCHWc block size onnxruntime used when it saved a model at
+    /// ORT_ENABLE_ALL (16 with AVX-512F, 8 with AVX2), for models whose
+    /// shapes fit both (default: this machine's).
+    #[arg(long, value_name = "N", value_parser = ["8", "16"])]
+    nchwc_block: Option<String>,
 }
 
 impl Limits {
@@ -305,6 +310,7 @@ impl Limits {
         c.load.max_file_bytes = self.max_file_bytes;
         c.build.max_nodes = self.max_nodes;
         c.classify.max_inspect_bytes = self.max_inspect_bytes;
+        c.lower.nchwc_block = self.nchwc_block.as_deref().and_then(|b| b.parse().ok());
         c
     }
 }

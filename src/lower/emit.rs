@@ -34,6 +34,7 @@ pub struct Ctx<'a> {
     initializers: Vec<TensorProto>,
     needs_opset: bool,
     nchwc_block: Option<i64>,
+    notes: Vec<crate::error::Diagnostic>,
     /// Ranks declared for graph inputs, outputs and `value_info`, and the
     /// producer of each tensor, for [`Ctx::rank`].
     declared_ranks: HashMap<&'a str, usize>,
@@ -59,6 +60,7 @@ impl<'a> Ctx<'a> {
             initializers: Vec::new(),
             needs_opset: false,
             nchwc_block: None,
+            notes: Vec::new(),
             declared_ranks: graph
                 .input
                 .iter()
@@ -78,8 +80,18 @@ impl<'a> Ctx<'a> {
         self.emitted = 0;
     }
 
-    pub(super) fn finish(self) -> (Vec<TensorProto>, bool) {
-        (self.initializers, self.needs_opset)
+    pub(super) fn finish(self) -> (Vec<TensorProto>, bool, Vec<crate::error::Diagnostic>) {
+        (self.initializers, self.needs_opset, self.notes)
+    }
+
+    /// Records a note for the report about the node being lowered, once per
+    /// distinct message.
+    pub fn note(&mut self, message: impl Into<String>) {
+        let message = message.into();
+        if !self.notes.iter().any(|n| n.message == message) {
+            let node = self.origin().name.clone();
+            self.notes.push(crate::error::Diagnostic::note(Some(&node), message));
+        }
     }
 
     /// The node being lowered.
@@ -441,7 +453,8 @@ pub fn ints(name: &str, v: &[i64]) -> AttributeProto {
     }
 }
 
-/// A float-list attribute.
+/// A float-list attribute (rules pass float lists on as they are; tests build them).
+#[cfg(test)]
 pub fn floats(name: &str, v: &[f32]) -> AttributeProto {
     AttributeProto {
         name: name.to_owned(),
@@ -456,7 +469,7 @@ pub fn string(name: &str, v: &str) -> AttributeProto {
     AttributeProto {
         name: name.to_owned(),
         r#type: attribute_proto::AttributeType::String as i32,
-        s: v.as_bytes().to_vec().into(),
+        s: v.as_bytes().to_vec(),
         ..Default::default()
     }
 }

@@ -50,6 +50,37 @@ pub struct Origin {
     pub index: usize,
 }
 
+/// What lowering may not work out from the model alone.
+#[derive(Debug, Clone)]
+pub struct LowerConfig {
+    /// The NCHWc block size onnxruntime used when it wrote the model (8 or
+    /// 16), for models whose shapes fit both; `None`: this machine's.
+    pub nchwc_block: Option<i64>,
+}
+
+impl LowerConfig {
+    /// Nothing given: NCHWc models whose shapes fit both block sizes are
+    /// read with this machine's ([`machine_nchwc_block`]).
+    pub fn standard() -> LowerConfig {
+        LowerConfig { nchwc_block: None }
+    }
+}
+
+/// The NCHWc block size onnxruntime's MLAS picks on this machine: 16 where
+/// the CPU has AVX-512F, 8 on other x86-64 CPUs (onnxruntime 1.23 source,
+/// MLAS platform set-up, read for this project; checked on an AVX-512 Xeon,
+/// where a saved model came out with 16). `None` elsewhere: not checked.
+pub fn machine_nchwc_block() -> Option<i64> {
+    #[cfg(target_arch = "x86_64")]
+    {
+        if std::arch::is_x86_feature_detected!("avx512f") { Some(16) } else { Some(8) }
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    {
+        None
+    }
+}
+
 /// A model after lowering.
 #[derive(Debug)]
 pub struct Lowered {
@@ -60,6 +91,9 @@ pub struct Lowered {
     pub origins: Vec<Option<Origin>>,
     /// Every rewritten node, in model order, with how many nodes replaced it.
     pub rewrites: Vec<(Origin, usize)>,
+    /// What the analysis should know about how the model was read (an
+    /// assumed NCHWc block size), once each.
+    pub notes: Vec<crate::error::Diagnostic>,
 }
 
 impl Lowered {
@@ -92,17 +126,22 @@ pub(crate) type Rule = fn(&mut Ctx<'_>, &NodeProto) -> Result<Rewrite>;
 
 /// Lowers every node a rule knows. Fast when there is nothing to do: one
 /// look-up per node, no copy of the model.
-pub fn lower(mut model: ModelProto, external: &ExternalData) -> Result<Lowered> {
+pub fn lower(
+    mut model: ModelProto,
+    external: &ExternalData,
+    config: &LowerConfig,
+) -> Result<Lowered> {
     let Some(graph) = model.graph.as_ref() else {
-        return Ok(Lowered { model, origins: Vec::new(), rewrites: Vec::new() });
+        return Ok(Lowered { model, origins: Vec::new(), rewrites: Vec::new(), notes: Vec::new() });
     };
     if !graph.node.iter().any(|n| rules::find(&n.domain, &n.op_type).is_some()) {
-        return Ok(Lowered { model, origins: Vec::new(), rewrites: Vec::new() });
+        return Ok(Lowered { model, origins: Vec::new(), rewrites: Vec::new(), notes: Vec::new() });
     }
     let opset = default_opset(&model);
     let mut graph = model.graph.take().expect("checked above");
     let nodes = std::mem::take(&mut graph.node);
     let mut ctx = Ctx::new(&graph, &nodes, opset, external);
+    ctx.set_nchwc_block(config.nchwc_block);
     let mut out: Vec<NodeProto> = Vec::with_capacity(nodes.len());
     let mut origins: Vec<Option<Origin>> = Vec::with_capacity(nodes.len());
     let mut rewrites = Vec::new();
@@ -135,7 +174,7 @@ pub fn lower(mut model: ModelProto, external: &ExternalData) -> Result<Lowered> 
             }
         }
     }
-    let (initializers, needs_opset) = ctx.finish();
+    let (initializers, needs_opset, notes) = ctx.finish();
     graph.node = out;
     graph.initializer.extend(initializers);
     model.graph = Some(graph);
@@ -145,9 +184,9 @@ pub fn lower(mut model: ModelProto, external: &ExternalData) -> Result<Lowered> 
         model.opset_import.push(OperatorSetIdProto { domain: String::new(), version: opset });
     }
     if rewrites.is_empty() {
-        return Ok(Lowered { model, origins: Vec::new(), rewrites });
+        return Ok(Lowered { model, origins: Vec::new(), rewrites, notes });
     }
-    Ok(Lowered { model, origins, rewrites })
+    Ok(Lowered { model, origins, rewrites, notes })
 }
 
 /// The default domain's opset, or 17 (what rules emit for) when the model

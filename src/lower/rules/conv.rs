@@ -482,7 +482,7 @@ impl Region {
     /// The block size: the one that fits the model's shapes, or, when both
     /// fit, the one the caller gave ([`Ctx::nchwc_block`]); a given block size
     /// the shapes rule out is refused.
-    fn block(&self, ctx: &Ctx<'_>) -> Result<i64> {
+    fn block(&self, ctx: &mut Ctx<'_>) -> Result<i64> {
         if let Some(r) = &self.reshaped {
             return Err(ctx.bad(format!(
                 "node '{r}' reshapes a blocked tensor into its channel blocks; not supported"
@@ -503,11 +503,21 @@ impl Region {
             [Some(a), Some(b)] => {
                 Err(ctx.bad(format!("no NCHWc block size fits: not 8 ({a}); not 16 ({b})")))
             }
-            [None, None] => Err(ctx.bad(
-                "the NCHWc block size (8 with AVX2, 16 with AVX-512 or on ARM64) cannot be told \
-                 from the model: every blocked channel count fits both, and the weights' layout \
-                 depends on it",
-            )),
+            [None, None] => match crate::lower::machine_nchwc_block() {
+                Some(b) => {
+                    ctx.note(format!(
+                        "NCHWc block size {b} assumed, this machine's: the model's shapes fit both \
+                         8 and 16 (onnxruntime uses 16 with AVX-512F, 8 with AVX2); if the model \
+                         was optimised on another kind of CPU, give --nchwc-block"
+                    ));
+                    Ok(b)
+                }
+                None => Err(ctx.bad(
+                    "the NCHWc block size (8 with AVX2, 16 with AVX-512F) cannot be told from the \
+                     model: every blocked channel count fits both, and the weights' layout depends \
+                     on it; give --nchwc-block",
+                )),
+            },
         }
     }
 }
@@ -1027,7 +1037,7 @@ mod tests {
     }
 
     fn run(m: ModelProto) -> Result<Lowered> {
-        lower(m, &ExternalData::none())
+        lower(m, &ExternalData::none(), &crate::lower::LowerConfig::standard())
     }
 
     fn ops(l: &Lowered) -> Vec<&str> {
@@ -1423,11 +1433,13 @@ mod tests {
                 index: 0,
             };
             ctx.begin(&origin);
-            Region::of(&ctx).block(&ctx)
+            let region = Region::of(&ctx);
+            region.block(&mut ctx)
         };
         assert_eq!(region(Some(16), &m).unwrap(), 16);
         assert_eq!(region(Some(8), &m).unwrap(), 8);
-        assert!(region(None, &m).is_err());
+        // Nothing given: this machine's block size, with a note.
+        assert_eq!(region(None, &m).ok(), crate::lower::machine_nchwc_block());
         assert!(region(Some(4), &m).unwrap_err().message().contains("neither 8 nor 16"));
         // 24 channels padded to 32: 8 is ruled out.
         let m = stem(16, 24, 24);

@@ -789,7 +789,11 @@ mod tests {
         inits: Vec<TensorProto>,
         inputs: Vec<ValueInfoProto>,
     ) -> Result<Lowered> {
-        lower(model(opset, vec![node], inits, inputs), &ExternalData::none())
+        lower(
+            model(opset, vec![node], inits, inputs),
+            &ExternalData::none(),
+            &crate::lower::LowerConfig::standard(),
+        )
     }
 
     fn nodes(l: &Lowered) -> &[NodeProto] {
@@ -1072,7 +1076,8 @@ mod tests {
         let mut inits = attention_inits();
         inits.push(axes);
         let m = model(13, vec![cast, sum, n.clone()], inits, vec![value("raw", 7, 2)]);
-        let lengths = lower(m, &ExternalData::none()).unwrap();
+        let lengths =
+            lower(m, &ExternalData::none(), &crate::lower::LowerConfig::standard()).unwrap();
         assert!(ops(&lengths).contains(&"Less") && ops(&lengths).contains(&"Range"));
         assert!(err(run(13, n, attention_inits())).contains("no known rank"));
     }
