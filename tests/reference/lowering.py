@@ -57,6 +57,16 @@ def main():
         ref = dict(np.load(reference_path))
         want = {n: ref[n] for n in names}
         source = f"committed reference ({type(e).__name__})"
+    # onnxruntime's CPU kernels leave some optional outputs uncomputed (the
+    # mean and inv_std_var of SkipLayerNormalization in 1.23): those are
+    # held to the committed reference, written by numpy from the documents.
+    committed = None
+    for n in names:
+        if np.asarray(want[n]).size == 0 or np.asarray(want[n]).shape == ():
+            committed = committed if committed is not None else dict(np.load(reference_path))
+            if n in committed and np.asarray(committed[n]).size > 1:
+                want[n] = committed[n]
+                source += f"; {n} from the committed reference"
     got = dict(zip(names, session(lowered_path).run(names, inputs)))
     errors = {}
     worst = 0.0

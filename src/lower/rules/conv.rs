@@ -1409,8 +1409,10 @@ mod tests {
     /// Every channel count a multiple of 16: the layout cannot be decoded.
     #[test]
     fn nchwc_block_size_must_follow_from_the_model() {
-        let e = error(stem(16, 32, 32));
-        assert!(e.starts_with("node 'c1' (com.microsoft.nchwc.Conv): the NCHWc block size"), "{e}");
+        // Shapes that fit both block sizes: this machine's, said in a note.
+        let l = run(stem(16, 32, 32)).expect("read with this machine's block size");
+        assert_eq!(l.notes.len(), 1, "{:?}", l.notes);
+        assert!(l.notes[0].message.starts_with("NCHWc block size"), "{:?}", l.notes);
         // A ReorderOutput that no block size explains.
         let e = error(stem(16, 24, 8));
         assert!(e.contains("no NCHWc block size fits"), "{e}");

@@ -554,26 +554,48 @@ fn attention(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
     }
 
     let mut out = Vec::new();
-    let (n, mut proj) = ctx.node1("MatMul", &[x, w], "qkv", vec![]);
-    out.push(n);
-    if let Some(bias) = ctx.input(node, 2) {
-        let (n, biased) = ctx.node1("Add", &[&proj, bias], "qkv_biased", vec![]);
-        out.push(n);
-        proj = biased;
-    }
-    let parts = [ctx.name("q"), ctx.name("k"), ctx.name("v")];
-    let part_refs: Vec<&str> = parts.iter().map(String::as_str).collect();
-    if ctx.opset >= 13 {
-        let split = ctx.init_i64("split", &[3], sizes.clone());
-        out.push(ctx.node("Split", &[&proj, &split], &part_refs, vec![int("axis", 2)]));
-    } else {
-        out.push(ctx.node(
-            "Split",
-            &[&proj],
-            &part_refs,
-            vec![int("axis", 2), ints("split", &sizes)],
-        ));
-    }
+    let parts = match split_projections(ctx, node, w, &sizes)? {
+        // Three projections, as the network was written before onnxruntime
+        // packed them (and as a pin of the unfused model lists them).
+        Some(parts) => {
+            let mut names = Vec::new();
+            for (k, (wk, bk)) in parts.into_iter().enumerate() {
+                let hint = ["q", "k", "v"][k];
+                let (n, mut p) = ctx.node1("MatMul", &[x, &wk], &format!("{hint}_proj"), vec![]);
+                out.push(n);
+                if let Some(bk) = bk {
+                    let (n, biased) = ctx.node1("Add", &[&p, &bk], hint, vec![]);
+                    out.push(n);
+                    p = biased;
+                }
+                names.push(p);
+            }
+            [names[0].clone(), names[1].clone(), names[2].clone()]
+        }
+        None => {
+            let (n, mut proj) = ctx.node1("MatMul", &[x, w], "qkv", vec![]);
+            out.push(n);
+            if let Some(bias) = ctx.input(node, 2) {
+                let (n, biased) = ctx.node1("Add", &[&proj, bias], "qkv_biased", vec![]);
+                out.push(n);
+                proj = biased;
+            }
+            let parts = [ctx.name("q"), ctx.name("k"), ctx.name("v")];
+            let part_refs: Vec<&str> = parts.iter().map(String::as_str).collect();
+            if ctx.opset >= 13 {
+                let split = ctx.init_i64("split", &[3], sizes.clone());
+                out.push(ctx.node("Split", &[&proj, &split], &part_refs, vec![int("axis", 2)]));
+            } else {
+                out.push(ctx.node(
+                    "Split",
+                    &[&proj],
+                    &part_refs,
+                    vec![int("axis", 2), ints("split", &sizes)],
+                ));
+            }
+            parts
+        }
+    };
     let mut heads_first = |ctx: &mut Ctx<'_>, v: &str, dh: i64, perm: &[i64], hint: &str| {
         let shape = ctx.init_i64("heads_shape", &[4], vec![0, 0, heads, dh]);
         let (n, r) = ctx.node1("Reshape", &[v, &shape], &format!("{hint}_heads"), vec![]);
@@ -694,6 +716,53 @@ fn attention(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
     let shape = ctx.init_i64("output_shape", &[3], vec![0, 0, sizes[2]]);
     out.push(ctx.node("Reshape", &[&merged, &shape], &[&node.output[0]], vec![]));
     Ok(Rewrite::Into(out))
+}
+
+/// The packed Q/K/V weight (and bias) split into three float32 initializers
+/// by columns, when both are float32 constants: `x @ W[:, a..b] + bias[a..b]`
+/// is column block `a..b` of `x @ W + bias`, so the split changes no value.
+/// `None` (keep the packed form) for computed or non-float32 weights.
+fn split_projections(
+    ctx: &mut Ctx<'_>,
+    node: &NodeProto,
+    w: &str,
+    sizes: &[i64],
+) -> Result<Option<Vec<(String, Option<String>)>>> {
+    let float32 = |t: Option<&crate::proto::TensorProto>| t.is_some_and(|t| t.data_type == 1);
+    let bias = ctx.input(node, 2);
+    if !float32(ctx.constant(w)) || bias.is_some_and(|b| !float32(ctx.constant(b))) {
+        return Ok(None);
+    }
+    let Some(weights) = ctx.weight_f32(w)? else { return Ok(None) };
+    let bias = match bias {
+        Some(b) => ctx.const_f32(b)?,
+        None => None,
+    };
+    let total: i64 = sizes.iter().sum();
+    let rows = weights.len() as i64 / total.max(1);
+    if rows * total != weights.len() as i64
+        || bias.as_ref().is_some_and(|b| b.len() as i64 != total)
+    {
+        return Ok(None);
+    }
+    let mut parts = Vec::new();
+    let mut start = 0;
+    for (k, &size) in sizes.iter().enumerate() {
+        let hint = ["q", "k", "v"][k];
+        let cols = start as usize..(start + size) as usize;
+        let mut wk = Vec::with_capacity((rows * size) as usize);
+        for r in 0..rows as usize {
+            let row = &weights[r * total as usize..(r + 1) * total as usize];
+            wk.extend_from_slice(&row[cols.clone()]);
+        }
+        let wname = ctx.init_f32(&format!("{hint}_weight"), &[rows, size], wk);
+        let bname = bias
+            .as_ref()
+            .map(|b| ctx.init_f32(&format!("{hint}_bias"), &[size], b[cols.clone()].to_vec()));
+        parts.push((wname, bname));
+        start += size;
+    }
+    Ok(Some(parts))
 }
 
 #[cfg(test)]
@@ -1023,7 +1092,10 @@ mod tests {
             [
                 "MatMul",
                 "Add",
-                "Split",
+                "MatMul",
+                "Add",
+                "MatMul",
+                "Add",
                 "Reshape",
                 "Transpose",
                 "Reshape",
@@ -1042,10 +1114,22 @@ mod tests {
         let g = l.model.graph.as_ref().unwrap();
         assert!(g.initializer.iter().any(|t| t.float_data == [0.5]), "scale 1/sqrt(4)");
         assert!(g.initializer.iter().any(|t| t.int64_data == [0, 0, 2, 4]));
-        // Split takes its sizes as an attribute before opset 13.
+        // Constant float32 weights become three projections (above); other
+        // weights keep the packed projection and a Split, which takes its
+        // sizes as an attribute before opset 13.
+        let half = TensorProto {
+            name: "w".into(),
+            dims: vec![8, 24],
+            data_type: 10,
+            int32_data: vec![0x3800; 8 * 24],
+            ..Default::default()
+        };
+        let packed = vec![half, f32_init("b", &[24])];
         let n = ms("Attention", &["x", "w", "b"], &["y"], vec![int("num_heads", 2)]);
-        let split = run(12, n, attention_inits()).unwrap();
+        let split = run(12, n.clone(), packed.clone()).unwrap();
         assert_eq!(find(&split, "Split")[0].input.len(), 1);
+        let split = run(13, n, packed).unwrap();
+        assert_eq!(find(&split, "Split")[0].input.len(), 2);
 
         // A 2-D raw mask (declared) and 1-D lengths (through Cast and a
         // ReduceSum with keepdims = 0, as onnxruntime's optimiser writes it).
