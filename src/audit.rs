@@ -197,7 +197,7 @@ pub fn watches(a: &Analysis) -> Vec<Watch> {
         .iter()
         .zip(&a.kinds)
         .map(|(b, k)| Watch {
-            fork: g.value(b.fork).name.clone(),
+            fork: g.value(dequantised(g, b.fork)).name.clone(),
             shortcut: g.value(b.shortcut.input).name.clone(),
             branch: b.branch_inputs.iter().map(|&v| g.value(v).name.clone()).collect(),
             output: g.value(b.output).name.clone(),
@@ -210,6 +210,21 @@ pub fn watches(a: &Analysis) -> Vec<Watch> {
                     .is_some_and(|n| matches!(g.node(n).op.as_str(), "Relu" | "QuantizeLinear")),
         })
         .collect()
+}
+
+/// The float value of a block input: a quantised tensor (codes, the output
+/// of a QuantizeLinear in the QDQ form) is measured through its first
+/// DequantizeLinear, so fork RMS and growth are in the units of the merge.
+fn dequantised(g: &crate::graph::Graph, v: crate::graph::ValueId) -> crate::graph::ValueId {
+    let quantised = g.producer(v).is_some_and(|p| {
+        matches!(g.node(p).op.as_str(), "QuantizeLinear" | "DynamicQuantizeLinear")
+    }) || matches!(g.value(v).fact.dtype, 2 | 3 | 4 | 5);
+    if !quantised {
+        return v;
+    }
+    g.consumers(v)
+        .find(|&c| g.node(c).op == "DequantizeLinear" && g.input(c, 0) == Some(v))
+        .map_or(v, |c| g.node(c).outputs[0])
 }
 
 fn run_row(feeding: &Feeding, f: &FindingConfig) -> RunRow {
