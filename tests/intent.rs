@@ -218,7 +218,7 @@ fn bad_pin_files_are_errors() {
 }
 
 /// The fenced code blocks of README.md with the given info string.
-fn readme_blocks(info: &str) -> Vec<String> {
+pub(crate) fn readme_blocks(info: &str) -> Vec<String> {
     let text = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("README.md"))
         .expect("README.md");
     let mut out = Vec::new();
@@ -459,7 +459,7 @@ fn comparisons_are_deterministic_and_refuse_different_inputs() {
 
 /// Whether two output texts agree: every token equal, except numbers, which
 /// may differ in the last printed digit (tract's kernels differ by CPU).
-fn same_text(real: &str, shown: &str) -> Result<(), String> {
+pub(crate) fn same_text(real: &str, shown: &str) -> Result<(), String> {
     let (r, s): (Vec<&str>, Vec<&str>) = (real.lines().collect(), shown.lines().collect());
     if r.len() != s.len() {
         return Err(format!("{} lines, the README shows {}", r.len(), s.len()));
