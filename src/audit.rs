@@ -212,13 +212,14 @@ pub fn watches(a: &Analysis) -> Vec<Watch> {
         .collect()
 }
 
-/// The float value of a block input: a quantised tensor (codes, the output
+/// The float value of a block input: a quantised tensor (codes: element types
+/// 2 to 5 are uint8, int8, uint16 and int16; or the output
 /// of a QuantizeLinear in the QDQ form) is measured through its first
 /// DequantizeLinear, so fork RMS and growth are in the units of the merge.
 fn dequantised(g: &crate::graph::Graph, v: crate::graph::ValueId) -> crate::graph::ValueId {
     let quantised = g.producer(v).is_some_and(|p| {
         matches!(g.node(p).op.as_str(), "QuantizeLinear" | "DynamicQuantizeLinear")
-    }) || matches!(g.value(v).fact.dtype, 2 | 3 | 4 | 5);
+    }) || matches!(g.value(v).fact.dtype, 2..=5);
     if !quantised {
         return v;
     }

@@ -1,7 +1,8 @@
 //! Writes the seed corpus of the fuzz targets into `fuzz/corpus/`:
 //! `cargo run --release --bin make_corpus` from `fuzz/`. The seeds are the
-//! small committed fixtures, tiny models built with the testkit (one per
-//! shape of dataflow the scan knows), and small `.npy`/`.npz` feeds.
+//! small committed fixtures, the single-operator models of the lowering
+//! rules, tiny models built with the testkit (one per shape of dataflow the
+//! scan knows), and small `.npy`/`.npz` feeds.
 #![allow(clippy::print_stdout)]
 
 // Linked for the coverage runtime that `cargo fuzz build` instruments every
@@ -35,6 +36,20 @@ fn main() {
     for path in names {
         let name = path.file_stem().expect("a file name").to_string_lossy().into_owned();
         fs::copy(&path, models.join(format!("seed-fixture-{name}.onnx"))).expect("copy");
+    }
+    // One model per lowered operator (fixtures/transformed/ops): the
+    // lowering rules see a node of their kind from the first input on.
+    let ops = root.join("../fixtures/transformed/ops");
+    let mut lowered: Vec<_> = fs::read_dir(&ops)
+        .expect("fixtures/transformed/ops")
+        .filter_map(|e| e.ok())
+        .map(|e| e.path())
+        .filter(|p| p.extension().is_some_and(|x| x == "onnx"))
+        .collect();
+    lowered.sort();
+    for path in lowered {
+        let name = path.file_stem().expect("a file name").to_string_lossy().into_owned();
+        fs::copy(&path, models.join(format!("seed-lowered-{name}.onnx"))).expect("copy");
     }
     for (name, model) in tiny_models() {
         fs::write(models.join(format!("seed-{name}.onnx")), model.encode_to_vec()).expect("write");

@@ -718,6 +718,9 @@ fn attention(ctx: &mut Ctx<'_>, node: &NodeProto) -> Result<Rewrite> {
     Ok(Rewrite::Into(out))
 }
 
+/// One of the three projections: its weight and, when there is one, its bias.
+type Projection = (String, Option<String>);
+
 /// The packed Q/K/V weight (and bias) split into three float32 initializers
 /// by columns, when both are float32 constants: `x @ W[:, a..b] + bias[a..b]`
 /// is column block `a..b` of `x @ W + bias`, so the split changes no value.
@@ -727,7 +730,7 @@ fn split_projections(
     node: &NodeProto,
     w: &str,
     sizes: &[i64],
-) -> Result<Option<Vec<(String, Option<String>)>>> {
+) -> Result<Option<Vec<Projection>>> {
     let float32 = |t: Option<&crate::proto::TensorProto>| t.is_some_and(|t| t.data_type == 1);
     let bias = ctx.input(node, 2);
     if !float32(ctx.constant(w)) || bias.is_some_and(|b| !float32(ctx.constant(b))) {
