@@ -75,7 +75,7 @@ pub fn dot(a: &[f32], b: &[f32]) -> f64 {
 }
 
 /// Sums of squares of `a` and `b` and their dot product, in one pass.
-pub fn sums3<T: Value>(a: &[T], b: &[T]) -> (f64, f64, f64) {
+pub fn sums3<A: Value, B: Value>(a: &[A], b: &[B]) -> (f64, f64, f64) {
     debug_assert_eq!(a.len(), b.len());
     let (mut ta, mut tb, mut tab) = (0f64, 0f64, 0f64);
     for (ca, cb) in a.chunks(CHUNK).zip(b.chunks(CHUNK)) {
@@ -107,9 +107,9 @@ pub fn sums3<T: Value>(a: &[T], b: &[T]) -> (f64, f64, f64) {
 
 /// [`sums3`] of one sample laid out `[outer, channels, inner]`, adding each
 /// channel's sums of squares to `ch_a` and `ch_b` (left alone when empty).
-pub fn pair_sums<T: Value>(
-    a: &[T],
-    b: &[T],
+pub fn pair_sums<A: Value, B: Value>(
+    a: &[A],
+    b: &[B],
     inner: usize,
     ch_a: &mut [f64],
     ch_b: &mut [f64],
