@@ -79,7 +79,9 @@ fn types_in(g: &GraphProto, seen: &mut HashSet<i32>) {
     }
     for n in &g.node {
         for a in &n.attribute {
-            if (a.name == "to" || a.name == "dtype") && a.r#type == attribute_proto::AttributeType::Int as i32 {
+            if (a.name == "to" || a.name == "dtype")
+                && a.r#type == attribute_proto::AttributeType::Int as i32
+            {
                 seen.insert(a.i as i32);
             }
             if let Some(t) = &a.t {
@@ -239,7 +241,11 @@ fn twin_graph(g: &mut GraphProto, external: &ExternalData, names: &mut Names) ->
     Ok(())
 }
 
-fn twin_attribute(a: &mut AttributeProto, external: &ExternalData, names: &mut Names) -> Result<()> {
+fn twin_attribute(
+    a: &mut AttributeProto,
+    external: &ExternalData,
+    names: &mut Names,
+) -> Result<()> {
     if let Some(t) = a.t.as_deref_mut() {
         widen(t, external)?;
     }
@@ -524,7 +530,11 @@ mod tests {
         let rounded = g.node[1].output[0].as_str();
         assert_eq!(
             casts,
-            [("y", rounded, i64::from(F16)), (rounded, "h", i64::from(F32)), ("h", "z", i64::from(F32))]
+            [
+                ("y", rounded, i64::from(F16)),
+                (rounded, "h", i64::from(F32)),
+                ("h", "z", i64::from(F32))
+            ]
         );
     }
 }

@@ -414,7 +414,9 @@ pub fn values(feeding: &Feeding, pass: usize) -> Vec<Values> {
                 Ok(DataType::Bool) => Values::Bool(as_f64.iter().map(|&v| v != 0.0).collect()),
                 // Generated values are float32 already, so rounding from f64
                 // is rounding the float32 stream (one rounding, to nearest even).
-                Ok(DataType::Float16) => Values::F16(as_f64.iter().map(|&v| f16::from_f64(v)).collect()),
+                Ok(DataType::Float16) => {
+                    Values::F16(as_f64.iter().map(|&v| f16::from_f64(v)).collect())
+                }
                 Ok(DataType::Bfloat16) => {
                     Values::BF16(as_f64.iter().map(|&v| bf16::from_f32(v as f32)).collect())
                 }

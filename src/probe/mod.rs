@@ -944,7 +944,9 @@ fn branch_values(slot: &Slot) -> Result<(Vec<usize>, View<'_>)> {
     let mut sum: Option<Vec<f32>> = None;
     for b in inputs {
         let (_, y) = view(b)?;
-        let acc = sum.get_or_insert_with(|| with_view!(x, v => v.iter().map(|a| stats::Value::f32(*a)).collect()));
+        let acc = sum.get_or_insert_with(
+            || with_view!(x, v => v.iter().map(|a| stats::Value::f32(*a)).collect()),
+        );
         with_view!(y, y => {
             if y.len() == acc.len() {
                 for (a, v) in acc.iter_mut().zip(y.iter()) {
