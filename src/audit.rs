@@ -12,13 +12,13 @@ use crate::findings::{self, FindingConfig, InfluenceFacts, InfluenceThresholds};
 use crate::gate::{self, Site};
 use crate::graph::op;
 use crate::load::{self, ExternalData, tensor};
-use crate::lower;
+use crate::lower::{self, precision};
 use crate::probe::inputs::{self, Feeding, InputConfig};
 use crate::probe::{self, BlockSamples, GatedPlan, ModelSource, Progress, Watch};
 use crate::proto::ModelProto;
 use crate::report::{
     ComparedOutput, EffectiveDepthRow, FedRow, FeedRow, FindingRow, GainSetup, InfluenceReport,
-    InfluenceRow, KnockoutSetup, Report, RunRow, SkippedRow, StatsRow, ThresholdsRow,
+    InfluenceRow, KnockoutSetup, PrecisionRow, Report, RunRow, SkippedRow, StatsRow, ThresholdsRow,
 };
 use crate::scan::{self, Analysis, ScanConfig};
 use crate::stats::{self, Agreement, Spread};
@@ -125,6 +125,7 @@ pub fn audit_file(path: &Path, config: &AuditConfig, progress: &dyn Progress) ->
     // tract runs what was analysed: the lowered model when a rewrite changed
     // it (external payloads still resolve against the model's folder).
     let lowered_bytes = lowered.changed().then(|| lowered.model.encode_to_vec());
+    let half = HalfModel::of(&lowered.model, &loaded.external);
     // The surgery works on a copy of the decoded model (payloads in
     // `raw_data` are shared, not copied).
     let surgery = config.influence.as_ref().map(|_| lowered.model.clone());
@@ -135,7 +136,8 @@ pub fn audit_file(path: &Path, config: &AuditConfig, progress: &dyn Progress) ->
         Some(bytes) => ModelSource::BytesIn(bytes, dir),
         None => ModelSource::Path(path),
     };
-    run(info, analysis, source, surgery.map(|m| (m, Some(dir))), config, progress)
+    let dir = Some(dir);
+    run(info, analysis, source, dir, half, surgery.map(|m| (m, dir)), config, progress)
         .map_err(|e| e.at(path))
 }
 
@@ -151,20 +153,129 @@ pub fn audit_model(
     let lowered = lower::lower(model, &external, &config.scan.lower)?;
     let bytes = lowered.model.encode_to_vec();
     let surgery = config.influence.as_ref().map(|_| (lowered.model.clone(), None));
+    let half = HalfModel::of(&lowered.model, &external);
     let analysis = scan::analyse_lowered(lowered, external, &config.scan)?;
-    run(info, analysis, ModelSource::Bytes(&bytes), surgery, config, progress)
+    run(info, analysis, ModelSource::Bytes(&bytes), None, half, surgery, config, progress)
 }
 
+/// A half-precision model as tract is to run it (see `lower::precision`):
+/// float16 natively, with float16 Gemms' biases split off, and its float32
+/// twin when tract cannot; bfloat16 always as its float32 twin.
+struct HalfModel {
+    half: precision::Half,
+    model: ModelProto,
+    external: ExternalData,
+}
+
+impl HalfModel {
+    /// `None` for a model without half-precision types.
+    fn of(model: &ModelProto, external: &ExternalData) -> Option<HalfModel> {
+        precision::half_type(model).map(|half| HalfModel {
+            half,
+            model: model.clone(),
+            external: external.clone(),
+        })
+    }
+
+    fn twin(&self) -> Result<Vec<u8>> {
+        let mut m = self.model.clone();
+        precision::float32_twin(&mut m, &self.external)?;
+        Ok(m.encode_to_vec())
+    }
+}
+
+/// Runs `go` on what tract runs of the model: `source` itself, or for a
+/// half-precision model the form [`HalfModel`] says, retried as the
+/// float32 twin when float16 fails. Returns how it ran.
+fn run_precise<T>(
+    half: Option<&HalfModel>,
+    source: ModelSource<'_>,
+    dir: Option<&Path>,
+    mut go: impl FnMut(ModelSource<'_>) -> Result<T>,
+) -> (Result<T>, Option<PrecisionRow>) {
+    let Some(h) = half else { return (go(source), None) };
+    fn of<'a>(bytes: &'a [u8], dir: Option<&'a Path>) -> ModelSource<'a> {
+        match dir {
+            Some(d) => ModelSource::BytesIn(bytes, d),
+            None => ModelSource::Bytes(bytes),
+        }
+    }
+    let name = h.half.name();
+    let row = |ran: &str, note: String| PrecisionRow {
+        model: name.to_owned(),
+        ran: ran.to_owned(),
+        note,
+    };
+    let twin_note = match h.half {
+        precision::Half::Float16 => {
+            "the float32 twin of the float16 model (weights widened \
+            exactly, its casts to float16 kept, every op computed in float32 without rounding \
+            its result to float16)"
+        }
+        precision::Half::Bfloat16 => {
+            "the float32 twin of the bfloat16 model (weights and \
+            inputs widened exactly from bfloat16, every op computed in float32 without \
+            rounding its result to bfloat16, casts to bfloat16 dropped)"
+        }
+    };
+    let native_error = if h.half == precision::Half::Float16 {
+        let mut m = h.model.clone();
+        let split = precision::split_half_gemms(&mut m);
+        let bytes = m.encode_to_vec();
+        drop(m);
+        match go(of(&bytes, dir)) {
+            Ok(r) => {
+                let mut note = "float16, run natively by tract".to_owned();
+                if split > 0 {
+                    note.push_str(&format!(
+                        " ({split} Gemm with a bias run as Gemm then Add: tract 0.23.9 cannot \
+                         prepare a float16 Gemm's bias)"
+                    ));
+                }
+                return (Ok(r), Some(row("float16", note)));
+            }
+            Err(e) => Some(e),
+        }
+    } else {
+        None
+    };
+    let bytes = match h.twin() {
+        Ok(b) => b,
+        Err(e) => return (Err(native_error.unwrap_or(e)), None),
+    };
+    match (go(of(&bytes, dir)), native_error) {
+        (Ok(r), Some(e)) => {
+            let note = format!("{twin_note}, because tract could not run it in float16: {e}");
+            (Ok(r), Some(row("float32", note)))
+        }
+        (Ok(r), None) => {
+            let note = format!("{twin_note}, because tract 0.23.9 has no bfloat16");
+            (Ok(r), Some(row("float32", note)))
+        }
+        (Err(twin), Some(e)) => (
+            Err(Error::new(
+                crate::error::ErrorKind::Probe,
+                format!("{}; its float32 twin failed too: {}", e.message(), twin.message()),
+            )),
+            None,
+        ),
+        (Err(twin), None) => (Err(twin), None),
+    }
+}
+
+#[allow(clippy::too_many_arguments)]
 fn run(
     info: crate::report::ModelInfo,
     analysis: Analysis,
     source: ModelSource<'_>,
+    dir: Option<&Path>,
+    half: Option<HalfModel>,
     surgery: Option<(ModelProto, Option<&Path>)>,
     config: &AuditConfig,
     progress: &dyn Progress,
 ) -> Result<Audit> {
     if let (Some(influence), Some((model, dir))) = (&config.influence, surgery) {
-        return run_influence(info, analysis, model, dir, influence, config, progress);
+        return run_influence(info, analysis, model, dir, half, influence, config, progress);
     }
     let mut report = scan::report_of(info, &analysis);
     report.command = "audit".to_owned();
@@ -175,7 +286,13 @@ fn run(
     // The analysis holds the decoded weights: free them before tract loads its own copy.
     drop(analysis);
     let mut facts = scan::block_facts(&report);
-    let (run_error, outputs) = match probe::run(source, &watches, &feeding, progress) {
+    let (outcome, precision) =
+        run_precise(half.as_ref(), source, dir, |s| probe::run(s, &watches, &feeding, progress));
+    drop(half);
+    if let Some(run) = report.run.as_mut() {
+        run.precision = precision;
+    }
+    let (run_error, outputs) = match outcome {
         Ok(result) => {
             fill_stats(&mut report, &mut facts, &result.blocks, config.findings.dead_below);
             (None, result.outputs)
@@ -255,6 +372,7 @@ fn run_row(feeding: &Feeding, f: &FindingConfig) -> RunRow {
             dead_channels_above: f.dead_channels_above,
             depth_factor: f.depth_factor,
         },
+        precision: None,
     }
 }
 
@@ -422,11 +540,13 @@ fn per_sample(num: &[f64], den: &[f64]) -> Option<Spread> {
 /// The audit with knockout and/or perturbation gain: the gates go into a
 /// copy of the decoded model, which is encoded and prepared once; the intact
 /// passes measure every block as a plain audit does.
+#[allow(clippy::too_many_arguments)]
 fn run_influence(
     info: crate::report::ModelInfo,
     analysis: Analysis,
     mut model: ModelProto,
     dir: Option<&Path>,
+    half: Option<HalfModel>,
     ic: &InfluenceConfig,
     config: &AuditConfig,
     progress: &dyn Progress,
@@ -490,7 +610,8 @@ fn run_influence(
     drop(analysis);
     let gates = gate::insert(&mut model, &sites, ic.shortcuts && ic.knockout)?;
     let bytes = model.encode_to_vec();
-    drop(model);
+    // A half-precision model runs in the form `run_precise` chooses, gates included.
+    let half = half.map(|h| HalfModel { model, ..h });
     let names = gates.names();
     let mut settings = Vec::new();
     let mut labels: Vec<(usize, bool)> = Vec::new();
@@ -520,7 +641,13 @@ fn run_influence(
         }
     };
     let mut facts = scan::block_facts(&report);
-    let outcome = probe::run_gated(source, &watches, &feeding, &plan, &mut sink, progress);
+    let (outcome, precision) = run_precise(half.as_ref(), source, dir, |s| {
+        probe::run_gated(s, &watches, &feeding, &plan, &mut sink, progress)
+    });
+    drop(half);
+    if let Some(run) = report.run.as_mut() {
+        run.precision = precision;
+    }
     let result = match outcome {
         Ok(r) => r,
         Err(e) => {

@@ -33,3 +33,5 @@ mod scale;
 mod batch;
 // Reports for people: HTML in headless Chromium, Markdown and its size limit.
 mod report;
+// Half precision: float16/bfloat16 inputs, feeds, and statistics against onnxruntime.
+mod half;

@@ -22,6 +22,7 @@
 //!   the node (exit 2); an op no rule knows is left alone.
 
 mod emit;
+pub mod precision;
 mod rules;
 
 use std::collections::HashSet;

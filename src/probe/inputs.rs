@@ -4,6 +4,16 @@
 //! Values come from a ChaCha8 stream per input (`set_stream(input index)`),
 //! drawn sample after sample, so the same seed gives the same values on every
 //! platform and however the samples are split into passes.
+//!
+//! Half-precision inputs (float16, bfloat16) get the same float32 stream
+//! rounded to their type (round to nearest, ties to even), so one seed gives
+//! a float32 model and its half-precision conversion the same inputs up to
+//! that rounding. Feeds: a `.npy`/`.npz` array of float16 (`<f2`) is read
+//! as it is; float32 or float64 arrays are rounded to a half-precision input's
+//! type, and a float16 array widens exactly for a float32 input. numpy has no
+//! bfloat16 type: ml_dtypes saves its bfloat16 arrays as the anonymous
+//! 2-byte record `<V2`, which says nothing of what the bytes are, so it is
+//! refused; bfloat16 inputs are fed from float32 arrays.
 
 use std::collections::BTreeMap;
 use std::fs::File;
@@ -16,6 +26,8 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::StandardNormal;
 use sha2::{Digest, Sha256};
+
+use tract_onnx::prelude::tract_data::half::{bf16, f16};
 
 use crate::error::{Error, ErrorKind, Result};
 use crate::graph::{Dim, Graph, Source};
@@ -126,6 +138,10 @@ pub fn input_specs(g: &Graph) -> Vec<InputSpec> {
 pub enum Values {
     /// 32-bit floats.
     F32(Vec<f32>),
+    /// IEEE 754 half-precision floats.
+    F16(Vec<f16>),
+    /// bfloat16 values (tract has no such type: they are fed widened to float32).
+    BF16(Vec<bf16>),
     /// 64-bit integers.
     I64(Vec<i64>),
     /// 32-bit integers.
@@ -156,6 +172,30 @@ enum Fill {
     Array(ArrayD<f64>),
 }
 
+/// The element type of a feed array, as its `.npy` header declares it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum NpyType {
+    F16,
+    F32,
+    F64,
+    I64,
+    I32,
+    Bool,
+}
+
+impl NpyType {
+    fn name(self) -> &'static str {
+        match self {
+            NpyType::F16 => "float16",
+            NpyType::F32 => "float32",
+            NpyType::F64 => "float64",
+            NpyType::I64 => "int64",
+            NpyType::I32 => "int32",
+            NpyType::Bool => "bool",
+        }
+    }
+}
+
 /// Everything about what is fed, pass by pass.
 #[derive(Debug, Clone)]
 pub struct Feeding {
@@ -178,7 +218,7 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
     if config.samples == 0 {
         return Err(usage("--batch must be at least 1"));
     }
-    let mut arrays: BTreeMap<String, ArrayD<f64>> = BTreeMap::new();
+    let mut arrays: BTreeMap<String, (ArrayD<f64>, NpyType)> = BTreeMap::new();
     let mut feed = None;
     if let Some(path) = &config.feed {
         arrays = read_feed(path, specs)?;
@@ -199,7 +239,7 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
         Dim::Known(k) if !config.shapes.contains_key(&s.name) => Some(*k as usize),
         _ => None,
     });
-    let fed_batch = arrays.values().next().and_then(|a| a.shape().first().copied());
+    let fed_batch = arrays.values().next().and_then(|(a, _)| a.shape().first().copied());
     let samples = fed_batch.unwrap_or(config.samples);
     let pass_batch = match (fixed_batch, fed_batch) {
         (Some(k), _) if k > 0 => k,
@@ -221,25 +261,37 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
     let passes = samples.div_ceil(pass_batch);
     let mut inputs = Vec::with_capacity(specs.len());
     for s in specs {
-        let (pass_shape, source, how) = if let Some(a) = arrays.remove(&s.name) {
+        let (pass_shape, source, how) = if let Some((a, npy)) = arrays.remove(&s.name) {
             let mut shape: Vec<u64> = a.shape().iter().map(|&d| d as u64).collect();
             if let Some(first) = shape.first_mut() {
                 *first = pass_batch as u64;
             }
-            let how = format!(
+            let mut how = format!(
                 "from {}",
                 config.feed.as_deref().map_or(String::new(), |p| p.display().to_string())
             );
+            // Say what a half-precision input or array does to the values.
+            let (file, input) = (npy.name(), crate::load::tensor::dtype_name(s.dtype));
+            if file != input && (is_half(s.dtype) || npy == NpyType::F16) && is_float(s.dtype) {
+                let verb = if is_half(s.dtype) { "rounded to" } else { "widened to" };
+                how.push_str(&format!(" ({file} {verb} {input})"));
+            }
             (shape, Fill::Array(a), how)
         } else {
             let shape = resolve_shape(s, pass_batch, config)?;
             let (source, how) = match config.fills.get(&s.name) {
                 Some(&v) => (Fill::Constant(v), format!("constant {v}")),
                 None if is_float(s.dtype) => {
-                    let how = match config.dist {
+                    let mut how = match config.dist {
                         Dist::Normal => format!("normal(0, {})", config.scale),
                         Dist::Uniform => format!("uniform(-{0}, {0})", config.scale),
                     };
+                    if is_half(s.dtype) {
+                        how.push_str(&format!(
+                            " rounded to {}",
+                            crate::load::tensor::dtype_name(s.dtype)
+                        ));
+                    }
                     (Fill::Random(config.dist, config.scale), how)
                 }
                 None => match s.vocab {
@@ -360,6 +412,14 @@ pub fn values(feeding: &Feeding, pass: usize) -> Vec<Values> {
                 Ok(DataType::Int64) => Values::I64(as_f64.iter().map(|&v| v as i64).collect()),
                 Ok(DataType::Int32) => Values::I32(as_f64.iter().map(|&v| v as i32).collect()),
                 Ok(DataType::Bool) => Values::Bool(as_f64.iter().map(|&v| v != 0.0).collect()),
+                // Generated values are float32 already, so rounding from f64
+                // is rounding the float32 stream (one rounding, to nearest even).
+                Ok(DataType::Float16) => {
+                    Values::F16(as_f64.iter().map(|&v| f16::from_f64(v)).collect())
+                }
+                Ok(DataType::Bfloat16) => {
+                    Values::BF16(as_f64.iter().map(|&v| bf16::from_f32(v as f32)).collect())
+                }
                 _ => Values::F32(as_f64.iter().map(|&v| v as f32).collect()),
             }
         })
@@ -377,7 +437,10 @@ const DIRECTION_STREAMS: u64 = 1 << 32;
 /// the size of the change relative to the input. Non-float inputs are kept.
 /// Directions come from ChaCha8 streams of their own, drawn sample after
 /// sample like the inputs, so they do not depend on how samples are split
-/// into passes.
+/// into passes. Half-precision inputs are kept too: the step (1e-3 by
+/// default) is about two units in the last place of float16 (2^-11 relative
+/// per rounding) and below one of bfloat16 (2^-8), so the change would be
+/// mostly rounding.
 pub fn perturbed(feeding: &Feeding, pass: usize, values: &[Values], step: f32) -> Vec<Values> {
     values
         .iter()
@@ -406,6 +469,10 @@ pub fn perturbed(feeding: &Feeding, pass: usize, values: &[Values], step: f32) -
         .collect()
 }
 
+fn is_half(dtype: i32) -> bool {
+    matches!(DataType::try_from(dtype), Ok(DataType::Float16 | DataType::Bfloat16))
+}
+
 fn is_float(dtype: i32) -> bool {
     matches!(
         DataType::try_from(dtype),
@@ -413,7 +480,7 @@ fn is_float(dtype: i32) -> bool {
     ) || dtype == 0
 }
 
-fn read_feed(path: &Path, specs: &[InputSpec]) -> Result<BTreeMap<String, ArrayD<f64>>> {
+fn read_feed(path: &Path, specs: &[InputSpec]) -> Result<Arrays> {
     let bad = |m: String| Error::new(ErrorKind::Usage, m).at(path);
     let is_npz = path.extension().is_some_and(|e| e.eq_ignore_ascii_case("npz"));
     let names: Vec<&str> = specs.iter().map(|s| s.name.as_str()).collect();
@@ -434,8 +501,13 @@ pub fn read_feed_bytes(
     npz: bool,
     names: &[&str],
 ) -> std::result::Result<BTreeMap<String, ArrayD<f64>>, String> {
-    if npz { read_npz(std::io::Cursor::new(bytes), names) } else { read_npy(bytes, names) }
+    let arrays =
+        if npz { read_npz(std::io::Cursor::new(bytes), names) } else { read_npy(bytes, names) }?;
+    Ok(arrays.into_iter().map(|(k, (a, _))| (k, a)).collect())
 }
+
+/// Feed arrays by input name, with the element type each file declared.
+type Arrays = BTreeMap<String, (ArrayD<f64>, NpyType)>;
 
 /// Largest `.npz` entry decompressed, in bytes (a small archive may inflate
 /// to far more than it holds).
@@ -444,7 +516,7 @@ const MAX_NPZ_ENTRY: u64 = 4 << 30;
 fn read_npz<R: std::io::Read + std::io::Seek>(
     reader: R,
     names: &[&str],
-) -> std::result::Result<BTreeMap<String, ArrayD<f64>>, String> {
+) -> std::result::Result<Arrays, String> {
     let mut zip =
         zip::ZipArchive::new(reader).map_err(|e| format!("not a readable .npz file ({e})"))?;
     let entries: Vec<String> = zip.file_names().map(str::to_owned).collect();
@@ -474,10 +546,7 @@ fn read_npz<R: std::io::Read + std::io::Seek>(
     same_samples(out)
 }
 
-fn read_npy(
-    bytes: &[u8],
-    names: &[&str],
-) -> std::result::Result<BTreeMap<String, ArrayD<f64>>, String> {
+fn read_npy(bytes: &[u8], names: &[&str]) -> std::result::Result<Arrays, String> {
     if names.len() != 1 {
         return Err(format!(
             "a .npy file feeds a model with one input; this one has {} (use a .npz with one entry per input)",
@@ -488,10 +557,9 @@ fn read_npy(
     same_samples(BTreeMap::from([(names[0].to_owned(), array)]))
 }
 
-fn same_samples(
-    arrays: BTreeMap<String, ArrayD<f64>>,
-) -> std::result::Result<BTreeMap<String, ArrayD<f64>>, String> {
-    let batches: Vec<usize> = arrays.values().filter_map(|a| a.shape().first().copied()).collect();
+fn same_samples(arrays: Arrays) -> std::result::Result<Arrays, String> {
+    let batches: Vec<usize> =
+        arrays.values().filter_map(|(a, _)| a.shape().first().copied()).collect();
     if batches.windows(2).any(|w| w[0] != w[1]) {
         return Err("its arrays disagree on the number of samples (the first axis)".to_owned());
     }
@@ -509,7 +577,7 @@ const MAX_NPY_HEADER: usize = 10_000;
 /// in the nesting of brackets (fuzzing found a 138-byte header of four nested
 /// dictionaries that took seconds), and a feed header never nests: it is
 /// `{'descr': '<f4', 'fortran_order': False, 'shape': (2, 3), }`.
-fn check_npy_header(bytes: &[u8]) -> std::result::Result<(), String> {
+fn check_npy_header(bytes: &[u8]) -> std::result::Result<Header<'_>, String> {
     let bad = |m: &str| Err(format!("not a readable .npy array ({m})"));
     let Some(rest) = bytes.strip_prefix(b"\x93NUMPY") else {
         return bad("no .npy magic string");
@@ -530,29 +598,116 @@ fn check_npy_header(bytes: &[u8]) -> std::result::Result<(), String> {
     if count(b'{') != 1 || count(b'}') != 1 || count(b'[') + count(b']') > 0 || count(b'(') > 1 {
         return bad("the header is not a flat dictionary of descr, fortran_order and shape");
     }
-    Ok(())
+    let Ok(text) = std::str::from_utf8(header) else {
+        return bad("the header is not text");
+    };
+    Ok(Header { text, data: start + len })
 }
 
-fn read_npy_any(bytes: &[u8]) -> std::result::Result<ArrayD<f64>, String> {
-    check_npy_header(bytes)?;
+fn read_npy_any(bytes: &[u8]) -> std::result::Result<(ArrayD<f64>, NpyType), String> {
+    let header = check_npy_header(bytes)?;
+    // ndarray-npy reads no float16: the two half-precision layouts numpy
+    // writes are read here, and ml_dtypes' bfloat16 (`<V2`) is refused.
+    match descr(header) {
+        Some("<f2" | ">f2") => return read_f16(bytes, header).map(|a| (a, NpyType::F16)),
+        Some("<V2" | "|V2") => {
+            return Err("not a readable .npy array: its element type is '<V2', the anonymous \
+                        2-byte record that ml_dtypes' bfloat16 is saved as (and any other \
+                        2-byte record too); save bfloat16 feeds as float32 (np.float32), which \
+                        shunt rounds to bfloat16 for a bfloat16 input"
+                .to_owned());
+        }
+        _ => {}
+    }
     if let Ok(a) = ArrayD::<f32>::read_npy(bytes) {
-        return Ok(a.mapv(|v| v as f64));
+        return Ok((a.mapv(|v| v as f64), NpyType::F32));
     }
     if let Ok(a) = ArrayD::<f64>::read_npy(bytes) {
-        return Ok(a);
+        return Ok((a, NpyType::F64));
     }
     if let Ok(a) = ArrayD::<i64>::read_npy(bytes) {
-        return Ok(a.mapv(|v| v as f64));
+        return Ok((a.mapv(|v| v as f64), NpyType::I64));
     }
     if let Ok(a) = ArrayD::<i32>::read_npy(bytes) {
-        return Ok(a.mapv(|v| v as f64));
+        return Ok((a.mapv(|v| v as f64), NpyType::I32));
     }
     match ArrayD::<bool>::read_npy(bytes) {
-        Ok(a) => Ok(a.mapv(|v| if v { 1.0 } else { 0.0 })),
+        Ok(a) => Ok((a.mapv(|v| if v { 1.0 } else { 0.0 }), NpyType::Bool)),
         Err(e) => Err(format!(
-            "not a readable .npy array of float32, float64, int64, int32 or bool ({e})"
+            "not a readable .npy array of float16, float32, float64, int64, int32 or bool ({e})"
         )),
     }
+}
+
+/// Where a checked `.npy` header is: its text and the offset of the data.
+#[derive(Clone, Copy)]
+struct Header<'a> {
+    text: &'a str,
+    data: usize,
+}
+
+/// The value of `key` in a flat `.npy` header dictionary: the text after
+/// `'key':` up to the next top-level comma (a tuple counts as one value).
+fn header_value<'a>(header: Header<'a>, key: &str) -> Option<&'a str> {
+    let at = header.text.find(&format!("'{key}'"))?;
+    let rest = header.text[at + key.len() + 2..].trim_start().strip_prefix(':')?.trim_start();
+    let end = if rest.starts_with('(') {
+        rest.find(')')? + 1
+    } else {
+        rest.find([',', '}']).unwrap_or(rest.len())
+    };
+    Some(rest[..end].trim())
+}
+
+/// The element type a header declares (`<f4`, `<f2`…), without its quotes.
+fn descr(header: Header<'_>) -> Option<&str> {
+    let v = header_value(header, "descr")?;
+    v.strip_prefix('\'').and_then(|v| v.strip_suffix('\''))
+}
+
+/// A float16 `.npy` array (either byte order, C or Fortran layout), widened
+/// to f64 exactly.
+fn read_f16(bytes: &[u8], header: Header<'_>) -> std::result::Result<ArrayD<f64>, String> {
+    let bad = |m: &str| format!("not a readable .npy array of float16 ({m})");
+    let fortran = match header_value(header, "fortran_order") {
+        Some("False") => false,
+        Some("True") => true,
+        _ => return Err(bad("no fortran_order of True or False")),
+    };
+    let shape = header_value(header, "shape")
+        .and_then(|v| v.strip_prefix('(')?.strip_suffix(')'))
+        .ok_or_else(|| bad("no shape tuple"))?;
+    let shape: Vec<usize> = shape
+        .split(',')
+        .map(str::trim)
+        .filter(|d| !d.is_empty())
+        .map(|d| d.parse::<usize>().map_err(|_| bad(&format!("a dimension '{d}'"))))
+        .collect::<std::result::Result<_, _>>()?;
+    let n = shape.iter().try_fold(1usize, |acc, &d| acc.checked_mul(d));
+    let data = &bytes[header.data..];
+    if n.and_then(|n| n.checked_mul(2)) != Some(data.len()) {
+        return Err(bad(&format!(
+            "{} bytes of data for shape {shape:?}, which needs {}",
+            data.len(),
+            n.map_or_else(|| "more than 2^64 elements".to_owned(), |n| format!("{}", n * 2))
+        )));
+    }
+    let big = descr(header) == Some(">f2");
+    let values: Vec<f64> = data
+        .chunks_exact(2)
+        .map(|b| {
+            let bits = if big { [b[1], b[0]] } else { [b[0], b[1]] };
+            f16::from_le_bytes(bits).to_f64()
+        })
+        .collect();
+    use ndarray::ShapeBuilder;
+    let dim = ndarray::IxDyn(&shape);
+    let a = if fortran {
+        ArrayD::from_shape_vec(dim.f(), values)
+    } else {
+        ArrayD::from_shape_vec(dim, values)
+    };
+    a.map_err(|e| bad(&e.to_string()))
 }
 
 fn sha256_of(path: &Path) -> Result<String> {

@@ -11,6 +11,12 @@
 //!
 //! **Invariant:** memory stays near one plain forward pass: per block, at most
 //! the shortcut and branch tensors are held, and only until both are seen.
+//!
+//! Half precision: float16 tensors are measured where they lie, each element
+//! widened to `f32` as the kernels read it (`stats::Value`), with `f64`
+//! accumulators; no float32 copy is made. Inputs are fed in the element type
+//! tract parsed for them, so the same feeding runs a float16 model natively
+//! or its float32 twin (`lower::precision`).
 
 pub mod inputs;
 
@@ -19,6 +25,7 @@ use std::panic::{AssertUnwindSafe, catch_unwind};
 use std::path::Path;
 
 use tract_onnx::prelude::*;
+use tract_onnx::tract_hir::infer::Factoid;
 
 use crate::error::{Error, ErrorKind, Result};
 use crate::stats;
@@ -167,8 +174,8 @@ fn run_inner(
 /// Where the value of one tract input comes from.
 #[derive(Debug, Clone, Copy)]
 enum InputSlot {
-    /// Input `i` of the feeding.
-    Fed(usize),
+    /// Input `i` of the feeding, as a tensor of this type.
+    Fed(usize, DatumType),
     /// Gate `k` of the gate list.
     Gate(usize),
 }
@@ -250,11 +257,17 @@ fn prepare(
         })?;
         let shape: Vec<usize> =
             feeding.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
-        let dt = datum_type(&feeding.inputs[fed]);
+        // A half-precision input is fed as the model tract reads declares it:
+        // float16 natively, float32 in a float32 twin.
+        let parsed_dt = model.input_fact(i).ok().and_then(|f| f.datum_type.concretize());
+        let dt = match (datum_type(&feeding.inputs[fed]), parsed_dt) {
+            (DatumType::F16, Some(DatumType::F32)) => DatumType::F32,
+            (dt, _) => dt,
+        };
         model
             .set_input_fact(i, InferenceFact::dt_shape(dt, shape))
             .map_err(|e| tract_err(&format!("tract rejects the shape of input '{name}'"), &e))?;
-        order.push(InputSlot::Fed(fed));
+        order.push(InputSlot::Fed(fed, dt));
     }
 
     // Protect watched tensors as extra outputs.
@@ -333,10 +346,10 @@ impl Prepared {
         let mut tensors: TVec<TValue> = tvec![];
         for slot in &self.order {
             let t = match *slot {
-                InputSlot::Fed(fed) => {
+                InputSlot::Fed(fed, dt) => {
                     let shape: Vec<usize> =
                         feeding.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
-                    to_tensor(&values[fed], &shape).map_err(|e| tract_err("tract", &e))?
+                    to_tensor(&values[fed], &shape, dt).map_err(|e| tract_err("tract", &e))?
                 }
                 InputSlot::Gate(k) => tensor0(gates.get(k).copied().unwrap_or(1.0)),
             };
@@ -744,17 +757,82 @@ fn datum_type(fed: &inputs::Fed) -> DatumType {
         Ok(DataType::Int64) => i64::datum_type(),
         Ok(DataType::Int32) => i32::datum_type(),
         Ok(DataType::Bool) => bool::datum_type(),
+        // tract 0.23.9 has no bfloat16: a bfloat16 model runs as a float32 twin.
+        Ok(DataType::Float16) => f16::datum_type(),
         _ => f32::datum_type(),
     }
 }
 
-fn to_tensor(values: &Values, shape: &[usize]) -> TractResult<Tensor> {
+/// The tensor of one input in the type tract was told (`dt`): half-precision
+/// values widen exactly to a float32 twin's input.
+fn to_tensor(values: &Values, shape: &[usize], dt: DatumType) -> TractResult<Tensor> {
     match values {
+        Values::F32(v) if dt == DatumType::F16 => {
+            Tensor::from_shape(shape, &v.iter().map(|&x| f16::from_f32(x)).collect::<Vec<_>>())
+        }
         Values::F32(v) => Tensor::from_shape(shape, v),
+        Values::F16(v) if dt == DatumType::F16 => Tensor::from_shape(shape, v),
+        Values::F16(v) => {
+            Tensor::from_shape(shape, &v.iter().map(|x| x.to_f32()).collect::<Vec<_>>())
+        }
+        Values::BF16(v) => {
+            Tensor::from_shape(shape, &v.iter().map(|x| x.to_f32()).collect::<Vec<_>>())
+        }
         Values::I64(v) => Tensor::from_shape(shape, v),
         Values::I32(v) => Tensor::from_shape(shape, v),
         Values::Bool(v) => Tensor::from_shape(shape, v),
     }
+}
+
+impl stats::Value for f16 {
+    #[inline(always)]
+    fn f32(self) -> f32 {
+        self.to_f32()
+    }
+}
+
+/// A watched tensor's values: float32 and float16 read in place, anything
+/// else cast to float32.
+enum View<'a> {
+    F32(&'a [f32]),
+    F16(&'a [f16]),
+    Owned(Vec<f32>),
+}
+
+/// Runs `$body` with `$x` bound to the view's slice, whatever its type.
+macro_rules! with_view {
+    ($view:expr, $x:ident => $body:expr) => {
+        match $view {
+            View::F32($x) => $body,
+            View::F16($x) => $body,
+            View::Owned(ref owned) => {
+                let $x = &owned[..];
+                $body
+            }
+        }
+    };
+}
+
+/// A tensor's shape and values for measuring, without a copy when they are
+/// float32 or float16.
+fn view(t: &Tensor) -> Result<(Vec<usize>, View<'_>)> {
+    let shape = t.shape().to_vec();
+    let err = |e: anyhow::Error| {
+        Error::new(ErrorKind::Probe, format!("a watched tensor cannot be read as float32: {e}"))
+    };
+    let dt = t.datum_type();
+    if dt == f32::datum_type() || dt == f16::datum_type() {
+        let plain = t.try_as_plain_ram().map_err(err)?;
+        let v = if dt == f32::datum_type() {
+            View::F32(plain.as_slice::<f32>().map_err(err)?)
+        } else {
+            View::F16(plain.as_slice::<f16>().map_err(err)?)
+        };
+        return Ok((shape, v));
+    }
+    let cast = t.cast_to::<f32>().map_err(err)?;
+    let view = cast.try_as_plain_ram().map_err(err)?;
+    Ok((shape, View::Owned(view.as_slice::<f32>().map_err(err)?.to_vec())))
 }
 
 /// A constant whose leading axis is not the batch (a folded tensor of shape
@@ -790,7 +868,7 @@ fn floats(t: &Tensor) -> Result<(Vec<usize>, std::borrow::Cow<'_, [f32]>)> {
 
 /// Splits `x` into per-sample slices when its length is a multiple of the
 /// pass batch (the batch is the outermost axis in memory), else one slice.
-fn samples(x: &[f32], batch: usize) -> std::slice::Chunks<'_, f32> {
+fn samples<T>(x: &[T], batch: usize) -> std::slice::Chunks<'_, T> {
     let n = if batch > 0 && !x.is_empty() && x.len().is_multiple_of(batch) {
         x.len() / batch
     } else {
@@ -809,24 +887,12 @@ fn observe(
 ) -> Result<()> {
     match role {
         Role::Fork => {
-            let (_, x) = floats(value)?;
-            acc.fork_rms.extend(samples(&x, batch).map(stats::rms));
+            let (_, v) = view(value)?;
+            with_view!(v, x => acc.fork_rms.extend(samples(x, batch).map(stats::rms)));
         }
         Role::Output => {
-            let (_, x) = floats(value)?;
-            let mut finite = true;
-            for sample in samples(&x, batch) {
-                // One pass: the sum of squares, and what a ReLU would zero.
-                let (ss, not_positive) = stats::sum_sq_not_positive(sample);
-                finite &= ss.is_finite();
-                acc.output_rms.push(rms_of(ss, sample.len()));
-                if w.relu_after {
-                    acc.zeroed.push(not_positive as f64 / sample.len().max(1) as f64);
-                }
-            }
-            if !finite {
-                count_non_finite(acc, &x);
-            }
+            let (_, v) = view(value)?;
+            with_view!(v, x => measure_output(acc, w, x, batch));
         }
         Role::Shortcut => {
             slot.shortcut = Some(value.clone());
@@ -840,34 +906,57 @@ fn observe(
     Ok(())
 }
 
+/// The merge output: per sample its RMS and, with a ReLU after the merge,
+/// the fraction it zeroes.
+fn measure_output<T: stats::Value>(acc: &mut BlockSamples, w: &Watch, x: &[T], batch: usize) {
+    let mut finite = true;
+    for sample in samples(x, batch) {
+        // One pass: the sum of squares, and what a ReLU would zero.
+        let (ss, not_positive) = stats::sum_sq_not_positive(sample);
+        finite &= ss.is_finite();
+        acc.output_rms.push(rms_of(ss, sample.len()));
+        if w.relu_after {
+            acc.zeroed.push(not_positive as f64 / sample.len().max(1) as f64);
+        }
+    }
+    if !finite {
+        count_non_finite(acc, x);
+    }
+}
+
 fn rms_of(sum_sq: f64, n: usize) -> f64 {
     if n == 0 { 0.0 } else { (sum_sq / n as f64).sqrt() }
 }
 
-fn count_non_finite(acc: &mut BlockSamples, x: &[f32]) {
+fn count_non_finite<T: stats::Value>(acc: &mut BlockSamples, x: &[T]) {
     let (nan, inf) = stats::non_finite(x);
     acc.nan += nan;
     acc.inf += inf;
 }
 
-/// The branch at the merge: the one branch input (borrowed), or the sum of several.
-fn branch_values(slot: &Slot) -> Result<(Vec<usize>, std::borrow::Cow<'_, [f32]>)> {
+/// The branch at the merge: the one branch input (read in place), or the
+/// sum of several (in float32).
+fn branch_values(slot: &Slot) -> Result<(Vec<usize>, View<'_>)> {
     let mut inputs = slot.branch.iter().flatten();
     let first =
         inputs.next().ok_or_else(|| Error::new(ErrorKind::Probe, "a block without branch"))?;
-    let (shape, x) = floats(first)?;
+    let (shape, x) = view(first)?;
     let mut sum: Option<Vec<f32>> = None;
     for b in inputs {
-        let (_, y) = floats(b)?;
-        let acc = sum.get_or_insert_with(|| x.to_vec());
-        if y.len() == acc.len() {
-            for (a, v) in acc.iter_mut().zip(y.iter()) {
-                *a += v;
+        let (_, y) = view(b)?;
+        let acc = sum.get_or_insert_with(
+            || with_view!(x, v => v.iter().map(|a| stats::Value::f32(*a)).collect()),
+        );
+        with_view!(y, y => {
+            if y.len() == acc.len() {
+                for (a, v) in acc.iter_mut().zip(y.iter()) {
+                    *a += stats::Value::f32(*v);
+                }
             }
-        }
+        });
     }
     Ok(match sum {
-        Some(v) => (shape, std::borrow::Cow::Owned(v)),
+        Some(v) => (shape, View::Owned(v)),
         None => (shape, x),
     })
 }
@@ -879,10 +968,30 @@ fn pair(acc: &mut BlockSamples, slot: &mut Slot, w: &Watch, batch: usize) -> Res
         return Ok(());
     }
     let sc_value = slot.shortcut.take().expect("checked above");
-    let (sc_shape, sc) = floats(&sc_value)?;
+    let (sc_shape, sc) = view(&sc_value)?;
     let (shape, br) = branch_values(slot)?;
+    let same = sc_shape == shape;
+    with_view!(sc, a => with_view!(br, b => pair_measure(acc, w, batch, same, &shape, a, b)));
+    for b in &mut slot.branch {
+        *b = None;
+    }
+    Ok(())
+}
+
+/// [`pair`] on the values: per sample the shortcut and branch RMS, their
+/// cosine and per-channel sums when the shapes agree, each side on its own
+/// when the merge broadcasts.
+fn pair_measure<A: stats::Value, B: stats::Value>(
+    acc: &mut BlockSamples,
+    w: &Watch,
+    batch: usize,
+    same_shape: bool,
+    shape: &[usize],
+    sc: &[A],
+    br: &[B],
+) {
     let mut finite = true;
-    if sc.len() == br.len() && sc_shape == shape {
+    if sc.len() == br.len() && same_shape {
         // Per-channel sums of one sample laid out [outer, channels, inner].
         let (channels, inner) = if shape.len() >= 2 {
             let axis = if w.channels_first { 1 } else { shape.len() - 1 };
@@ -894,7 +1003,7 @@ fn pair(acc: &mut BlockSamples, slot: &mut Slot, w: &Watch, batch: usize) -> Res
             acc.channel_shortcut = vec![0.0; channels];
             acc.channel_branch = vec![0.0; channels];
         }
-        for (a, b) in samples(&sc, batch).zip(samples(&br, batch)) {
+        for (a, b) in samples(sc, batch).zip(samples(br, batch)) {
             let (ss, bb, sb) =
                 stats::pair_sums(a, b, inner, &mut acc.channel_shortcut, &mut acc.channel_branch);
             finite &= ss.is_finite() && bb.is_finite() && sb.is_finite();
@@ -906,24 +1015,19 @@ fn pair(acc: &mut BlockSamples, slot: &mut Slot, w: &Watch, batch: usize) -> Res
         }
     } else {
         // Broadcast merge: each side on its own, no cosine.
-        for a in samples(&sc, batch) {
+        for a in samples(sc, batch) {
             let ss = stats::sum_sq(a);
             finite &= ss.is_finite();
             acc.shortcut_rms.push(rms_of(ss, a.len()));
         }
-        for b in samples(&br, batch) {
+        for b in samples(br, batch) {
             let bb = stats::sum_sq(b);
             finite &= bb.is_finite();
             acc.branch_rms.push(rms_of(bb, b.len()));
         }
     }
     if !finite {
-        count_non_finite(acc, &sc);
-        count_non_finite(acc, &br);
+        count_non_finite(acc, sc);
+        count_non_finite(acc, br);
     }
-    drop(br);
-    for b in &mut slot.branch {
-        *b = None;
-    }
-    Ok(())
 }

@@ -234,8 +234,11 @@ impl Page {
                 .collect(),
             run: r.run.as_ref().map(|run| RunView {
                 rows: {
-                    let mut rows = vec![
-                        ("engine", t(&run.engine)),
+                    let mut rows = vec![("engine", t(&run.engine))];
+                    if let Some(p) = &run.precision {
+                        rows.push(("precision", t(&p.note)));
+                    }
+                    rows.extend([
                         (
                             "samples",
                             format!(
@@ -257,7 +260,7 @@ impl Page {
                                 run.thresholds.depth_factor
                             ),
                         ),
-                    ];
+                    ]);
                     if let Some(f) = &run.feed {
                         rows.push(("feed", format!("{} (sha256 {})", t(&f.path), t(&f.sha256))));
                     }

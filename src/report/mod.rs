@@ -24,7 +24,8 @@ pub const REPORT_SCHEMA: &str = "shunt/report";
 /// Version 1 was the scan-only document `shunt/scan`.
 ///
 /// Version 4 added `lowered` and `NodeRef::lowered_from` (both left out when
-/// empty), for models whose fused or quantised operators were lowered.
+/// empty), for models whose fused or quantised operators were lowered, and
+/// `RunRow::precision` (left out for models without half-precision types).
 pub const REPORT_SCHEMA_VERSION: u32 = 4;
 
 /// The result of `shunt scan` or `shunt audit` on one model.
@@ -294,6 +295,22 @@ pub struct RunRow {
     pub feed: Option<FeedRow>,
     /// The thresholds findings were judged by.
     pub thresholds: ThresholdsRow,
+    /// How a half-precision model ran; left out for other models.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub precision: Option<PrecisionRow>,
+}
+
+/// How a half-precision model was run.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PrecisionRow {
+    /// The model's half-precision type: `float16` or `bfloat16`.
+    pub model: String,
+    /// What tract computed in: the model's own type (`float16`), or
+    /// `float32` for the float32 twin.
+    pub ran: String,
+    /// What was run and why, in a sentence.
+    pub note: String,
 }
 
 /// One fed input.

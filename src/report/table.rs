@@ -145,6 +145,9 @@ fn header(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
             "  ran {} sample(s) in {} pass(es) of {} with {}, seed {}",
             run.samples, run.passes, run.pass_batch, run.engine, run.seed
         )?;
+        if let Some(p) = &run.precision {
+            writeln!(out, "  precision: {}", terminal_safe(&p.note))?;
+        }
         for i in &run.inputs {
             let shape: Vec<String> = i.shape.iter().map(u64::to_string).collect();
             writeln!(

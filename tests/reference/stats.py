@@ -46,6 +46,7 @@ from onnx import helper, shape_inference
 
 NUMPY_OF_ONNX = {
     onnx.TensorProto.FLOAT: np.float32,
+    onnx.TensorProto.FLOAT16: np.float16,
     onnx.TensorProto.DOUBLE: np.float64,
     onnx.TensorProto.INT64: np.int64,
     onnx.TensorProto.INT32: np.int32,
