@@ -14,7 +14,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::audit::{self, AuditConfig};
 use crate::error::{Error, ErrorKind, Result};
-use crate::load::{self, tensor};
+use crate::load;
 use crate::probe::Progress;
 use crate::probe::inputs::{self, Feeding};
 use crate::report::table::terminal_safe;
@@ -191,21 +191,7 @@ fn same_feeding(a: &Feeding, b: &Feeding, b_path: &Path) -> Result<()> {
         ));
     }
     for (x, y) in a.inputs.iter().zip(&b.inputs) {
-        let tail = |f: &inputs::Fed| f.pass_shape.iter().skip(1).copied().collect::<Vec<u64>>();
-        let mismatch = if x.dtype != y.dtype {
-            Some(format!(
-                "element type {} in A, {} in B",
-                tensor::dtype_name(x.dtype),
-                tensor::dtype_name(y.dtype)
-            ))
-        } else if tail(x) != tail(y) {
-            Some(format!("sample shape {:?} in A, {:?} in B", tail(x), tail(y)))
-        } else if x.how != y.how {
-            Some(format!("values '{}' in A, '{}' in B", x.how, y.how))
-        } else {
-            None
-        };
-        if let Some(m) = mismatch {
+        if let Err(m) = x.same_values(y) {
             return Err(usage(
                 b_path,
                 format!("cannot feed both models the same input '{}': {m}", x.name),

@@ -282,8 +282,9 @@ fn transformed_models_keep_the_census_of_their_source() {
     assert!(failures.is_empty(), "census changed by a transformation:\n{}", failures.join("\n"));
 }
 
-/// `compare` of each source with its transformed model reports no
-/// structural difference.
+/// `compare` of each source with its transformed model, both run on the
+/// same inputs (rounded to float16 or bfloat16 for the half-precision ones),
+/// reports no structural difference and a ratio change for every block.
 #[test]
 fn compare_finds_no_structural_difference() {
     let mut failures = Vec::new();
@@ -294,7 +295,6 @@ fn compare_finds_no_structural_difference() {
             "compare",
             a.to_str().unwrap(),
             b.to_str().unwrap(),
-            "--no-run",
             "--format",
             "json",
             "--quiet",
@@ -310,6 +310,16 @@ fn compare_finds_no_structural_difference() {
         };
         if json["structural_differences"] != 0 || run.code != 0 {
             failures.push(format!("{}: exit {}: {}", case.file, run.code, json["blocks"]));
+            continue;
+        }
+        let blocks = json["blocks"].as_array().unwrap();
+        let measured = blocks.iter().filter(|b| b["ratio_change"].is_number()).count();
+        if blocks.is_empty() || measured != blocks.len() {
+            failures.push(format!(
+                "{}: ratio changes for {measured} of {} blocks",
+                case.file,
+                blocks.len()
+            ));
         }
     }
     assert!(failures.is_empty(), "structural differences:\n{}", failures.join("\n"));

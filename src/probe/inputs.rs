@@ -164,12 +164,37 @@ pub struct Fed {
     source: Fill,
 }
 
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, PartialEq)]
 enum Fill {
     Random(Dist, f32),
     Tokens(u64),
     Constant(f64),
     Array(ArrayD<f64>),
+}
+
+impl Fed {
+    /// Whether `other` is fed the same values, each rounded to its own
+    /// element type: the same source (distribution and scale, token range,
+    /// constant or array) and, past the batch axis, the same shape; the
+    /// element types agree, or both are float types (a float16 copy of a
+    /// model gets the float32 stream rounded, to nearest even).
+    pub fn same_values(&self, other: &Fed) -> Result<(), String> {
+        if self.dtype != other.dtype && !(is_float(self.dtype) && is_float(other.dtype)) {
+            return Err(format!(
+                "element type {} in A, {} in B",
+                crate::load::tensor::dtype_name(self.dtype),
+                crate::load::tensor::dtype_name(other.dtype)
+            ));
+        }
+        let tail = |f: &Fed| f.pass_shape.iter().skip(1).copied().collect::<Vec<u64>>();
+        if tail(self) != tail(other) {
+            return Err(format!("sample shape {:?} in A, {:?} in B", tail(self), tail(other)));
+        }
+        if self.source != other.source {
+            return Err(format!("values '{}' in A, '{}' in B", self.how, other.how));
+        }
+        Ok(())
+    }
 }
 
 /// The element type of a feed array, as its `.npy` header declares it.
