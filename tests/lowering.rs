@@ -386,21 +386,36 @@ fn lowered_models_agree_with_onnxruntime() {
 /// onnxruntime's on the transformed models themselves.
 #[test]
 fn block_statistics_agree_with_onnxruntime() {
+    // Quantised models: both engines compute DequantizeLinear -> float op ->
+    // QuantizeLinear, and may round a value next to a half step the other
+    // way. If m of N elements differ by one step s, RMS moves by at most
+    // s * sqrt(m / N); onnxruntime against the lowered model differs in about
+    // 1 element in 10^6 per op (measured while writing the rules), and an
+    // 8-bit step is at most ~5% of these tensors' RMS, so 1e-3 relative holds
+    // with room for a few layers of such flips. Cosines: the same bound.
+    // The fork is measured dequantised, which onnxruntime's list does not name.
+    let quantised = reference_stats::Tolerance { rms: 1e-3, cos: 1e-3, fork: false };
     let cases = [
-        "encoder_postnorm_ortopt.onnx",
-        "encoder_prenorm_ortopt.onnx",
-        "resnet_cifar_ort_all_nonchwc.onnx",
-        "resnet_cifar_ort_all.onnx",
-        "nf_resnet_ws.onnx",
+        ("encoder_postnorm_ortopt.onnx", reference_stats::FLOAT32),
+        ("encoder_prenorm_ortopt.onnx", reference_stats::FLOAT32),
+        ("bert_postnorm_ortopt.onnx", reference_stats::FLOAT32),
+        ("resnet_cifar_ort_extended.onnx", reference_stats::FLOAT32),
+        ("resnet_cifar_ort_all_nonchwc.onnx", reference_stats::FLOAT32),
+        ("resnet_cifar_ort_all.onnx", reference_stats::FLOAT32),
+        ("nf_resnet_ws.onnx", reference_stats::FLOAT32),
+        ("resnet_cifar_qop.onnx", quantised),
+        ("resnet_cifar_qdq_ort.onnx", quantised),
+        ("encoder_postnorm_dynq.onnx", quantised),
     ];
     let dir = util::tempdir();
-    for file in cases {
+    for (file, tol) in cases {
         let original = transformed(file);
         let lowered = lower(&original, dir.path());
         let feed = format!("{}.in.npz", original.with_extension("").display());
         let reference = reference_stats::run_stats(lowered.to_str().unwrap(), &feed, &[]);
         let report = reference_stats::audit(lowered.to_str().unwrap(), &feed);
-        reference_stats::check_blocks(file, &report, &reference);
+        assert!(report["blocks"].as_array().is_some_and(|b| !b.is_empty()), "{file}: no blocks");
+        reference_stats::check_blocks_within(file, &report, &reference, tol);
     }
 }
 
