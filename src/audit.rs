@@ -109,10 +109,47 @@ pub struct Audit {
 /// The version string of the inference engine.
 pub const ENGINE: &str = "tract-onnx 0.23.9";
 
-/// Audits a model file.
+/// Audits a model file: [`open_file`], [`Opened::plan`], [`measure`].
 pub fn audit_file(path: &Path, config: &AuditConfig, progress: &dyn Progress) -> Result<Audit> {
+    let opened = open_file(path, config)?;
+    let feeding = opened.plan(&config.inputs).map_err(|e| e.at(path))?;
+    measure(opened, feeding, config, progress)
+}
+
+/// Audits an in-memory model (tests, benchmarks); `label` stands for the path.
+pub fn audit_model(
+    model: ModelProto,
+    label: &str,
+    config: &AuditConfig,
+    progress: &dyn Progress,
+) -> Result<Audit> {
+    let opened = open_model(model, label, config)?;
+    let feeding = opened.plan(&config.inputs)?;
+    measure(opened, feeding, config, progress)
+}
+
+/// A model opened for an audit: decoded, lowered and analysed once, with
+/// what tract is to run (the lowered model when a rewrite changed it).
+pub struct Opened {
+    info: crate::report::ModelInfo,
+    analysis: Analysis,
+    /// The model file (errors name it).
+    file: Option<std::path::PathBuf>,
+    /// The file, when tract reads the model as it is.
+    path: Option<std::path::PathBuf>,
+    /// The folder external data resolves against.
+    dir: Option<std::path::PathBuf>,
+    /// The encoded model tract runs, when not the file itself.
+    bytes: Option<Vec<u8>>,
+    half: Option<HalfModel>,
+    /// The lowered model, kept for the knockout surgery.
+    surgery: Option<ModelProto>,
+}
+
+/// Opens a model file for an audit: load, checksums (tract reads the
+/// external payloads later), lower, analyse.
+pub fn open_file(path: &Path, config: &AuditConfig) -> Result<Opened> {
     let loaded = load::load(path, &config.scan.load)?;
-    // tract reads the external payloads next; check them first.
     load::verify_checksums(&loaded.model, &loaded.external).map_err(|e| e.at(path))?;
     let info = scan::model_info(
         &path.display().to_string(),
@@ -124,38 +161,101 @@ pub fn audit_file(path: &Path, config: &AuditConfig, progress: &dyn Progress) ->
         lower::lower(loaded.model, &loaded.external, &config.scan.lower).map_err(|e| e.at(path))?;
     // tract runs what was analysed: the lowered model when a rewrite changed
     // it (external payloads still resolve against the model's folder).
-    let lowered_bytes = lowered.changed().then(|| lowered.model.encode_to_vec());
+    let bytes = lowered.changed().then(|| lowered.model.encode_to_vec());
     let half = HalfModel::of(&lowered.model, &loaded.external);
     // The surgery works on a copy of the decoded model (payloads in
     // `raw_data` are shared, not copied).
     let surgery = config.influence.as_ref().map(|_| lowered.model.clone());
     let analysis =
         scan::analyse_lowered(lowered, loaded.external, &config.scan).map_err(|e| e.at(path))?;
-    let dir = path.parent().unwrap_or(Path::new("."));
-    let source = match &lowered_bytes {
-        Some(bytes) => ModelSource::BytesIn(bytes, dir),
-        None => ModelSource::Path(path),
-    };
-    let dir = Some(dir);
-    run(info, analysis, source, dir, half, surgery.map(|m| (m, dir)), config, progress)
-        .map_err(|e| e.at(path))
+    let dir = path.parent().map(|d| if d.as_os_str().is_empty() { Path::new(".") } else { d });
+    Ok(Opened {
+        info,
+        analysis,
+        file: Some(path.to_path_buf()),
+        path: bytes.is_none().then(|| path.to_path_buf()),
+        dir: dir.map(Path::to_path_buf),
+        bytes,
+        half,
+        surgery,
+    })
 }
 
-/// Audits an in-memory model (tests, benchmarks); `label` stands for the path.
-pub fn audit_model(
-    model: ModelProto,
-    label: &str,
-    config: &AuditConfig,
-    progress: &dyn Progress,
-) -> Result<Audit> {
+/// Opens an in-memory model (no external data) for an audit.
+pub fn open_model(model: ModelProto, label: &str, config: &AuditConfig) -> Result<Opened> {
     let external = ExternalData::none();
     let info = scan::model_info(label, model.encoded_len() as u64, &model, &external);
     let lowered = lower::lower(model, &external, &config.scan.lower)?;
     let bytes = lowered.model.encode_to_vec();
-    let surgery = config.influence.as_ref().map(|_| (lowered.model.clone(), None));
+    let surgery = config.influence.as_ref().map(|_| lowered.model.clone());
     let half = HalfModel::of(&lowered.model, &external);
     let analysis = scan::analyse_lowered(lowered, external, &config.scan)?;
-    run(info, analysis, ModelSource::Bytes(&bytes), None, half, surgery, config, progress)
+    Ok(Opened {
+        info,
+        analysis,
+        file: None,
+        path: None,
+        dir: None,
+        bytes: Some(bytes),
+        half,
+        surgery,
+    })
+}
+
+impl Opened {
+    /// Plans what is fed, from the model's own input declarations.
+    pub fn plan(&self, config: &InputConfig) -> Result<Feeding> {
+        let specs = inputs::input_specs(&self.analysis.graph);
+        inputs::plan(&specs, config)
+    }
+}
+
+/// Where tract reads an opened model from: the file as it is, or the
+/// encoded (lowered) model, whose external data resolves against `dir`.
+fn source_of<'a>(
+    path: Option<&'a Path>,
+    bytes: &'a [u8],
+    dir: Option<&'a Path>,
+) -> ModelSource<'a> {
+    match (path, dir) {
+        (Some(p), _) => ModelSource::Path(p),
+        (None, Some(d)) => ModelSource::BytesIn(bytes, d),
+        (None, None) => ModelSource::Bytes(bytes),
+    }
+}
+
+/// Runs an opened model on `feeding` and assembles the report: the plain
+/// measurement, or with [`InfluenceConfig`] the knockout and gain runs as
+/// options of the same measurement. Findings are computed once, with the
+/// caller's thresholds.
+pub fn measure(
+    opened: Opened,
+    feeding: Feeding,
+    config: &AuditConfig,
+    progress: &dyn Progress,
+) -> Result<Audit> {
+    let Opened { info, analysis, file, path, dir, bytes, half, surgery } = opened;
+    let located = |e: Error| match &file {
+        Some(p) => e.at(p),
+        None => e,
+    };
+    if let (Some(influence), Some(model)) = (&config.influence, surgery) {
+        return run_influence(
+            info,
+            analysis,
+            model,
+            dir.as_deref(),
+            half,
+            feeding,
+            influence,
+            config,
+            progress,
+        )
+        .map_err(located);
+    }
+    let bytes = bytes.unwrap_or_default();
+    let source = source_of(path.as_deref(), &bytes, dir.as_deref());
+    run(info, analysis, source, dir.as_deref(), half, feeding, config, progress).map_err(located)
 }
 
 /// A half-precision model as tract is to run it (see `lower::precision`):
@@ -270,17 +370,11 @@ fn run(
     source: ModelSource<'_>,
     dir: Option<&Path>,
     half: Option<HalfModel>,
-    surgery: Option<(ModelProto, Option<&Path>)>,
+    feeding: Feeding,
     config: &AuditConfig,
     progress: &dyn Progress,
 ) -> Result<Audit> {
-    if let (Some(influence), Some((model, dir))) = (&config.influence, surgery) {
-        return run_influence(info, analysis, model, dir, half, influence, config, progress);
-    }
-    let mut report = scan::report_of(info, &analysis);
-    report.command = "audit".to_owned();
-    let specs = inputs::input_specs(&analysis.graph);
-    let feeding = inputs::plan(&specs, &config.inputs)?;
+    let mut report = scan::structure_report("audit", info, &analysis);
     report.run = Some(run_row(&feeding, &config.findings));
     let watches = watches(&analysis);
     // The analysis holds the decoded weights: free them before tract loads its own copy.
@@ -541,20 +635,19 @@ fn per_sample(num: &[f64], den: &[f64]) -> Option<Spread> {
 /// copy of the decoded model, which is encoded and prepared once; the intact
 /// passes measure every block as a plain audit does.
 #[allow(clippy::too_many_arguments)]
+#[allow(clippy::too_many_arguments)]
 fn run_influence(
     info: crate::report::ModelInfo,
     analysis: Analysis,
     mut model: ModelProto,
     dir: Option<&Path>,
     half: Option<HalfModel>,
+    feeding: Feeding,
     ic: &InfluenceConfig,
     config: &AuditConfig,
     progress: &dyn Progress,
 ) -> Result<Audit> {
-    let mut report = scan::report_of(info, &analysis);
-    report.command = "audit".to_owned();
-    let specs = inputs::input_specs(&analysis.graph);
-    let feeding = inputs::plan(&specs, &config.inputs)?;
+    let mut report = scan::structure_report("audit", info, &analysis);
     report.run = Some(run_row(&feeding, &config.findings));
     let watches = watches(&analysis);
     let n = analysis.detection.blocks.len();

@@ -14,9 +14,9 @@ use serde::{Deserialize, Serialize};
 
 use crate::audit::{self, AuditConfig};
 use crate::error::{Error, ErrorKind, Result};
-use crate::load;
+
 use crate::probe::Progress;
-use crate::probe::inputs::{self, Feeding};
+use crate::probe::inputs::Feeding;
 use crate::report::table::terminal_safe;
 use crate::report::{FedRow, Report};
 use crate::scan;
@@ -162,15 +162,6 @@ fn usage(path: &Path, message: String) -> Error {
     Error::new(ErrorKind::Usage, message).at(path)
 }
 
-/// Plans what is fed to a model, from its own input declarations.
-fn feeding_of(path: &Path, config: &AuditConfig) -> Result<Feeding> {
-    let loaded = load::load(path, &config.scan.load)?;
-    let analysis =
-        scan::analyse(loaded.model, loaded.external, &config.scan).map_err(|e| e.at(path))?;
-    let specs = inputs::input_specs(&analysis.graph);
-    inputs::plan(&specs, &config.inputs).map_err(|e| e.at(path))
-}
-
 /// Checks that B is fed exactly what A is: the same inputs in the same
 /// order, element types, shapes past the batch axis, value sources and
 /// sample count. The values then agree too, because every input's values
@@ -222,14 +213,17 @@ pub fn compare_files(
         let b = scan::scan_file(b_path, &config.audit.scan)?;
         return Ok(comparison(&a, &b, None, None));
     }
-    let fa = feeding_of(a_path, &config.audit)?;
-    let fb = feeding_of(b_path, &config.audit)?;
+    // Each model is opened once; both plans are checked before either runs.
+    let oa = audit::open_file(a_path, &config.audit)?;
+    let ob = audit::open_file(b_path, &config.audit)?;
+    let fa = oa.plan(&config.audit.inputs).map_err(|e| e.at(a_path))?;
+    let fb = ob.plan(&config.audit.inputs).map_err(|e| e.at(b_path))?;
     same_feeding(&fa, &fb, b_path)?;
-    let a = audit::audit_file(a_path, &config.audit, progress)?;
+    let a = audit::measure(oa, fa, &config.audit, progress)?;
     if let Some(e) = a.run_error {
         return Err(e.at(a_path));
     }
-    let b = audit::audit_file(b_path, &config.audit, progress)?;
+    let b = audit::measure(ob, fb, &config.audit, progress)?;
     if let Some(e) = b.run_error {
         return Err(e.at(b_path));
     }

@@ -225,7 +225,7 @@ pub fn shortcut_name(kind: ShortcutKind) -> &'static str {
 
 /// Builds the report of an analysis, with its structural findings.
 pub fn report_of(model: ModelInfo, a: &Analysis) -> Report {
-    let mut report = structure_report(model, a);
+    let mut report = structure_report("scan", model, a);
     let facts = block_facts(&report);
     set_findings(&mut report, &facts, &standard_findings());
     report
@@ -279,7 +279,8 @@ pub fn set_findings(report: &mut Report, facts: &[BlockFacts], config: &FindingC
         .collect();
 }
 
-fn structure_report(model: ModelInfo, a: &Analysis) -> Report {
+/// The rows of an analysis, without findings, for `command` (`scan`, `audit`).
+pub(crate) fn structure_report(command: &str, model: ModelInfo, a: &Analysis) -> Report {
     let g = &a.graph;
     let det = &a.detection;
     let labelled = |list: &[(NodeId, String)]| -> Vec<LabelledNode> {
@@ -389,7 +390,7 @@ fn structure_report(model: ModelInfo, a: &Analysis) -> Report {
     Report {
         schema: report::REPORT_SCHEMA.to_owned(),
         schema_version: report::REPORT_SCHEMA_VERSION,
-        command: "scan".to_owned(),
+        command: command.to_owned(),
         model,
         lowered: a
             .lowered
