@@ -26,8 +26,10 @@ pub struct Ctx<'a> {
     pub opset: i64,
     graph: &'a GraphProto,
     nodes: &'a [NodeProto],
-    names: HashSet<String>,
-    consts: HashMap<&'a str, &'a TensorProto>,
+    /// Every name the model uses, built on the first fresh name: a model
+    /// whose rules all keep their nodes never pays for it.
+    names: Option<HashSet<String>>,
+    consts: std::cell::OnceCell<HashMap<&'a str, &'a TensorProto>>,
     external: &'a ExternalData,
     origin: Option<Origin>,
     emitted: usize,
@@ -36,9 +38,9 @@ pub struct Ctx<'a> {
     nchwc_block: Option<i64>,
     notes: Vec<crate::error::Diagnostic>,
     /// Ranks declared for graph inputs, outputs and `value_info`, and the
-    /// producer of each tensor, for [`Ctx::rank`].
-    declared_ranks: HashMap<&'a str, usize>,
-    producers: HashMap<&'a str, &'a NodeProto>,
+    /// producer of each tensor, for [`Ctx::rank`] (built on first use).
+    declared_ranks: std::cell::OnceCell<HashMap<&'a str, usize>>,
+    producers: std::cell::OnceCell<HashMap<&'a str, &'a NodeProto>>,
 }
 
 impl<'a> Ctx<'a> {
@@ -52,8 +54,8 @@ impl<'a> Ctx<'a> {
             opset,
             graph,
             nodes,
-            names: names_of(graph, nodes),
-            consts: constants(graph, nodes),
+            names: None,
+            consts: std::cell::OnceCell::new(),
             external,
             origin: None,
             emitted: 0,
@@ -61,17 +63,8 @@ impl<'a> Ctx<'a> {
             needs_opset: false,
             nchwc_block: None,
             notes: Vec::new(),
-            declared_ranks: graph
-                .input
-                .iter()
-                .chain(&graph.output)
-                .chain(&graph.value_info)
-                .filter_map(|v| Some((v.name.as_str(), declared_rank(v)?)))
-                .collect(),
-            producers: nodes
-                .iter()
-                .flat_map(|n| n.output.iter().map(move |o| (o.as_str(), n)))
-                .collect(),
+            declared_ranks: std::cell::OnceCell::new(),
+            producers: std::cell::OnceCell::new(),
         }
     }
 
@@ -109,11 +102,12 @@ impl<'a> Ctx<'a> {
         let base = format!("{}/lowered/{hint}", self.origin().name);
         let mut candidate = base.clone();
         let mut k = 1;
-        while self.names.contains(&candidate) {
+        let names = self.names.get_or_insert_with(|| names_of(self.graph, self.nodes));
+        while names.contains(&candidate) {
             candidate = format!("{base}_{k}");
             k += 1;
         }
-        self.names.insert(candidate.clone());
+        names.insert(candidate.clone());
         candidate
     }
 
@@ -190,7 +184,7 @@ impl<'a> Ctx<'a> {
 
     /// The tensor of a constant (initializer or Constant node), if `name` is one.
     pub fn constant(&self, name: &str) -> Option<&'a TensorProto> {
-        self.consts.get(name).copied()
+        self.consts.get_or_init(|| constants(self.graph, self.nodes)).get(name).copied()
     }
 
     /// A small constant's values as `f32`; `None` when `name` is not a constant.
@@ -388,10 +382,22 @@ impl<'a> Ctx<'a> {
         if let Some(t) = self.constant(name) {
             return Some(t.dims.len());
         }
-        if let Some(&r) = self.declared_ranks.get(name) {
+        let declared = self.declared_ranks.get_or_init(|| {
+            let g = self.graph;
+            g.input
+                .iter()
+                .chain(&g.output)
+                .chain(&g.value_info)
+                .filter_map(|v| Some((v.name.as_str(), declared_rank(v)?)))
+                .collect()
+        });
+        if let Some(&r) = declared.get(name) {
             return Some(r);
         }
-        let node = self.producers.get(name).filter(|_| depth < 64)?;
+        let producers = self.producers.get_or_init(|| {
+            self.nodes.iter().flat_map(|n| n.output.iter().map(move |o| (o.as_str(), n))).collect()
+        });
+        let node = producers.get(name).filter(|_| depth < 64)?;
         let input = node.input.first()?;
         match node.op_type.as_str() {
             "Cast" | "Identity" => self.rank_at(input, depth + 1),

@@ -141,41 +141,54 @@ pub fn lower(
     let opset = default_opset(&model);
     let mut graph = model.graph.take().expect("checked above");
     let nodes = std::mem::take(&mut graph.node);
-    let mut ctx = Ctx::new(&graph, &nodes, opset, external);
-    ctx.set_nchwc_block(config.nchwc_block);
-    let mut out: Vec<NodeProto> = Vec::with_capacity(nodes.len());
-    let mut origins: Vec<Option<Origin>> = Vec::with_capacity(nodes.len());
-    let mut rewrites = Vec::new();
-    for (index, node) in nodes.iter().enumerate() {
-        let Some(rule) = rules::find(&node.domain, &node.op_type) else {
-            out.push(node.clone());
-            origins.push(None);
-            continue;
-        };
-        let origin = Origin {
-            name: if node.name.is_empty() {
-                format!("{}#{index}", node.op_type)
-            } else {
-                node.name.clone()
-            },
-            op_type: node.op_type.clone(),
-            domain: node.domain.clone(),
-            index,
-        };
-        ctx.begin(&origin);
-        match rule(&mut ctx, node)? {
-            Rewrite::Keep => {
-                out.push(node.clone());
-                origins.push(None);
+    // First pass: what each rule makes of its node; nothing is copied yet.
+    let mut replaced: Vec<(usize, Origin, Vec<NodeProto>)> = Vec::new();
+    let (initializers, needs_opset, notes) = {
+        let mut ctx = Ctx::new(&graph, &nodes, opset, external);
+        ctx.set_nchwc_block(config.nchwc_block);
+        for (index, node) in nodes.iter().enumerate() {
+            let Some(rule) = rules::find(&node.domain, &node.op_type) else { continue };
+            let origin = Origin {
+                name: if node.name.is_empty() {
+                    format!("{}#{index}", node.op_type)
+                } else {
+                    node.name.clone()
+                },
+                op_type: node.op_type.clone(),
+                domain: node.domain.clone(),
+                index,
+            };
+            ctx.begin(&origin);
+            if let Rewrite::Into(emitted) = rule(&mut ctx, node)? {
+                replaced.push((index, origin, emitted));
             }
-            Rewrite::Into(emitted) => {
+        }
+        ctx.finish()
+    };
+    if replaced.is_empty() {
+        // Every rule kept its node: the model goes on as it came.
+        graph.node = nodes;
+        model.graph = Some(graph);
+        return Ok(Lowered { model, origins: Vec::new(), rewrites: Vec::new(), notes });
+    }
+    // Second pass: the nodes moved into place, each replaced one by its nodes.
+    let mut out: Vec<NodeProto> = Vec::with_capacity(nodes.len() + replaced.len() * 4);
+    let mut origins: Vec<Option<Origin>> = Vec::with_capacity(out.capacity());
+    let mut rewrites = Vec::with_capacity(replaced.len());
+    let mut next = replaced.into_iter().peekable();
+    for (index, node) in nodes.into_iter().enumerate() {
+        match next.next_if(|(i, _, _)| *i == index) {
+            Some((_, origin, emitted)) => {
                 rewrites.push((origin.clone(), emitted.len()));
                 origins.extend(std::iter::repeat_n(Some(origin), emitted.len()));
                 out.extend(emitted);
             }
+            None => {
+                out.push(node);
+                origins.push(None);
+            }
         }
     }
-    let (initializers, needs_opset, notes) = ctx.finish();
     graph.node = out;
     graph.initializer.extend(initializers);
     model.graph = Some(graph);
@@ -183,9 +196,6 @@ pub fn lower(
         && !model.opset_import.iter().any(|o| o.domain.is_empty() || o.domain == "ai.onnx")
     {
         model.opset_import.push(OperatorSetIdProto { domain: String::new(), version: opset });
-    }
-    if rewrites.is_empty() {
-        return Ok(Lowered { model, origins: Vec::new(), rewrites, notes });
     }
     Ok(Lowered { model, origins, rewrites, notes })
 }
