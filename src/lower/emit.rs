@@ -31,7 +31,10 @@ pub struct Ctx<'a> {
     names: Option<HashSet<String>>,
     consts: std::cell::OnceCell<HashMap<&'a str, &'a TensorProto>>,
     external: &'a ExternalData,
-    origin: Option<Origin>,
+    /// The node being lowered and its position; its [`Origin`] is built
+    /// when a rule first asks (a rule that keeps its node never does).
+    current: Option<(usize, &'a NodeProto)>,
+    origin: std::cell::OnceCell<Origin>,
     emitted: usize,
     initializers: Vec<TensorProto>,
     needs_opset: bool,
@@ -57,7 +60,8 @@ impl<'a> Ctx<'a> {
             names: None,
             consts: std::cell::OnceCell::new(),
             external,
-            origin: None,
+            current: None,
+            origin: std::cell::OnceCell::new(),
             emitted: 0,
             initializers: Vec::new(),
             needs_opset: false,
@@ -68,8 +72,9 @@ impl<'a> Ctx<'a> {
         }
     }
 
-    pub(super) fn begin(&mut self, origin: &Origin) {
-        self.origin = Some(origin.clone());
+    pub(super) fn begin(&mut self, index: usize, node: &'a NodeProto) {
+        self.current = Some((index, node));
+        self.origin = std::cell::OnceCell::new();
         self.emitted = 0;
     }
 
@@ -89,7 +94,19 @@ impl<'a> Ctx<'a> {
 
     /// The node being lowered.
     pub fn origin(&self) -> &Origin {
-        self.origin.as_ref().expect("a rule runs between begin and finish")
+        self.origin.get_or_init(|| {
+            let (index, node) = self.current.expect("a rule runs between begin and finish");
+            Origin {
+                name: if node.name.is_empty() {
+                    format!("{}#{index}", node.op_type)
+                } else {
+                    node.name.clone()
+                },
+                op_type: node.op_type.clone(),
+                domain: node.domain.clone(),
+                index,
+            }
+        })
     }
 
     /// An error naming the node being lowered.

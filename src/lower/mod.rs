@@ -148,19 +148,9 @@ pub fn lower(
         ctx.set_nchwc_block(config.nchwc_block);
         for (index, node) in nodes.iter().enumerate() {
             let Some(rule) = rules::find(&node.domain, &node.op_type) else { continue };
-            let origin = Origin {
-                name: if node.name.is_empty() {
-                    format!("{}#{index}", node.op_type)
-                } else {
-                    node.name.clone()
-                },
-                op_type: node.op_type.clone(),
-                domain: node.domain.clone(),
-                index,
-            };
-            ctx.begin(&origin);
+            ctx.begin(index, node);
             if let Rewrite::Into(emitted) = rule(&mut ctx, node)? {
-                replaced.push((index, origin, emitted));
+                replaced.push((index, ctx.origin().clone(), emitted));
             }
         }
         ctx.finish()

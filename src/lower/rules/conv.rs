@@ -1428,13 +1428,9 @@ mod tests {
             let external = ExternalData::none();
             let mut ctx = Ctx::new(g, &g.node, 17, &external);
             ctx.set_nchwc_block(block);
-            let origin = crate::lower::Origin {
-                name: "c1".into(),
-                op_type: "Conv".into(),
-                domain: NCHWC_DOMAIN.into(),
-                index: 0,
-            };
-            ctx.begin(&origin);
+            let (index, node) =
+                g.node.iter().enumerate().find(|(_, n)| n.name == "c1").expect("node c1");
+            ctx.begin(index, node);
             let region = Region::of(&ctx);
             region.block(&mut ctx)
         };
