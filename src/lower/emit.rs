@@ -2,7 +2,7 @@
 //! new initializers, checked attribute and input access, and the few
 //! standard ops whose form depends on the opset.
 
-use std::collections::{HashMap, HashSet};
+use rustc_hash::{FxHashMap, FxHashSet};
 
 use crate::error::{Error, Result};
 use crate::load::{ExternalData, tensor};
@@ -28,8 +28,8 @@ pub struct Ctx<'a> {
     nodes: &'a [NodeProto],
     /// Every name the model uses, built on the first fresh name: a model
     /// whose rules all keep their nodes never pays for it.
-    names: Option<HashSet<String>>,
-    consts: std::cell::OnceCell<HashMap<&'a str, &'a TensorProto>>,
+    names: Option<FxHashSet<String>>,
+    consts: std::cell::OnceCell<FxHashMap<&'a str, &'a TensorProto>>,
     external: &'a ExternalData,
     /// The node being lowered and its position; its [`Origin`] is built
     /// when a rule first asks (a rule that keeps its node never does).
@@ -42,8 +42,8 @@ pub struct Ctx<'a> {
     notes: Vec<crate::error::Diagnostic>,
     /// Ranks declared for graph inputs, outputs and `value_info`, and the
     /// producer of each tensor, for [`Ctx::rank`] (built on first use).
-    declared_ranks: std::cell::OnceCell<HashMap<&'a str, usize>>,
-    producers: std::cell::OnceCell<HashMap<&'a str, &'a NodeProto>>,
+    declared_ranks: std::cell::OnceCell<FxHashMap<&'a str, usize>>,
+    producers: std::cell::OnceCell<FxHashMap<&'a str, &'a NodeProto>>,
 }
 
 impl<'a> Ctx<'a> {

@@ -25,7 +25,7 @@ mod emit;
 pub mod precision;
 mod rules;
 
-use std::collections::HashSet;
+use rustc_hash::{FxHashMap, FxHashSet};
 
 use crate::error::{Error, ErrorKind, Result};
 use crate::load::{ExternalData, attr};
@@ -201,8 +201,8 @@ fn default_opset(model: &ModelProto) -> i64 {
 }
 
 /// Every name a graph uses, for collision-free derived names.
-fn names_of(graph: &crate::proto::GraphProto, nodes: &[NodeProto]) -> HashSet<String> {
-    let mut names = HashSet::new();
+fn names_of(graph: &crate::proto::GraphProto, nodes: &[NodeProto]) -> FxHashSet<String> {
+    let mut names = FxHashSet::default();
     for t in &graph.initializer {
         names.insert(t.name.clone());
     }
@@ -223,8 +223,8 @@ fn names_of(graph: &crate::proto::GraphProto, nodes: &[NodeProto]) -> HashSet<St
 fn constants<'a>(
     graph: &'a crate::proto::GraphProto,
     nodes: &'a [NodeProto],
-) -> std::collections::HashMap<&'a str, &'a TensorProto> {
-    let mut map = std::collections::HashMap::new();
+) -> FxHashMap<&'a str, &'a TensorProto> {
+    let mut map = FxHashMap::with_capacity_and_hasher(graph.initializer.len(), Default::default());
     for t in &graph.initializer {
         map.insert(t.name.as_str(), t);
     }
