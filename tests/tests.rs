@@ -35,3 +35,5 @@ mod batch;
 mod report;
 // Half precision: float16/bfloat16 inputs, feeds, and statistics against onnxruntime.
 mod half;
+// Guards: the dependency table in DEVELOPERS.md matches the code.
+mod tidy;
