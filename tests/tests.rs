@@ -37,3 +37,5 @@ mod report;
 mod half;
 // Guards: the dependency table in DEVELOPERS.md matches the code.
 mod tidy;
+// Guards: the JSON documents keep their fields within a schema version.
+mod schema;

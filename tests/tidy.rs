@@ -31,11 +31,10 @@ struct Table {
     homes: BTreeMap<String, BTreeSet<String>>,
 }
 
-/// One path into another module: `from` uses `to` (and `to::item`, when the
+/// One path into another module: the file uses `to` (and `to::item`, when the
 /// path names an item; `None` for the module itself or a glob).
 #[derive(Debug)]
 struct Use {
-    from: String,
     to: String,
     item: Option<String>,
     place: String,
@@ -122,7 +121,11 @@ fn checker_finds_planted_faults() {
         "ghost: in the table, not a module in src/",
     ];
     for want in expected {
-        assert!(problems.iter().any(|p| p == want), "missing {want:?} in:\n{}", problems.join("\n"));
+        assert!(
+            problems.iter().any(|p| p == want),
+            "missing {want:?} in:\n{}",
+            problems.join("\n")
+        );
     }
     // Nothing else: no `secret` (comments, strings, test code), no `model →
     // app` (a nested comment), no `app → store` (allowed), no `store → model`
@@ -142,10 +145,8 @@ fn parse_table(text: &str) -> Result<Table, String> {
             break;
         }
         let (left, right) = line.split_once('→').ok_or(format!("no arrow in {line:?}"))?;
-        let froms: Vec<String> = left
-            .split(',')
-            .map(|m| m.trim().trim_end_matches("(bin)").trim().to_owned())
-            .collect();
+        let froms: Vec<String> =
+            left.split(',').map(|m| m.trim().trim_end_matches("(bin)").trim().to_owned()).collect();
         if let Some(bad) = froms.iter().find(|m| !is_ident(m)) {
             return Err(format!("{bad:?} is not a module name in {line:?}"));
         }
@@ -236,10 +237,8 @@ fn check(table: &Table, files: &[(String, String)]) -> Vec<String> {
             }
             let allowed = table.arrows.get(&from).and_then(|a| a.get(&found.to));
             match (allowed, &found.item) {
-                (None, _) => problems.push(format!(
-                    "{from} → {}: not in the table [{}]",
-                    found.to, found.place
-                )),
+                (None, _) => problems
+                    .push(format!("{from} → {}: not in the table [{}]", found.to, found.place)),
                 (Some(Some(items)), item) if !item.as_ref().is_some_and(|i| items.contains(i)) => {
                     let items: Vec<&str> = items.iter().map(String::as_str).collect();
                     let what = item.as_deref().unwrap_or("the module itself");
@@ -310,7 +309,7 @@ fn uses(
                 problems.push(format!("{token}::{first}: not a module or re-export [{place}]"));
                 continue;
             };
-            found.push(Use { from: from.to_owned(), to, item, place: place.clone() });
+            found.push(Use { to, item, place: place.clone() });
         }
     }
     found
