@@ -36,7 +36,7 @@ use std::path::Path;
 use prost::Message;
 use serde_json::Value;
 use shunt::proto::{AttributeProto, ModelProto, NodeProto, TensorProto, attribute_proto};
-use shunt::testkit::builder::{Dim, Init, ModelBuilder};
+use shunt::testkit::builder::{Attr, Conv, Dim, Init, ModelBuilder};
 
 use crate::util::{fixture, shunt, tempdir};
 
@@ -50,6 +50,7 @@ fn report_documents_keep_their_fields() {
     let dir = tempdir();
     let if_model = write(dir.path(), "with_if.onnx", &with_subgraph());
     let unknown_op = write(dir.path(), "unknown_op.onnx", &with_unknown_op());
+    let skip_op = write(dir.path(), "concat_skip_op.onnx", &concat_skip_with_an_op());
     let demo = path(fixture("demo/tile_grader.onnx"));
     let demo_feed = root().join("tests/reference/inputs/tile_grader.npy");
     let runs: Vec<Vec<String>> = vec![
@@ -62,6 +63,7 @@ fn report_documents_keep_their_fields() {
         args(&["scan", &path(fixture("transformed/resnet_cifar_ort_all.onnx"))]),
         args(&["scan", &path(fixture("transformed/bert_postnorm_ortopt.onnx"))]),
         args(&["scan", &if_model]), // subgraphs
+        args(&["scan", &skip_op]),  // concat_skips[].skip_ops[]
         // A plain audit, one with a feed, and one whose run fails.
         args(&["audit", &path(fixture("resnet18_b.onnx")), "--batch", "2"]),
         args(&["audit", &demo, "--feed", &path(demo_feed)]),
@@ -80,9 +82,10 @@ fn report_documents_keep_their_fields() {
         args(&["audit", &path(fixture("transformed/encoder_prenorm_ortopt.onnx")), "--batch", "2"]),
     ];
     let documents: Vec<Value> = runs.iter().map(|a| document(a, &[0, 1, 2])).collect();
-    assert_eq!(documents.len(), 13);
+    assert_eq!(documents.len(), 14);
     // The run that fails writes its structure and says why.
-    assert!(documents[9]["run_error"].is_string(), "{}", documents[9]["run_error"]);
+    assert!(documents[10]["run_error"].is_string(), "{}", documents[10]["run_error"]);
+    assert_eq!(documents[7]["concat_skips"][0]["skip_ops"].as_array().map(Vec::len), Some(1));
     check_golden("shunt/report", "report", &documents);
 }
 
@@ -284,6 +287,20 @@ fn with_subgraph() -> ModelProto {
 /// reads it, the run fails.
 fn with_unknown_op() -> ModelProto {
     one_block("unknown_op", Some("NoSuchOp"))
+}
+
+/// A concatenative skip with an `Identity` on its skip path (no committed
+/// fixture has an op there).
+fn concat_skip_with_an_op() -> ModelProto {
+    let mut b = ModelBuilder::new("concat_skip_op", 17);
+    let x = b.input("x", &[Dim::batch(), Dim::Fixed(4), Dim::Fixed(8), Dim::Fixed(8)]);
+    let f = b.conv("stem", &x, &Conv::new(4, 3).pad(1));
+    let skip = b.node("Identity", "keep", &[f.as_str()], &[]);
+    let h = b.conv("c1", &f, &Conv::new(4, 3).pad(1));
+    let h = b.relu("r1", &h);
+    let y = b.node("Concat", "join", &[skip.as_str(), h.as_str()], &[("axis", Attr::Int(1))]);
+    b.output(&y);
+    b.finish()
 }
 
 fn one_block(name: &str, extra_op: Option<&str>) -> ModelProto {
