@@ -155,6 +155,9 @@ fn batch_documents_keep_their_fields() {
     check_golden("shunt/batch", "batch", &documents);
 }
 
+/// A planted change to a document.
+type Edit = dyn Fn(&mut Value);
+
 /// The field paths of one schema's documents: path → (kinds, optional).
 type Fields = BTreeMap<String, (BTreeSet<&'static str>, bool)>;
 
@@ -191,7 +194,7 @@ fn field_walk_sees_every_change() {
         edit(&mut doc);
         lines(&[doc])
     };
-    let edits: [(&str, &dyn Fn(&mut Value)); 5] = [
+    let edits: [(&str, &Edit); 5] = [
         ("added", &|d| d["b"][0]["d"] = Value::from(true)),
         ("removed", &|d| {
             d["b"][0].as_object_mut().unwrap().remove("c");
