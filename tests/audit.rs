@@ -161,6 +161,8 @@ fn zero_initialised_branches_measure_exactly_zero() {
         let run = shunt(&["audit", fixture(name).to_str().unwrap(), "--format", "json", "--quiet"]);
         assert_eq!(run.code, 0, "{name}: {}", run.stderr);
         let r: Report = serde_json::from_str(&run.stdout).unwrap();
+        // fixtures/MANIFEST.txt: additive=3 for both.
+        assert_eq!(r.blocks.len(), 3, "{name}");
         for b in &r.blocks {
             let s = b.stats.as_ref().unwrap();
             assert_eq!(
@@ -356,6 +358,8 @@ fn passes_of_any_size_measure_the_same_samples() {
     let whole: Report = serde_json::from_str(&whole.stdout).unwrap();
     let split: Report = serde_json::from_str(&split.stdout).unwrap();
     assert_eq!(split.run.as_ref().unwrap().passes, 4);
+    // fixtures/MANIFEST.txt: demo/tile_grader.onnx additive=8.
+    assert_eq!((whole.blocks.len(), split.blocks.len()), (8, 8));
     for (a, b) in whole.blocks.iter().zip(&split.blocks) {
         let (a, b) = (a.stats.as_ref().unwrap(), b.stats.as_ref().unwrap());
         assert_eq!(a.samples, b.samples);

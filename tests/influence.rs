@@ -45,7 +45,10 @@ fn influence(r: &Report) -> &InfluenceReport {
 // in case it regroups a sum; in practice they are bit-identical).
 #[test]
 fn gated_model_with_gates_at_one_matches_the_original() {
-    for name in ["resnet18_b.onnx", "convnext_like.onnx", "text_prenorm_decomposed.onnx"] {
+    // Residual blocks: fixtures/MANIFEST.txt (additive=).
+    for (name, count) in
+        [("resnet18_b.onnx", 8), ("convnext_like.onnx", 18), ("text_prenorm_decomposed.onnx", 4)]
+    {
         let model = load(name);
         let mut plain = AuditConfig::standard();
         plain.inputs.samples = 3;
@@ -61,6 +64,7 @@ fn gated_model_with_gates_at_one_matches_the_original() {
                 assert!((p - q).abs() <= 4.0 * ulp, "{name}: {p} vs {q}");
             }
         }
+        assert_eq!((a.report.blocks.len(), b.report.blocks.len()), (count, count), "{name}");
         for (x, y) in a.report.blocks.iter().zip(&b.report.blocks) {
             let (sx, sy) = (x.stats.as_ref().unwrap(), y.stats.as_ref().unwrap());
             let (rx, ry) = (sx.ratio.unwrap().mean, sy.ratio.unwrap().mean);
@@ -267,6 +271,7 @@ fn he_initialised_preact_blocks_have_gain_sqrt2() {
     let mut ic = InfluenceConfig::standard();
     ic.knockout = false;
     let a = audit_with(b.finish(), &config(32, ic));
+    assert_eq!(influence(&a.report).blocks.len(), 8, "the 8 blocks built above");
     let gains = measured_gains(&a.report).0;
     let mean = gains.iter().sum::<f64>() / gains.len() as f64;
     assert!((mean / 2f64.sqrt() - 1.0).abs() < 0.03, "{gains:?}");
@@ -361,6 +366,8 @@ fn converse_knockout_removes_the_shortcut() {
     let a = audit_with(load("rezero.onnx"), &config(2, ic));
     let inf = influence(&a.report);
     assert_eq!(inf.knockout.as_ref().unwrap().forward_passes, 2 + 3 + 3);
+    // fixtures/MANIFEST.txt: rezero.onnx additive=3.
+    assert_eq!(inf.blocks.len(), 3);
     for row in &inf.blocks {
         // With a zero branch, removing the shortcut leaves nothing of the
         // block's input: the outputs change completely.
@@ -452,6 +459,8 @@ fn knockout_ranking_of_a_trained_model_follows_the_ensemble_view() {
     let resizing: Vec<usize> =
         inf.blocks.iter().filter(|b| b.changes_resolution).map(|b| b.block).collect();
     assert_eq!(resizing, vec![4, 7]);
+    // fixtures/torch/MANIFEST.txt: digits_resnet.onnx additive=9.
+    assert_eq!(inf.blocks.len(), 9);
     for b in &inf.blocks {
         if b.changes_resolution {
             assert!(b.rank.unwrap() <= 3, "block {} ranks {:?}", b.block, b.rank);

@@ -156,7 +156,11 @@ fn cifar_resnet_with_bn_folded_into_conv() {
     let r = scan("resnet_cifar_folded.onnx");
     check_cifar_resnet(&r);
     // [R2] option B: the projection is a 1x1 convolution (BN folded into it).
-    for b in r.blocks.iter().filter(|b| b.shortcut.kind == "projection") {
+    let projections: Vec<&BlockRow> =
+        r.blocks.iter().filter(|b| b.shortcut.kind == "projection").collect();
+    // fixtures/torch/MANIFEST.txt: projection=2.
+    assert_eq!(projections.len(), 2);
+    for b in projections {
         let ops: Vec<&str> = b.shortcut.ops.iter().map(|o| o.op_type.as_str()).collect();
         assert_eq!(ops, vec!["Conv"], "block {}", b.id);
     }
@@ -167,7 +171,11 @@ fn cifar_resnet_with_batchnorm_nodes_kept() {
     let r = scan("resnet_cifar_bn.onnx");
     check_cifar_resnet(&r);
     // [R2] option B projection: 1x1 convolution, here followed by its BatchNormalization.
-    for b in r.blocks.iter().filter(|b| b.shortcut.kind == "projection") {
+    let projections: Vec<&BlockRow> =
+        r.blocks.iter().filter(|b| b.shortcut.kind == "projection").collect();
+    // fixtures/torch/MANIFEST.txt: projection=2.
+    assert_eq!(projections.len(), 2);
+    for b in projections {
         let ops: Vec<&str> = b.shortcut.ops.iter().map(|o| o.op_type.as_str()).collect();
         assert_eq!(ops, vec!["Conv", "BatchNormalization"], "block {}", b.id);
     }

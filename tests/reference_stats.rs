@@ -39,6 +39,9 @@ struct Case {
     model: &'static str,
     /// Extension of the inputs file.
     ext: &'static str,
+    /// Its residual blocks: the census in fixtures/MANIFEST.txt or
+    /// fixtures/torch/MANIFEST.txt (`additive=`).
+    blocks: usize,
 }
 
 fn root() -> &'static Path {
@@ -238,8 +241,8 @@ pub(crate) const FLOAT32: Tolerance = Tolerance { rms: RMS_TOL, cos: COS_TOL, fo
 /// Check 2: shunt's block statistics equal onnxruntime's on the same inputs.
 ///
 /// Returns the number of blocks whose branch is exactly zero.
-pub(crate) fn check_blocks(case: &str, report: &Value, reference: &Value) -> usize {
-    check_blocks_within(case, report, reference, FLOAT32)
+pub(crate) fn check_blocks(case: &str, report: &Value, reference: &Value, count: usize) -> usize {
+    check_blocks_within(case, report, reference, FLOAT32, count)
 }
 
 /// [`check_blocks`] with a tolerance of the caller's.
@@ -248,9 +251,10 @@ pub(crate) fn check_blocks_within(
     report: &Value,
     reference: &Value,
     tol: Tolerance,
+    count: usize,
 ) -> usize {
     let blocks = report["blocks"].as_array().expect("blocks");
-    assert!(!blocks.is_empty(), "{case}: no blocks");
+    assert_eq!(blocks.len(), count, "{case}: residual blocks (the fixture's census)");
     assert!(report["run_error"].is_null(), "{case}: {}", report["run_error"]);
     let samples = reference["samples"].as_u64().unwrap();
     let mut dead = 0;
@@ -312,33 +316,42 @@ fn check_case(case: &Case) -> usize {
     let reference = committed(case);
     check_drift(case, &reference);
     let report = audit(&case.model_rel(), &case.inputs_rel());
-    check_blocks(case.name, &report, &reference)
+    check_blocks(case.name, &report, &reference, case.blocks)
 }
 
 #[test]
 fn resnet18_b() {
-    check_case(&Case { name: "resnet18_b", model: "resnet18_b.onnx", ext: "npy" });
+    check_case(&Case { name: "resnet18_b", model: "resnet18_b.onnx", ext: "npy", blocks: 8 });
 }
 
 #[test]
 fn preact_resnet14() {
-    check_case(&Case { name: "preact_resnet14", model: "preact_resnet14.onnx", ext: "npy" });
+    check_case(&Case {
+        name: "preact_resnet14",
+        model: "preact_resnet14.onnx",
+        ext: "npy",
+        blocks: 6,
+    });
 }
 
 #[test]
 fn mobilenet_v2() {
-    check_case(&Case { name: "mobilenet_v2", model: "mobilenet_v2.onnx", ext: "npy" });
+    check_case(&Case { name: "mobilenet_v2", model: "mobilenet_v2.onnx", ext: "npy", blocks: 10 });
 }
 
 #[test]
 fn text_postnorm_with_mask() {
-    check_case(&Case { name: "text_postnorm", model: "text_postnorm.onnx", ext: "npz" });
+    check_case(&Case { name: "text_postnorm", model: "text_postnorm.onnx", ext: "npz", blocks: 4 });
 }
 
 #[test]
 fn tile_grader_dead_block_is_exactly_zero() {
-    let dead =
-        check_case(&Case { name: "tile_grader", model: "demo/tile_grader.onnx", ext: "npy" });
+    let dead = check_case(&Case {
+        name: "tile_grader",
+        model: "demo/tile_grader.onnx",
+        ext: "npy",
+        blocks: 8,
+    });
     // The demo has one block whose branch ends in a zero scale (stage2.2).
     assert_eq!(dead, 1, "tile_grader: blocks with a zero branch");
 }
@@ -349,6 +362,7 @@ fn torch_resnet_cifar_folded() {
         name: "resnet_cifar_folded",
         model: "torch/resnet_cifar_folded.onnx",
         ext: "npy",
+        blocks: 6,
     });
 }
 
@@ -360,6 +374,7 @@ fn torch_encoder_postnorm() {
         name: "encoder_postnorm",
         model: "torch/encoder_postnorm.onnx",
         ext: "npy",
+        blocks: 4,
     });
 }
 
@@ -367,7 +382,12 @@ fn torch_encoder_postnorm() {
 /// sample, whatever shunt's batching of a multi-sample feed does.
 #[test]
 fn torch_encoder_postnorm_one_sample_per_feed() {
-    let case = Case { name: "encoder_postnorm", model: "torch/encoder_postnorm.onnx", ext: "npy" };
+    let case = Case {
+        name: "encoder_postnorm",
+        model: "torch/encoder_postnorm.onnx",
+        ext: "npy",
+        blocks: 4,
+    };
     let reference = committed(&case);
     let dir = util::tempdir();
     let samples = reference["samples"].as_u64().unwrap() as usize;
@@ -391,6 +411,6 @@ fn torch_encoder_postnorm_one_sample_per_feed() {
                 a["cosine"] = Value::Array(vec![a["cosine"][s].clone()]);
             }
         }
-        check_blocks(&format!("encoder_postnorm sample {s}"), &report, &single);
+        check_blocks(&format!("encoder_postnorm sample {s}"), &report, &single, case.blocks);
     }
 }

@@ -35,3 +35,7 @@ mod batch;
 mod report;
 // Half precision: float16/bfloat16 inputs, feeds, and statistics against onnxruntime.
 mod half;
+// Guards: the dependency table in DEVELOPERS.md matches the code.
+mod tidy;
+// Guards: the JSON documents keep their fields within a schema version.
+mod schema;
