@@ -635,7 +635,6 @@ fn per_sample(num: &[f64], den: &[f64]) -> Option<Spread> {
 /// copy of the decoded model, which is encoded and prepared once; the intact
 /// passes measure every block as a plain audit does.
 #[allow(clippy::too_many_arguments)]
-#[allow(clippy::too_many_arguments)]
 fn run_influence(
     info: crate::report::ModelInfo,
     analysis: Analysis,

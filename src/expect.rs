@@ -12,9 +12,9 @@ use serde::Deserialize;
 
 use crate::findings::Code;
 use crate::report::Report;
-use crate::structure::{
-    Difference, PLACEMENTS, VERIFY_SCHEMA, VERIFY_SCHEMA_VERSION, Verification, plural,
-};
+use crate::report::text::plural;
+use crate::report::verify::{Difference, VERIFY_SCHEMA, VERIFY_SCHEMA_VERSION, Verification};
+use crate::structure::PLACEMENTS;
 
 /// The version of the expectation format this build reads.
 pub const EXPECT_VERSION: u32 = 1;

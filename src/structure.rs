@@ -15,17 +15,14 @@ use std::io;
 
 use serde::{Deserialize, Serialize};
 
-use crate::report::table::terminal_safe;
+use crate::report::text::{plural, terminal_safe};
+use crate::report::verify::{Difference, VERIFY_SCHEMA, VERIFY_SCHEMA_VERSION, Verification};
 use crate::report::{BlockRow, LayerRow, Report};
 
 /// Identifies a pin file.
 pub const PIN_SCHEMA: &str = "shunt/pin";
 /// Version of the pin format.
 pub const PIN_SCHEMA_VERSION: u32 = 1;
-/// Identifies the JSON document of `shunt verify`.
-pub const VERIFY_SCHEMA: &str = "shunt/verify";
-/// Version of the `shunt/verify` JSON schema.
-pub const VERIFY_SCHEMA_VERSION: u32 = 1;
 
 /// The residual structure of one model, as written to a pin file.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -357,50 +354,6 @@ pub fn align<A, B>(a: &[A], b: &[B], score: impl Fn(&A, &B) -> Option<u32>) -> V
     steps
 }
 
-/// The outcome of `shunt verify`: a model against a pin or an expectation.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct Verification {
-    /// Always [`VERIFY_SCHEMA`].
-    pub schema: String,
-    /// Always [`VERIFY_SCHEMA_VERSION`].
-    pub schema_version: u32,
-    /// The model as given.
-    pub model: String,
-    /// `pin` or `expect`.
-    pub against: String,
-    /// The pin or expectation file as given.
-    pub file: String,
-    /// Blocks in the model.
-    pub blocks: usize,
-    /// Checks made (pinned blocks and stages, or expectation keys).
-    pub checks: usize,
-    /// Everything that differs; empty when the model matches.
-    pub differences: Vec<Difference>,
-}
-
-/// One difference between a model and what it was checked against.
-#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct Difference {
-    /// What kind of difference (see the README for the list).
-    pub code: String,
-    /// The stage it is about, if any.
-    pub stage: Option<usize>,
-    /// The model's block (1-based, graph order), if any.
-    pub block: Option<usize>,
-    /// The pinned block (1-based, file order), if any.
-    pub pinned: Option<usize>,
-    /// What differs, in words.
-    pub message: String,
-}
-
-impl Difference {
-    fn new(code: &str, message: String) -> Difference {
-        Difference { code: code.to_owned(), stage: None, block: None, pinned: None, message }
-    }
-}
-
 fn merge_label(r: &Report, id: usize) -> String {
     r.blocks.get(id - 1).map_or(format!("block {id}"), |b| format!("block {id} ({})", b.merge.name))
 }
@@ -634,36 +587,6 @@ fn stage_differences(pin: &Pin, r: &Report) -> Vec<Difference> {
         }
     }
     diffs
-}
-
-/// `1 block`, `3 blocks`.
-pub fn plural(n: usize, word: &str) -> String {
-    if n == 1 { format!("1 {word}") } else { format!("{n} {word}s") }
-}
-
-/// Renders a verification for people: a verdict line, then one line per difference.
-pub fn render_verification(v: &Verification, out: &mut dyn io::Write) -> io::Result<()> {
-    writeln!(out, "{} against {} {}", terminal_safe(&v.model), v.against, terminal_safe(&v.file))?;
-    if v.differences.is_empty() {
-        writeln!(
-            out,
-            "  matches: {} in the model, {} checked",
-            plural(v.blocks, "block"),
-            plural(v.checks, "item")
-        )?;
-        return Ok(());
-    }
-    writeln!(
-        out,
-        "  {} ({} in the model, {} checked)",
-        plural(v.differences.len(), "difference"),
-        plural(v.blocks, "block"),
-        plural(v.checks, "item")
-    )?;
-    for d in &v.differences {
-        writeln!(out, "  {:<18} {}", d.code, terminal_safe(&d.message))?;
-    }
-    Ok(())
 }
 
 /// A TOML error on one line: "line L, column C: what" (the parser's own

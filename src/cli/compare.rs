@@ -60,7 +60,7 @@ pub(super) fn compare(a: &CompareArgs) -> anyhow::Result<ExitCode> {
     let tolerance = Tolerance { max_rel_l2: a.max_rel_l2, max_ratio_change: a.max_ratio_change };
     c.failures = compare::failures(&c, &tolerance);
     output::write(a.output.as_deref(), &[&a.a, &a.b], |w| match a.format {
-        Format::Table => compare::render(&c, w),
+        Format::Table => shunt::report::compare::render(&c, w),
         Format::Json => shunt::report::json::render(&c, w),
         Format::Html | Format::Markdown | Format::Dot => unreachable!("refused above"),
     })?;

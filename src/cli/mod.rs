@@ -79,8 +79,8 @@ fn lower_command(args: &LowerArgs) -> anyhow::Result<ExitCode> {
         let domain = if domain.is_empty() { String::new() } else { format!("{domain}.") };
         eprintln!(
             "shunt: lowered {n} {}{}",
-            shunt::report::table::terminal_safe(&domain),
-            shunt::report::table::terminal_safe(&op)
+            shunt::report::text::terminal_safe(&domain),
+            shunt::report::text::terminal_safe(&op)
         );
     }
     Ok(ExitCode::SUCCESS)
@@ -355,7 +355,7 @@ pub fn main() -> ExitCode {
             }
             // Names in the message come from the file: escaped, so a name
             // with a newline or an escape sequence keeps the error one line.
-            let message = shunt::report::table::terminal_safe(&format!("{e:#}"));
+            let message = shunt::report::text::terminal_safe(&format!("{e:#}"));
             let _ = writeln!(std::io::stderr(), "shunt: error: {message}");
             ExitCode::from(2)
         }
@@ -365,7 +365,7 @@ pub fn main() -> ExitCode {
                 .map(String::as_str)
                 .or_else(|| panic.downcast_ref::<&str>().copied())
                 .unwrap_or("unknown cause");
-            let what = shunt::report::table::terminal_safe(what);
+            let what = shunt::report::text::terminal_safe(what);
             let _ =
                 writeln!(std::io::stderr(), "shunt: internal error: {what} (please report this)");
             ExitCode::from(2)
@@ -510,7 +510,7 @@ fn run_batch(
     })?;
     for e in report.models.iter().filter_map(|m| m.error.as_deref()) {
         let _ =
-            writeln!(std::io::stderr(), "shunt: error: {}", shunt::report::table::terminal_safe(e));
+            writeln!(std::io::stderr(), "shunt: error: {}", shunt::report::text::terminal_safe(e));
     }
     if report.summary.errors > 0 {
         return Ok(ExitCode::from(2));

@@ -9,8 +9,9 @@ use anyhow::Context;
 use shunt::audit::{self, AuditConfig};
 use shunt::expect;
 use shunt::probe::inputs::{Dist, InputConfig};
+use shunt::report::verify::Verification;
 use shunt::scan;
-use shunt::structure::{self, Verification};
+use shunt::structure;
 
 use super::{DistArg, Format, Limits, output, parse_pairs, parse_shape, progress};
 
@@ -185,7 +186,7 @@ fn emit(
         );
     }
     output::write(path, inputs, |w| match format {
-        Format::Table => structure::render_verification(v, w),
+        Format::Table => shunt::report::verify::render(v, w),
         Format::Json => shunt::report::json::render(v, w),
         Format::Html | Format::Markdown | Format::Dot => unreachable!("refused above"),
     })

@@ -9,7 +9,7 @@ use comfy_table::{ContentArrangement, Table, presets};
 use serde::{Deserialize, Serialize};
 
 use crate::report::Report;
-use crate::report::table::terminal_safe;
+use crate::report::text::terminal_safe;
 
 /// Identifies the JSON document of a batch.
 pub const BATCH_SCHEMA: &str = "shunt/batch";

@@ -6,7 +6,8 @@
 
 use std::io;
 
-use crate::report::table::{layer_label, terminal_safe};
+use crate::report::table::layer_label;
+use crate::report::text::terminal_safe;
 use crate::report::{BlockRow, Report};
 
 /// A DOT quoted string: control characters made visible, then `\` and `"`

@@ -15,7 +15,8 @@ use askama::Template;
 
 use crate::report::marks::{self, Mark};
 use crate::report::plot::{self, Plot, PlotSpec, StageSpan, Threshold};
-use crate::report::table::{layer_label, terminal_safe};
+use crate::report::table::layer_label;
+use crate::report::text::{num, terminal_safe};
 use crate::report::{BlockRow, FindingRow, Report};
 
 /// What the page needs besides the report.
@@ -36,23 +37,6 @@ pub fn render(r: &Report, ctx: &HtmlContext, out: &mut dyn io::Write) -> io::Res
 /// A value for the page: model text made visible-safe (the template escapes HTML).
 fn t(s: &str) -> String {
     terminal_safe(s)
-}
-
-/// Three significant digits near 1, scientific notation far from it.
-pub(crate) fn num(v: f64) -> String {
-    if v == 0.0 {
-        return "0".to_owned();
-    }
-    if !v.is_finite() {
-        return format!("{v}");
-    }
-    let a = v.abs();
-    if (1e-3..1e4).contains(&a) {
-        let decimals = (2 - a.log10().floor() as i32).max(0) as usize;
-        format!("{v:.decimals$}")
-    } else {
-        format!("{v:.2e}")
-    }
 }
 
 /// The command line as a POSIX shell would take it back.

@@ -8,8 +8,8 @@ use std::io;
 
 use askama::Template;
 
-use crate::report::html::num;
-use crate::report::table::terminal_safe;
+use crate::report::text::num;
+use crate::report::text::terminal_safe;
 use crate::report::{BlockRow, Report};
 
 /// The default size limit in bytes. Comment bodies on the common code

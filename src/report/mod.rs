@@ -6,6 +6,7 @@
 //! node or tensor the report mentions is named so a user can find it.
 
 pub mod batch;
+pub mod compare;
 pub mod dot;
 pub mod html;
 pub mod json;
@@ -13,6 +14,8 @@ pub mod markdown;
 pub mod marks;
 pub mod plot;
 pub mod table;
+pub mod text;
+pub mod verify;
 
 use std::collections::BTreeMap;
 

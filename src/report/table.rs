@@ -4,22 +4,8 @@ use std::io;
 
 use comfy_table::{ContentArrangement, Table, TableComponent, presets};
 
+use crate::report::text::terminal_safe;
 use crate::report::{BlockRow, LayerRow, Report};
-
-/// Makes a name from a model safe for a terminal: control characters,
-/// escape sequences and bidirectional overrides become visible `\u{..}` escapes.
-pub fn terminal_safe(s: &str) -> String {
-    let mut out = String::with_capacity(s.len());
-    for c in s.chars() {
-        let bidi = matches!(c, '\u{202a}'..='\u{202e}' | '\u{2066}'..='\u{2069}' | '\u{200e}' | '\u{200f}');
-        if c.is_control() || bidi {
-            out.push_str(&format!("\\u{{{:x}}}", c as u32));
-        } else {
-            out.push(c);
-        }
-    }
-    out
-}
 
 /// A compact label for a learned layer: `conv3x3 8→16 /2`, `dw3x3 96`, `fc 64→256`.
 pub fn layer_label(l: &LayerRow) -> String {
