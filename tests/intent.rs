@@ -217,38 +217,15 @@ fn bad_pin_files_are_errors() {
     let _ = PathBuf::from(&model);
 }
 
-/// The fenced code blocks of README.md with the given info string.
-pub(crate) fn readme_blocks(info: &str) -> Vec<String> {
-    let text = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("README.md"))
-        .expect("README.md");
-    let mut out = Vec::new();
-    // (info string, text) of the block being read.
-    let mut current: Option<(String, String)> = None;
-    for line in text.lines() {
-        match &mut current {
-            None => {
-                if let Some(tag) = line.trim_end().strip_prefix("```") {
-                    current = Some((tag.to_owned(), String::new()));
-                }
-            }
-            Some(_) if line.trim_end() == "```" => {
-                let (tag, block) = current.take().expect("open");
-                if tag == info {
-                    out.push(block);
-                }
-            }
-            Some((_, block)) => {
-                block.push_str(line);
-                block.push('\n');
-            }
-        }
-    }
-    out
+/// The fenced code blocks of the README and the pages under `docs/` with the
+/// given info string.
+pub(crate) fn doc_blocks(info: &str) -> Vec<String> {
+    crate::docs::blocks(info).into_iter().map(|(_, block)| block).collect()
 }
 
 #[test]
 fn the_readme_expectation_examples_hold_on_their_models_only() {
-    let examples: Vec<(String, String)> = readme_blocks("toml")
+    let examples: Vec<(String, String)> = doc_blocks("toml")
         .into_iter()
         .filter_map(|b| {
             let model = b.lines().next()?.strip_prefix("# checks ")?.trim().to_owned();
@@ -282,7 +259,7 @@ fn the_readme_expectation_examples_hold_on_their_models_only() {
 fn the_readme_pin_excerpt_is_real_pin_output() {
     let dir = tempdir();
     let real = std::fs::read_to_string(pin(dir.path(), &torch("resnet_cifar_bn.onnx"))).unwrap();
-    let excerpt = readme_blocks("toml")
+    let excerpt = doc_blocks("toml")
         .into_iter()
         .find(|b| b.contains("schema = \"shunt/pin\""))
         .expect("a pin excerpt in the README");
@@ -462,7 +439,7 @@ fn comparisons_are_deterministic_and_refuse_different_inputs() {
 pub(crate) fn same_text(real: &str, shown: &str) -> Result<(), String> {
     let (r, s): (Vec<&str>, Vec<&str>) = (real.lines().collect(), shown.lines().collect());
     if r.len() != s.len() {
-        return Err(format!("{} lines, the README shows {}", r.len(), s.len()));
+        return Err(format!("{} lines, the page shows {}", r.len(), s.len()));
     }
     for (a, b) in r.iter().zip(&s) {
         let (ta, tb): (Vec<&str>, Vec<&str>) =
@@ -474,25 +451,8 @@ pub(crate) fn same_text(real: &str, shown: &str) -> Result<(), String> {
                 _ => x == y,
             });
         if !ok {
-            return Err(format!("real:   {a}\nREADME: {b}"));
+            return Err(format!("real:   {a}\nshown:  {b}"));
         }
     }
     Ok(())
-}
-
-#[test]
-fn the_readme_compare_example_is_real_output() {
-    let block = readme_blocks("")
-        .into_iter()
-        .find(|b| b.starts_with("$ shunt compare fixtures/"))
-        .expect("a compare example in the README");
-    let (command, shown) = block.split_once('\n').unwrap();
-    let args: Vec<&str> = command.trim_start_matches("$ shunt ").split_whitespace().collect();
-    let mut args = args.clone();
-    args.push("--quiet");
-    let run = shunt(&args);
-    assert_eq!(run.code, 0, "{}", run.stderr);
-    if let Err(e) = same_text(&run.stdout, shown) {
-        panic!("the README's compare example drifted:\n{e}\n--- real output:\n{}", run.stdout);
-    }
 }

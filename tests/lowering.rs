@@ -458,32 +458,3 @@ fn nchwc_model_made_on_this_machine() {
     let (json, ok) = agreement(&model, &lowered, FLOAT);
     assert!(ok, "NCHWc model made here: {json}");
 }
-
-/// The README's examples of optimised and quantised models are real output.
-#[test]
-fn the_readme_examples_are_real_output() {
-    let blocks: Vec<String> = crate::intent::readme_blocks("")
-        .into_iter()
-        .filter(|b| {
-            b.starts_with("$ shunt scan fixtures/transformed/")
-                || b.starts_with(
-                    "$ shunt compare fixtures/torch/resnet_cifar_folded.onnx fixtures/transformed/",
-                )
-        })
-        .collect();
-    assert_eq!(blocks.len(), 2, "the README shows a scan and a compare of transformed models");
-    for block in blocks {
-        let (command, shown) = block.split_once('\n').unwrap();
-        let mut args: Vec<&str> =
-            command.trim_start_matches("$ shunt ").split_whitespace().collect();
-        args.push("--quiet");
-        let run = util::shunt(&args);
-        assert_eq!(run.code, 0, "{command}: {}", run.stderr);
-        if let Err(e) = crate::intent::same_text(&run.stdout, shown) {
-            panic!(
-                "the README's example drifted ({command}):\n{e}\n--- real output:\n{}",
-                run.stdout
-            );
-        }
-    }
-}

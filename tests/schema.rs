@@ -345,7 +345,7 @@ fn check_golden(schema: &str, short: &str, documents: &[Value]) {
             diff.extend(new_lines.difference(&old_lines).map(|l| format!("+ {l}")));
             panic!(
                 "the {schema} document changed shape without a new schema version:\n{}\n\
-                 Bump the version ({}), describe the change in README.md, then write the new \
+                 Bump the version ({}), describe the change in docs/formats.md, then write the new \
                  golden list with SHUNT_UPDATE_GOLDEN=1 cargo test --test integration schema:: \
                  (the list of v{version}, {}, stays as it is).",
                 diff.join("\n"),

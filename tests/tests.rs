@@ -35,6 +35,8 @@ mod batch;
 mod report;
 // Half precision: float16/bfloat16 inputs, feeds, and statistics against onnxruntime.
 mod half;
+// The commands shown in the README and docs/ give the output shown.
+mod docs;
 // Guards: the dependency table in DEVELOPERS.md matches the code.
 mod tidy;
 // Guards: the JSON documents keep their fields within a schema version.
