@@ -2,7 +2,7 @@
 //! intends a model's residual structure to be, written before any model
 //! exists, checked against a report.
 //!
-//! The file is TOML with our own keys (documented in the README). Every key
+//! The file is TOML with our own keys (documented in docs/checking.md). Every key
 //! is optional; each one present is one check. Unknown keys are refused so
 //! that a typo cannot turn a check off.
 //!

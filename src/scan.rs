@@ -231,7 +231,7 @@ pub fn report_of(model: ModelInfo, a: &Analysis) -> Report {
     report
 }
 
-/// The default thresholds of findings (see the README).
+/// The default thresholds of findings (docs/statistics.md).
 pub fn standard_findings() -> FindingConfig {
     FindingConfig {
         dead_below: 0.01,

@@ -106,10 +106,8 @@ fn stage() -> tempfile::TempDir {
     let report: serde_json::Value = serde_json::from_str(&run.stdout).unwrap();
     let blocks = report["blocks"].as_array().expect("blocks");
     assert_eq!(blocks.len(), 6, "resnet_cifar_bn has six blocks");
-    let (merge, shortcut) = (
-        blocks[3]["output"].as_str().unwrap(),
-        blocks[3]["shortcut"]["input"].as_str().unwrap(),
-    );
+    let (merge, shortcut) =
+        (blocks[3]["output"].as_str().unwrap(), blocks[3]["shortcut"]["input"].as_str().unwrap());
     let mut model = ModelProto::decode(std::fs::read(&bn).unwrap().as_slice()).unwrap();
     assert!(surgery::remove_shortcut(&mut model, merge, shortcut));
     std::fs::write(dir.path().join("shortcut_removed.onnx"), model.encode_to_vec()).unwrap();

@@ -319,7 +319,7 @@ impl Limits {
 enum Format {
     /// A table for people.
     Table,
-    /// The versioned JSON document described in the README.
+    /// The versioned JSON document described in docs/formats.md.
     Json,
     /// One self-contained HTML page with plots (use with --output).
     Html,

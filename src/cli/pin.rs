@@ -34,7 +34,7 @@ pub(super) struct VerifyArgs {
     /// A pin file written by `shunt pin`.
     #[arg(long, value_name = "FILE")]
     pin: Option<PathBuf>,
-    /// A hand-written expectation file (TOML, see the README).
+    /// A hand-written expectation file (TOML, see docs/checking.md).
     #[arg(long, value_name = "FILE")]
     expect: Option<PathBuf>,
     /// Output format.

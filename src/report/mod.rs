@@ -626,7 +626,7 @@ pub struct InfluenceRow {
     pub gain_to_here: Option<f64>,
 }
 
-/// The ensemble-of-paths view over the top-level blocks (see the README).
+/// The ensemble-of-paths view over the top-level blocks (docs/statistics.md).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct EffectiveDepthRow {

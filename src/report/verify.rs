@@ -38,7 +38,7 @@ pub struct Verification {
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct Difference {
-    /// What kind of difference (see the README for the list).
+    /// What kind of difference (listed in docs/checking.md).
     pub code: String,
     /// The stage it is about, if any.
     pub stage: Option<usize>,
