@@ -6,7 +6,6 @@ use std::path::Path;
 
 use prost::Message;
 
-use crate::classify::Placement;
 use crate::error::{Error, Result};
 use crate::findings::{self, FindingConfig, InfluenceFacts, InfluenceThresholds};
 use crate::gate::{self, Site};
@@ -22,6 +21,7 @@ use crate::report::{
 };
 use crate::scan::{self, Analysis, ScanConfig};
 use crate::stats::{self, Agreement, Spread};
+use crate::vocab::{Command, Placement, ShortcutKind};
 
 /// Everything an audit needs to know.
 #[derive(Debug, Clone)]
@@ -374,7 +374,7 @@ fn run(
     config: &AuditConfig,
     progress: &dyn Progress,
 ) -> Result<Audit> {
-    let mut report = scan::structure_report("audit", info, &analysis);
+    let mut report = scan::structure_report(Command::Audit, info, &analysis);
     report.run = Some(run_row(&feeding, &config.findings));
     let watches = watches(&analysis);
     // The analysis holds the decoded weights: free them before tract loads its own copy.
@@ -552,7 +552,7 @@ fn changes_resolution(a: &Analysis, i: usize, channels_first: bool) -> bool {
         let skip = if channels_first { 1 } else { f.len() - 1 };
         return f.iter().zip(&o).enumerate().any(|(k, (x, y))| k != 0 && k != skip && x != y);
     }
-    b.shortcut.kind == crate::residual::ShortcutKind::Resampled
+    b.shortcut.kind == ShortcutKind::Resampled
         || b.branch.iter().any(|&n| {
             crate::load::attr::ints(&g.node(n).attrs, "strides")
                 .is_some_and(|s| s.iter().any(|&x| x > 1))
@@ -646,7 +646,7 @@ fn run_influence(
     config: &AuditConfig,
     progress: &dyn Progress,
 ) -> Result<Audit> {
-    let mut report = scan::structure_report("audit", info, &analysis);
+    let mut report = scan::structure_report(Command::Audit, info, &analysis);
     report.run = Some(run_row(&feeding, &config.findings));
     let watches = watches(&analysis);
     let n = analysis.detection.blocks.len();
@@ -834,7 +834,7 @@ fn run_influence(
         .collect();
     for f in findings::influence(&influence_facts, &ic.thresholds) {
         report.findings.push(FindingRow {
-            code: f.code.as_str().to_owned(),
+            code: f.code,
             block: f.block,
             node: f.block.and_then(|id| report.blocks.get(id - 1)).map(|b| b.merge.clone()),
             message: f.message,

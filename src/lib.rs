@@ -32,5 +32,7 @@ pub mod residual;
 pub mod scan;
 pub mod stats;
 pub mod structure;
+pub mod vocab;
 
-pub use error::{Diagnostic, Error, ErrorKind, Result, Severity};
+pub use error::{Diagnostic, Error, ErrorKind, Result};
+pub use vocab::Severity;

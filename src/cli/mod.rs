@@ -17,11 +17,12 @@ use clap::{Parser, Subcommand, ValueEnum};
 
 use shunt::audit::{self, AuditConfig};
 use shunt::batch;
-use shunt::findings::{Code, FindingConfig};
+use shunt::findings::FindingConfig;
 use shunt::probe::inputs::{Dist, InputConfig};
 use shunt::report::Report;
 use shunt::report::batch::BatchReport;
 use shunt::scan::{self, ScanConfig};
+use shunt::vocab::{Command as Word, FindingCode};
 
 /// Audit the residual structure of ONNX models.
 #[derive(Debug, Parser)]
@@ -384,7 +385,7 @@ fn run(args: Args) -> anyhow::Result<ExitCode> {
             let config = a.limits.config();
             let job = |path: &Path| Ok((scan::scan_file(path, &config)?, None));
             if is_batch(&a.models) {
-                return run_batch("scan", &a.models, &a.out, &a.many, a.quiet, &fail_on, &job);
+                return run_batch(Word::Scan, &a.models, &a.out, &a.many, a.quiet, &fail_on, &job);
             }
             let model = &a.models[0];
             let report = scan::scan_file(model, &config)?;
@@ -410,7 +411,7 @@ fn run(args: Args) -> anyhow::Result<ExitCode> {
             };
             if is_batch(&a.models) {
                 let job = |path: &Path| audit_one(path, a.no_run, &config, &shunt::probe::Silent);
-                return run_batch("audit", &a.models, &a.out, &a.many, a.quiet, &fail_on, &job);
+                return run_batch(Word::Audit, &a.models, &a.out, &a.many, a.quiet, &fail_on, &job);
             }
             let model = &a.models[0];
             let bar = progress::Bar::new(a.quiet);
@@ -434,7 +435,7 @@ fn audit_one(
 ) -> shunt::Result<(Report, Option<shunt::Error>)> {
     if no_run {
         let mut report = scan::scan_file(model, &config.scan)?;
-        report.command = "audit".to_owned();
+        report.command = Word::Audit;
         let facts = scan::block_facts(&report);
         scan::set_findings(&mut report, &facts, &config.findings);
         return Ok((report, None));
@@ -475,12 +476,12 @@ fn is_batch(paths: &[PathBuf]) -> bool {
 /// error on standard error, and exits 2 if any model failed, else 1 if any
 /// report has a finding named by `--fail-on`, else 0.
 fn run_batch(
-    command: &str,
+    command: Word,
     paths: &[PathBuf],
     out: &OutputArgs,
     args: &BatchArgs,
     quiet: bool,
-    fail_on: &[Code],
+    fail_on: &[FindingCode],
     job: &(dyn Fn(&Path) -> batch::Outcome + Sync),
 ) -> anyhow::Result<ExitCode> {
     if matches!(out.format, Format::Html | Format::Markdown | Format::Dot) {
@@ -543,24 +544,25 @@ fn emit(out: &OutputArgs, model: &Path, report: &Report) -> anyhow::Result<()> {
     })
 }
 
-fn verdict(report: &Report, fail_on: &[Code]) -> ExitCode {
-    let hit =
-        report.findings.iter().any(|f| Code::parse(&f.code).is_some_and(|c| fail_on.contains(&c)));
+fn verdict(report: &Report, fail_on: &[FindingCode]) -> ExitCode {
+    let hit = report.findings.iter().any(|f| fail_on.contains(&f.code));
     if hit { ExitCode::from(1) } else { ExitCode::SUCCESS }
 }
 
-fn parse_fail_on(list: Option<&str>) -> anyhow::Result<Vec<Code>> {
+fn parse_fail_on(list: Option<&str>) -> anyhow::Result<Vec<FindingCode>> {
     let Some(list) = list else { return Ok(Vec::new()) };
     let mut codes = Vec::new();
     for item in list.split(',').map(str::trim).filter(|s| !s.is_empty()) {
         if item == "any" {
-            return Ok(Code::ALL.to_vec());
+            return Ok(FindingCode::ALL.to_vec());
         }
-        match Code::parse(item) {
+        match FindingCode::parse(item) {
             Some(c) => codes.push(c),
             None => {
-                let known: Vec<&str> = Code::ALL.iter().map(|c| c.as_str()).collect();
-                bail!("--fail-on: unknown finding '{item}' (known: {}, or any)", known.join(", "))
+                bail!(
+                    "--fail-on: unknown finding '{item}' (known: {}, or any)",
+                    FindingCode::known()
+                )
             }
         }
     }
