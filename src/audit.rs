@@ -53,15 +53,18 @@ pub struct InfluenceConfig {
 
 impl InfluenceConfig {
     /// The documented defaults: every block knocked out, no converse, the
-    /// gain with step [`GAIN_STEP`], `low-impact` below 0.01, a gain factor of 100.
+    /// gain with step [`GAIN_STEP`], the standard thresholds.
+    pub const STANDARD: InfluenceConfig = InfluenceConfig {
+        knockout: true,
+        shortcuts: false,
+        blocks: None,
+        gain_step: Some(GAIN_STEP),
+        thresholds: InfluenceThresholds::STANDARD,
+    };
+
+    /// [`InfluenceConfig::STANDARD`].
     pub fn standard() -> InfluenceConfig {
-        InfluenceConfig {
-            knockout: true,
-            shortcuts: false,
-            blocks: None,
-            gain_step: Some(GAIN_STEP),
-            thresholds: InfluenceThresholds { low_impact_below: 0.01, gain_factor: 100.0 },
-        }
+        InfluenceConfig::STANDARD
     }
 }
 
@@ -83,15 +86,18 @@ impl InfluenceConfig {
 pub const GAIN_STEP: f32 = 1e-3;
 
 impl AuditConfig {
-    /// The documented defaults: the standard scan, 8 samples of standard
-    /// normal inputs with seed 0, and the standard thresholds.
+    /// The documented defaults: the standard scan, inputs and thresholds,
+    /// no knockout or gain.
+    pub const STANDARD: AuditConfig = AuditConfig {
+        scan: ScanConfig::STANDARD,
+        inputs: InputConfig::STANDARD,
+        findings: FindingConfig::STANDARD,
+        influence: None,
+    };
+
+    /// [`AuditConfig::STANDARD`].
     pub fn standard() -> AuditConfig {
-        AuditConfig {
-            scan: ScanConfig::standard(),
-            inputs: InputConfig::standard(8),
-            findings: scan::standard_findings(),
-            influence: None,
-        }
+        AuditConfig::STANDARD
     }
 }
 

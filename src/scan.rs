@@ -30,15 +30,20 @@ pub struct ScanConfig {
 }
 
 impl ScanConfig {
-    /// The documented defaults: files up to 4 GiB, graphs up to 1,000,000
-    /// nodes, weights up to 16 MiB read to check for all zeros.
+    /// The documented defaults, the only place they are written (the
+    /// command line's defaults read them): files up to 4 GiB, graphs up to
+    /// 1,000,000 nodes, weights up to 16 MiB read to check for all zeros,
+    /// NCHWc block size from the model or this machine.
+    pub const STANDARD: ScanConfig = ScanConfig {
+        load: LoadConfig { max_file_bytes: 4 << 30 },
+        build: BuildConfig { max_nodes: 1_000_000 },
+        classify: ClassifyConfig { max_inspect_bytes: 16 << 20 },
+        lower: LowerConfig::STANDARD,
+    };
+
+    /// [`ScanConfig::STANDARD`].
     pub fn standard() -> ScanConfig {
-        ScanConfig {
-            load: LoadConfig { max_file_bytes: 4 << 30 },
-            build: BuildConfig { max_nodes: 1_000_000 },
-            classify: ClassifyConfig { max_inspect_bytes: 16 << 20 },
-            lower: LowerConfig::standard(),
-        }
+        ScanConfig::STANDARD
     }
 }
 
@@ -219,18 +224,8 @@ fn dims(shape: &[Dim]) -> Vec<String> {
 pub fn report_of(model: ModelInfo, a: &Analysis) -> Report {
     let mut report = structure_report(Command::Scan, model, a);
     let facts = block_facts(&report);
-    set_findings(&mut report, &facts, &standard_findings());
+    set_findings(&mut report, &facts, &FindingConfig::STANDARD);
     report
-}
-
-/// The default thresholds of findings (docs/statistics.md).
-pub fn standard_findings() -> FindingConfig {
-    FindingConfig {
-        dead_below: 0.01,
-        dominant_above: 10.0,
-        dead_channels_above: 0.5,
-        depth_factor: 100.0,
-    }
 }
 
 /// The structural facts findings need, one per block of the report.

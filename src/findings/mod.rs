@@ -23,6 +23,18 @@ pub struct FindingConfig {
     pub depth_factor: f64,
 }
 
+impl FindingConfig {
+    /// The documented defaults (docs/statistics.md), the only place they are
+    /// written: `dead` below 0.01, `dominant` above 10, `dead-channels` above
+    /// half the channels, a depth factor of 100.
+    pub const STANDARD: FindingConfig = FindingConfig {
+        dead_below: 0.01,
+        dominant_above: 10.0,
+        dead_channels_above: 0.5,
+        depth_factor: 100.0,
+    };
+}
+
 /// What findings need to know of one block (block ids are 1-based).
 #[derive(Debug, Clone, Default)]
 pub struct BlockFacts {
@@ -174,6 +186,13 @@ pub struct InfluenceThresholds {
     /// `exploding-gain` / `vanishing-gain` when the end-to-end gain up to a
     /// top-level block is above this / below its inverse.
     pub gain_factor: f64,
+}
+
+impl InfluenceThresholds {
+    /// The documented defaults (docs/statistics.md): `low-impact` below 0.01,
+    /// a gain factor of 100.
+    pub const STANDARD: InfluenceThresholds =
+        InfluenceThresholds { low_impact_below: 0.01, gain_factor: 100.0 };
 }
 
 /// What the knockout and gain findings need to know of one block.
