@@ -375,11 +375,15 @@ fn prepare_files() -> PathBuf {
     let analysis =
         shunt::open::analyse(model, ExternalData::none(), &config.open).expect("analyse the model");
     let specs = inputs::input_specs(&analysis.graph);
-    let feeding = inputs::plan(&specs, &config.inputs).expect("a feeding plan");
-    assert_eq!((feeding.passes, feeding.pass_batch), (1, BATCH), "one pass of the whole batch");
-    let values = inputs::values(&feeding, 0);
+    let input_plan = inputs::plan(&specs, &config.inputs).expect("an input plan");
+    assert_eq!(
+        (input_plan.passes, input_plan.pass_batch),
+        (1, BATCH),
+        "one pass of the whole batch"
+    );
+    let values = inputs::values(&input_plan, 0);
     let Values::F32(data) = &values[0] else { panic!("a float input") };
-    let shape: Vec<usize> = feeding.inputs[0].pass_shape.iter().map(|&d| d as usize).collect();
+    let shape: Vec<usize> = input_plan.inputs[0].pass_shape.iter().map(|&d| d as usize).collect();
     let array = ArrayD::from_shape_vec(IxDyn(&shape), data.clone()).expect("an array");
     ndarray_npy::write_npy(dir.join("resnet50_input.npy"), &array).expect("write the input");
     println!(

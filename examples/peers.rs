@@ -32,10 +32,10 @@ fn write(dir: &Path) {
     let config = InputConfig::standard(8);
     let analysis = shunt::open::analyse(model, ExternalData::none(), &OpenConfig::standard())
         .expect("analyse the model");
-    let feeding = inputs::plan(&inputs::input_specs(&analysis.graph), &config).expect("a plan");
-    let values = inputs::values(&feeding, 0);
+    let input_plan = inputs::plan(&inputs::input_specs(&analysis.graph), &config).expect("a plan");
+    let values = inputs::values(&input_plan, 0);
     let Values::F32(data) = &values[0] else { panic!("a float input") };
-    let shape: Vec<usize> = feeding.inputs[0].pass_shape.iter().map(|&d| d as usize).collect();
+    let shape: Vec<usize> = input_plan.inputs[0].pass_shape.iter().map(|&d| d as usize).collect();
     let array = ArrayD::from_shape_vec(IxDyn(&shape), data.clone()).expect("an array");
     ndarray_npy::write_npy(dir.join("input.npy"), &array).expect("write the input");
 }

@@ -8,24 +8,24 @@
 
 use std::collections::BTreeMap;
 
-use crate::findings::{self, BlockFacts, FindingConfig, InfluenceFacts, Run};
+use crate::findings::{self, BareRunFacts, BlockFacts, FindingConfig, InfluenceFacts};
 use crate::graph::{Dim, Graph, NodeId, ValueId};
 use crate::load::tensor;
 use crate::lower::precision::Half;
 use crate::measure::{self, InfluenceConfig, InfluenceMeasured, Measured, Measurement, RanAs};
 use crate::open::{Analysis, FileFacts};
-use crate::probe::inputs::Feeding;
+use crate::probe::inputs::InputPlan;
 use crate::probe::{BlockSamples, ENGINE};
 use crate::proto::ValueInfoProto;
 use crate::report::{self, *};
 use crate::stats::Spread;
-use crate::vocab::{Command, ShortcutKind};
+use crate::vocab::Command;
 
 /// A run to report: what was fed, what was measured, and the knockout and
 /// gain options it was measured with.
 pub struct RunFacts<'a> {
     /// What was fed.
-    pub feeding: &'a Feeding,
+    pub input_plan: &'a InputPlan,
     /// What was measured (or why the run failed).
     pub measurement: &'a Measurement,
     /// The knockout and gain options, when they ran.
@@ -45,7 +45,7 @@ pub fn report(
     let mut facts = block_facts(&report);
     let mut measured = None;
     if let Some(run) = &run {
-        let mut row = run_row(run.feeding, thresholds);
+        let mut row = run_row(run.input_plan, thresholds);
         row.precision = run.measurement.ran_as.as_ref().map(precision_row);
         report.run = Some(row);
         match &run.measurement.outcome {
@@ -152,10 +152,10 @@ fn block_facts(report: &Report) -> Vec<BlockFacts> {
 
 /// Computes the findings of `facts` and stores them in the report.
 fn set_findings(report: &mut Report, facts: &[BlockFacts], config: &FindingConfig) {
-    let runs: Vec<Run> = report
+    let runs: Vec<BareRunFacts> = report
         .bare_runs
         .iter()
-        .map(|r| Run {
+        .map(|r| BareRunFacts {
             after: r.after_block,
             before: r.before_block,
             layers: r.layers.iter().map(|l| l.name.clone()).collect(),
@@ -184,7 +184,7 @@ fn structure(command: Command, model: ModelInfo, a: &Analysis) -> Report {
     let blocks: Vec<BlockRow> = det
         .blocks
         .iter()
-        .zip(&a.kinds)
+        .zip(&a.classifications)
         .enumerate()
         .map(|(i, (b, k))| BlockRow {
             id: i + 1,
@@ -345,14 +345,14 @@ fn structure(command: Command, model: ModelInfo, a: &Analysis) -> Report {
         influence: None,
     }
 }
-fn run_row(feeding: &Feeding, f: &FindingConfig) -> RunRow {
+fn run_row(input_plan: &InputPlan, f: &FindingConfig) -> RunRow {
     RunRow {
         engine: ENGINE.to_owned(),
-        samples: feeding.samples,
-        pass_batch: feeding.pass_batch,
-        passes: feeding.passes,
-        seed: feeding.seed,
-        inputs: feeding
+        samples: input_plan.samples,
+        pass_batch: input_plan.pass_batch,
+        passes: input_plan.passes,
+        seed: input_plan.seed,
+        inputs: input_plan
             .inputs
             .iter()
             .map(|i| FedRow {
@@ -362,7 +362,7 @@ fn run_row(feeding: &Feeding, f: &FindingConfig) -> RunRow {
                 values: i.how.clone(),
             })
             .collect(),
-        feed: feeding
+        feed: input_plan
             .feed
             .as_ref()
             .map(|(p, d)| FeedRow { path: p.display().to_string(), sha256: d.clone() }),
@@ -433,38 +433,6 @@ fn fill_stats(
     }
 }
 
-/// Whether a block changes the spatial or sequence size: its fork and output
-/// shapes differ outside the channel axis, or (shapes unknown) a branch
-/// layer has a stride or the shortcut resamples.
-fn changes_resolution(a: &Analysis, i: usize) -> bool {
-    let g = &a.graph;
-    let b = &a.detection.blocks[i];
-    let known = |v| -> Option<Vec<u64>> {
-        g.value(v)
-            .fact
-            .shape
-            .as_ref()?
-            .iter()
-            .map(|d| match d {
-                Dim::Known(k) => Some(*k),
-                _ => None,
-            })
-            .collect()
-    };
-    if let (Some(f), Some(o)) = (known(b.fork), known(b.output))
-        && f.len() == o.len()
-        && f.len() >= 3
-    {
-        let skip = if measure::channels_first(a, b) { 1 } else { f.len() - 1 };
-        return f.iter().zip(&o).enumerate().any(|(k, (x, y))| k != 0 && k != skip && x != y);
-    }
-    b.shortcut.kind == ShortcutKind::Resampled
-        || b.branch.iter().any(|&n| {
-            crate::load::attr::ints(&g.node(n).attrs, "strides")
-                .is_some_and(|s| s.iter().any(|&x| x > 1))
-        })
-}
-
 /// The distribution of path lengths when each block independently sends a
 /// unit of change through its branch with probability `q` (a Poisson
 /// binomial distribution), by dynamic programming.
@@ -522,12 +490,11 @@ fn influence(
     let n = analysis.detection.blocks.len();
     let knocked = &inf.knocked;
     let knocked_shortcut = &inf.knocked_shortcut;
-    let resolution: Vec<bool> = (0..n).map(|i| changes_resolution(analysis, i)).collect();
     let depth: Vec<usize> = analysis.detection.blocks.iter().map(|b| b.depth).collect();
     let mut rows: Vec<InfluenceRow> = (0..n)
         .map(|i| InfluenceRow {
             block: i + 1,
-            changes_resolution: resolution[i],
+            changes_resolution: analysis.classifications[i].changes_resolution,
             knockout: knocked[i],
             shortcut_knockout: knocked_shortcut[i],
             rank: None,

@@ -63,8 +63,8 @@ pub struct Audit {
 /// Audits a model file: open, plan, measure, assemble.
 pub fn audit_file(path: &Path, config: &AuditConfig, progress: &dyn Progress) -> Result<Audit> {
     let opened = open::open_file(path, &config.open, config.purpose())?;
-    let feeding = opened.plan(&config.inputs).map_err(|e| e.at(path))?;
-    measured(opened, &feeding, config, progress).map_err(|e| e.at(path))
+    let input_plan = opened.plan(&config.inputs).map_err(|e| e.at(path))?;
+    measured(opened, &input_plan, config, progress).map_err(|e| e.at(path))
 }
 
 /// Audits an in-memory model (tests, benchmarks); `label` stands for the path.
@@ -75,8 +75,8 @@ pub fn audit_model(
     progress: &dyn Progress,
 ) -> Result<Audit> {
     let opened = open::open_model(model, label, &config.open, config.purpose())?;
-    let feeding = opened.plan(&config.inputs)?;
-    measured(opened, &feeding, config, progress)
+    let input_plan = opened.plan(&config.inputs)?;
+    measured(opened, &input_plan, config, progress)
 }
 
 /// `audit --no-run`: the structure and its findings judged by the audit's
@@ -90,14 +90,15 @@ pub fn audit_structure(path: &Path, config: &AuditConfig) -> Result<Report> {
 /// two stages of an audit (`compare` plans both models before either runs).
 pub(crate) fn measured(
     mut opened: Opened,
-    feeding: &crate::probe::inputs::Feeding,
+    input_plan: &crate::probe::inputs::InputPlan,
     config: &AuditConfig,
     progress: &dyn Progress,
 ) -> Result<Audit> {
     let runnable = opened.take_runnable().expect("a model opened for a run");
     let influence = config.influence.as_ref();
-    let measurement = measure::measure(runnable, &opened.analysis, feeding, influence, progress)?;
-    let run = RunFacts { feeding, measurement: &measurement, influence };
+    let measurement =
+        measure::measure(runnable, &opened.analysis, input_plan, influence, progress)?;
+    let run = RunFacts { input_plan, measurement: &measurement, influence };
     let report = assemble::report(
         Command::Audit,
         &opened.file,

@@ -95,7 +95,7 @@ fn is_model_name(p: &Path) -> bool {
 /// returns one entry per element of `found`, in its order. `done` is called
 /// after each model (from the worker thread) with the model's path. A panic
 /// inside `job` becomes that model's error.
-pub fn run(
+pub fn for_each(
     found: &[Found],
     threads: usize,
     job: &(dyn Fn(&Path) -> Outcome + Sync),
@@ -144,7 +144,7 @@ fn entry_of(path: &Path, job: &(dyn Fn(&Path) -> Outcome + Sync)) -> BatchEntry 
             .map(String::as_str)
             .or_else(|| panic.downcast_ref::<&str>().copied())
             .unwrap_or("unknown cause");
-        Err(Error::new(ErrorKind::Probe, format!("internal error: {what}")).at(path))
+        Err(Error::new(ErrorKind::Internal, format!("internal error: {what}")).at(path))
     });
     match outcome {
         Ok((report, run_error)) => {
@@ -192,7 +192,7 @@ mod tests {
             Err(Error::new(ErrorKind::Io, "no such file"))
         };
         let count = AtomicUsize::new(0);
-        let entries = run(&found, 3, &job, &|_| {
+        let entries = for_each(&found, 3, &job, &|_| {
             count.fetch_add(1, Ordering::Relaxed);
         });
         assert_eq!(count.load(Ordering::Relaxed), 9);

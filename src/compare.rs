@@ -13,7 +13,7 @@ use crate::error::{Error, ErrorKind, Result};
 use crate::open;
 
 use crate::probe::Progress;
-use crate::probe::inputs::Feeding;
+use crate::probe::inputs::InputPlan;
 use crate::report::Report;
 use crate::report::compare::{
     BlockPair, COMPARE_SCHEMA, COMPARE_SCHEMA_VERSION, Comparison, FedBoth, OutputAgreement, Side,
@@ -27,7 +27,7 @@ use crate::vocab::PairStatus;
 /// What a comparison does.
 #[derive(Debug, Clone)]
 pub struct CompareConfig {
-    /// Scan limits, feeding and findings, used for both models.
+    /// Limits, inputs and findings, used for both models.
     pub audit: AuditConfig,
     /// Run both models (otherwise structure only).
     pub run: bool,
@@ -51,9 +51,9 @@ fn usage(path: &Path, message: String) -> Error {
 /// order, element types, shapes past the batch axis, value sources and
 /// sample count. The values then agree too, because every input's values
 /// are a function of the seed, the input's position, its shape and its source.
-fn same_feeding(a: &Feeding, b: &Feeding, b_path: &Path) -> Result<()> {
+fn same_inputs(a: &InputPlan, b: &InputPlan, b_path: &Path) -> Result<()> {
     let names =
-        |f: &Feeding| f.inputs.iter().map(|i| i.name.clone()).collect::<Vec<_>>().join(", ");
+        |f: &InputPlan| f.inputs.iter().map(|i| i.name.clone()).collect::<Vec<_>>().join(", ");
     if a.inputs.len() != b.inputs.len()
         || a.inputs.iter().zip(&b.inputs).any(|(x, y)| x.name != y.name)
     {
@@ -104,7 +104,7 @@ pub fn compare_files(
     let ob = open::open_file(b_path, &config.audit.open, purpose)?;
     let fa = oa.plan(&config.audit.inputs).map_err(|e| e.at(a_path))?;
     let fb = ob.plan(&config.audit.inputs).map_err(|e| e.at(b_path))?;
-    same_feeding(&fa, &fb, b_path)?;
+    same_inputs(&fa, &fb, b_path)?;
     let a = audit::measured(oa, &fa, &config.audit, progress).map_err(|e| e.at(a_path))?;
     if let Some(e) = a.run_error {
         return Err(e.at(a_path));

@@ -31,6 +31,12 @@ pub enum ErrorKind {
     /// The request itself does not make sense for this model (a missing
     /// dimension value, a bad input file).
     Usage,
+    /// A pin or expectation file that cannot be read as one (its syntax, an
+    /// unknown key or word, an unsupported version).
+    CheckFile,
+    /// A panic caught inside shunt or the inference engine while a job of
+    /// several models ran: a bug to report, not a fault of the model.
+    Internal,
 }
 
 /// An error that stops the analysis of one model file.

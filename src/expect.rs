@@ -10,6 +10,7 @@
 
 use serde::Deserialize;
 
+use crate::error::{Error, ErrorKind, Result};
 use crate::report::Report;
 use crate::report::text::plural;
 use crate::report::verify::{Difference, VERIFY_SCHEMA, VERIFY_SCHEMA_VERSION, Verification};
@@ -114,7 +115,7 @@ struct LimitsFile {
     ratio_max: Option<f64>,
 }
 
-fn placement(word: Option<String>) -> Result<Option<Placement>, String> {
+fn placement(word: Option<String>) -> std::result::Result<Option<Placement>, String> {
     word.map(|p| {
         Placement::parse(&p)
             .ok_or_else(|| format!("unknown placement '{p}' (known: {})", Placement::known()))
@@ -122,8 +123,13 @@ fn placement(word: Option<String>) -> Result<Option<Placement>, String> {
     .transpose()
 }
 
-/// Parses an expectation file's text; the error says what is wrong.
-pub fn read(text: &str) -> Result<Expectation, String> {
+/// Parses an expectation file's text; the error ([`ErrorKind::CheckFile`])
+/// says what is wrong (the caller adds the path with [`Error::at`]).
+pub fn read(text: &str) -> Result<Expectation> {
+    read_text(text).map_err(|m| Error::new(ErrorKind::CheckFile, m))
+}
+
+fn read_text(text: &str) -> std::result::Result<Expectation, String> {
     let e: ExpectationFile = toml::from_str(text).map_err(|e| {
         format!("not a valid expectation file: {}", crate::structure::toml_message(text, &e))
     })?;
@@ -423,10 +429,11 @@ mod tests {
 
     #[test]
     fn unknown_keys_placements_and_codes_are_refused() {
-        assert!(read("blocks = 3\nblokcs = 4\n").unwrap_err().contains("blokcs"));
-        assert!(read("placement = \"sideways\"\n").unwrap_err().contains("sideways"));
-        assert!(read("[limits]\nforbid = [\"deadish\"]\n").unwrap_err().contains("deadish"));
-        assert!(read("version = 2\n").unwrap_err().contains("version 2"));
+        let refused = |text: &str| read(text).unwrap_err().message().to_owned();
+        assert!(refused("blocks = 3\nblokcs = 4\n").contains("blokcs"));
+        assert!(refused("placement = \"sideways\"\n").contains("sideways"));
+        assert!(refused("[limits]\nforbid = [\"deadish\"]\n").contains("deadish"));
+        assert!(refused("version = 2\n").contains("version 2"));
         assert!(read("projection = [0]\n").is_err());
         assert!(read("[limits]\nratio_min = 2.0\nratio_max = 1.0\n").is_err());
         assert_eq!(read("").unwrap(), Expectation::default());

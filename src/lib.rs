@@ -17,6 +17,7 @@
 //! # Ok::<(), shunt::Error>(())
 //! ```
 #![deny(missing_docs)]
+#![warn(unreachable_pub)]
 
 pub mod assemble;
 pub mod audit;

@@ -14,10 +14,10 @@ use prost::Message;
 
 use crate::error::{Error, ErrorKind, Result};
 use crate::gate::{self, Site};
-use crate::graph::{self, op};
+use crate::graph;
 use crate::lower::precision::{self, Half};
 use crate::open::{Analysis, HalfModel, Runnable};
-use crate::probe::inputs::Feeding;
+use crate::probe::inputs::InputPlan;
 use crate::probe::{self, GainSamples, GatedPlan, ModelSource, ProbeResult, Progress, Watch};
 use crate::stats::{self, Agreement};
 use crate::vocab::Placement;
@@ -124,14 +124,14 @@ pub struct InfluenceMeasured {
     pub input_change: Vec<f64>,
 }
 
-/// Runs `runnable` on `feeding` and measures every block of `analysis`: the
+/// Runs `runnable` on `input_plan` and measures every block of `analysis`: the
 /// plain measurement, or with `influence` the knockout and gain runs too.
 /// An error is returned for a request the model cannot meet (a block id it
 /// does not have); a failed run is the measurement's `outcome`.
 pub fn measure(
     runnable: Runnable,
     analysis: &Analysis,
-    feeding: &Feeding,
+    input_plan: &InputPlan,
     influence: Option<&InfluenceConfig>,
     progress: &dyn Progress,
 ) -> Result<Measurement> {
@@ -144,7 +144,7 @@ pub fn measure(
             dir.as_deref(),
             half,
             &watches,
-            feeding,
+            input_plan,
             ic,
             progress,
         );
@@ -156,7 +156,7 @@ pub fn measure(
         (None, None) => ModelSource::Bytes(&bytes),
     };
     let (outcome, ran_as) = run_precise(half.as_ref(), source, dir.as_deref(), |s| {
-        probe::run(s, &watches, feeding, progress)
+        probe::run(s, &watches, input_plan, progress)
     });
     let outcome = outcome.map(|intact| Measured { intact, influence: None });
     Ok(Measurement { ran_as, outcome })
@@ -168,25 +168,18 @@ pub fn watches(a: &Analysis) -> Vec<Watch> {
     a.detection
         .blocks
         .iter()
-        .zip(&a.kinds)
+        .zip(&a.classifications)
         .map(|(b, k)| Watch {
             fork: g.value(dequantised(g, b.fork)).name.clone(),
             shortcut: g.value(b.shortcut.input).name.clone(),
             branch: b.branch_inputs.iter().map(|&v| g.value(v).name.clone()).collect(),
             output: g.value(b.output).name.clone(),
-            channels_first: channels_first(a, b),
+            channels_first: k.channels_first,
             relu_after: k.placement == Placement::PostActivation
                 && k.placement_node
                     .is_some_and(|n| matches!(g.node(n).op.as_str(), "Relu" | "QuantizeLinear")),
         })
         .collect()
-}
-
-/// Whether a block's channels are on axis 1 (a convolution in its branch)
-/// rather than the last axis.
-pub fn channels_first(a: &Analysis, b: &crate::residual::Block) -> bool {
-    let g = &a.graph;
-    b.branch.iter().any(|&n| op::is_parametrised(g, n) && g.node(n).op.contains("Conv"))
 }
 
 /// The float value of a block input: a quantised tensor (codes: element types
@@ -274,7 +267,7 @@ fn measure_gated(
     dir: Option<&Path>,
     half: Option<HalfModel>,
     watches: &[Watch],
-    feeding: &Feeding,
+    input_plan: &InputPlan,
     ic: &InfluenceConfig,
     progress: &dyn Progress,
 ) -> Result<Measurement> {
@@ -351,7 +344,7 @@ fn measure_gated(
         }
     };
     let (outcome, ran_as) = run_precise(half.as_ref(), source, dir, |s| {
-        probe::run_gated(s, watches, feeding, &plan, &mut sink, progress)
+        probe::run_gated(s, watches, input_plan, &plan, &mut sink, progress)
     });
     let outcome = outcome.map(|r| Measured {
         intact: r.intact,

@@ -12,12 +12,12 @@ use std::path::{Path, PathBuf};
 
 use prost::Message;
 
-use crate::classify::{self, BareRun, ClassifyConfig, Kind, Stage};
+use crate::classify::{self, BareRun, Classification, ClassifyConfig, Stage};
 use crate::error::{Diagnostic, Result};
 use crate::graph::{self, BuildConfig, Dominance, Graph};
 use crate::load::{self, ExternalData, LoadConfig};
 use crate::lower::{self, LowerConfig, Lowered, precision};
-use crate::probe::inputs::{self, Feeding, InputConfig};
+use crate::probe::inputs::{self, InputConfig, InputPlan};
 use crate::proto::{ModelProto, ValueInfoProto};
 use crate::residual::{self, Detection};
 
@@ -136,7 +136,7 @@ pub struct Analysis {
     /// Blocks, concatenative skips, rejected merges.
     pub detection: Detection,
     /// The classification of each block.
-    pub kinds: Vec<Kind>,
+    pub classifications: Vec<Classification>,
     /// Stages.
     pub stages: Vec<Stage>,
     /// The stage of each block.
@@ -167,7 +167,8 @@ fn analyse_lowered(
     graph.set_origins(lowered.origins);
     let dom = Dominance::compute(&graph);
     let detection = residual::find_blocks(&graph, &dom);
-    let kinds: Vec<Kind> = classify::classify_all(&graph, &detection.blocks, &config.classify);
+    let classifications: Vec<Classification> =
+        classify::classify_all(&graph, &detection.blocks, &config.classify);
     let (stages, stage_of) = classify::stages(&graph, &detection.blocks);
     let bare_runs = classify::bare_runs(&graph, &detection.blocks, &stage_of);
     for n in &graph.nodes {
@@ -184,7 +185,7 @@ fn analyse_lowered(
     Ok(Analysis {
         graph,
         detection,
-        kinds,
+        classifications,
         stages,
         stage_of,
         bare_runs,
@@ -310,7 +311,7 @@ fn half_model(model: &ModelProto, external: &ExternalData) -> Option<HalfModel> 
 impl Opened {
     /// The second stage: plans what is fed, from the model's own input
     /// declarations.
-    pub fn plan(&self, config: &InputConfig) -> Result<Feeding> {
+    pub fn plan(&self, config: &InputConfig) -> Result<InputPlan> {
         let specs = inputs::input_specs(&self.analysis.graph);
         inputs::plan(&specs, config)
     }

@@ -15,6 +15,7 @@ use std::io;
 
 use serde::{Deserialize, Serialize};
 
+use crate::error::{Error, ErrorKind, Result};
 use crate::report::text::{ARROW_ASCII, layer_signature, plural, terminal_safe};
 use crate::report::verify::{Difference, VERIFY_SCHEMA, VERIFY_SCHEMA_VERSION, Verification};
 use crate::report::{BlockRow, Report};
@@ -134,8 +135,13 @@ pub fn write_pin(pin: &Pin, source: &str, out: &mut dyn io::Write) -> io::Result
     out.write_all(s.as_bytes())
 }
 
-/// Reads a pin file's text; the error says what is wrong (the caller adds the path).
-pub fn read_pin(text: &str) -> Result<Pin, String> {
+/// Reads a pin file's text; the error ([`ErrorKind::CheckFile`]) says what is
+/// wrong (the caller adds the path with [`Error::at`]).
+pub fn read_pin(text: &str) -> Result<Pin> {
+    read_pin_text(text).map_err(|m| Error::new(ErrorKind::CheckFile, m))
+}
+
+fn read_pin_text(text: &str) -> std::result::Result<Pin, String> {
     // The words are read as text first, so that an unknown one is refused
     // with the block it is in.
     let pin: Pin<PinBlock<String, String>> =
@@ -654,21 +660,17 @@ mod tests {
         write_pin(&pin, "m.onnx", &mut text).unwrap();
         let text = String::from_utf8(text).unwrap();
         assert_eq!(read_pin(&text).unwrap(), pin);
-        assert!(
-            read_pin("schema = \"shunt/pin\"\nschema_version = 2\n")
-                .unwrap_err()
-                .contains("version 2")
-        );
-        assert!(
-            read_pin("schema = \"other\"\nschema_version = 1\n").unwrap_err().contains("other")
-        );
+        let refused = |text: &str| read_pin(text).unwrap_err().message().to_owned();
+        assert!(refused("schema = \"shunt/pin\"\nschema_version = 2\n").contains("version 2"));
+        assert!(refused("schema = \"other\"\nschema_version = 1\n").contains("other"));
         assert!(read_pin("[[block]]\nshortcut = 1\n").is_err());
         let bad = text.replace("parent = 1", "parent = 7");
-        assert!(read_pin(&bad).unwrap_err().contains("parent 7"));
+        assert!(refused(&bad).contains("parent 7"));
         let bad = text.replace("\"pre-norm\"", "\"pre-normal\"");
+        let e = read_pin(&bad).unwrap_err();
+        assert_eq!(e.kind(), ErrorKind::CheckFile);
         assert!(
-            read_pin(&bad)
-                .unwrap_err()
+            e.message()
                 .starts_with("block 1: placement 'pre-normal' is not one of post-activation, ")
         );
     }

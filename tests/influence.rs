@@ -161,13 +161,13 @@ fn analytic_gains(
 ) -> (Vec<f64>, Vec<f64>) {
     let analysis =
         shunt::open::analyse(model.clone(), ExternalData::none(), &c.open).expect("analyses");
-    let feeding = inputs::plan(&inputs::input_specs(&analysis.graph), &c.inputs).unwrap();
+    let input_plan = inputs::plan(&inputs::input_specs(&analysis.graph), &c.inputs).unwrap();
     let width = (weights[0].len() as f64).sqrt() as usize;
     let (mut per_block, mut to_here) = (vec![0.0; weights.len()], vec![0.0; weights.len()]);
     let mut count = 0.0;
-    for pass in 0..feeding.passes {
-        let values = inputs::values(&feeding, pass);
-        let moved = inputs::perturbed(&feeding, pass, &values, step_size);
+    for pass in 0..input_plan.passes {
+        let values = inputs::values(&input_plan, pass);
+        let moved = inputs::perturbed(&input_plan, pass, &values, step_size);
         let (Values::F32(x), Values::F32(y)) = (&values[0], &moved[0]) else { panic!("floats") };
         for (xs, ys) in x.chunks(width).zip(y.chunks(width)) {
             let d0: Vec<f64> =

@@ -14,7 +14,7 @@ use crate::graph::op::{self, Family};
 use crate::graph::{Graph, NodeId, ValueId};
 use crate::load::attr;
 use crate::residual::Block;
-use crate::vocab::{DeadReason, Placement};
+use crate::vocab::{DeadReason, Placement, ShortcutKind};
 
 pub use stage::{BareRun, Stage, bare_runs, stages};
 
@@ -92,7 +92,7 @@ pub struct StaticDead {
 
 /// The classification of one block.
 #[derive(Debug, Clone)]
-pub struct Kind {
+pub struct Classification {
     /// Placement of normalisation and activation.
     pub placement: Placement,
     /// The op after the merge or at the branch opening that decided it.
@@ -110,10 +110,17 @@ pub struct Kind {
     pub end_scale: Option<EndScale>,
     /// Dead by construction.
     pub static_dead: Option<StaticDead>,
+    /// The channels are on axis 1 (a convolution in the branch) rather than
+    /// the last axis.
+    pub channels_first: bool,
+    /// The block changes the spatial or sequence size: its fork and output
+    /// shapes differ outside the batch and channel axes, or (shapes
+    /// unknown) a branch op has a stride above 1 or the shortcut resamples.
+    pub changes_resolution: bool,
 }
 
 /// Classifies every detected block, in order.
-pub fn classify_all(g: &Graph, blocks: &[Block], config: &ClassifyConfig) -> Vec<Kind> {
+pub fn classify_all(g: &Graph, blocks: &[Block], config: &ClassifyConfig) -> Vec<Classification> {
     let forks: HashSet<ValueId> = blocks.iter().map(|b| b.fork).collect();
     (0..blocks.len())
         .map(|i| {
@@ -132,7 +139,12 @@ pub struct Later<'a> {
 }
 
 /// Classifies one detected block.
-pub fn classify(g: &Graph, block: &Block, later: &Later<'_>, config: &ClassifyConfig) -> Kind {
+pub fn classify(
+    g: &Graph,
+    block: &Block,
+    later: &Later<'_>,
+    config: &ClassifyConfig,
+) -> Classification {
     let branch: HashSet<NodeId> = block.branch.iter().copied().collect();
     let (placement, placement_node) = placement(g, block, &branch, later);
     let layers = block
@@ -182,7 +194,50 @@ pub fn classify(g: &Graph, block: &Block, later: &Later<'_>, config: &ClassifyCo
     }
     let end_scale = end_scale(g, block);
     let static_dead = static_dead(g, block, end_scale.as_ref(), config);
-    Kind { placement, placement_node, layers, norms, activations, gates, end_scale, static_dead }
+    let channels_first =
+        block.branch.iter().any(|&n| op::is_parametrised(g, n) && g.node(n).op.contains("Conv"));
+    let changes_resolution = changes_resolution(g, block, channels_first);
+    Classification {
+        placement,
+        placement_node,
+        layers,
+        norms,
+        activations,
+        gates,
+        end_scale,
+        static_dead,
+        channels_first,
+        changes_resolution,
+    }
+}
+
+/// Whether a block changes the spatial or sequence size: its fork and output
+/// shapes differ outside the batch and channel axes, or (shapes unknown) a
+/// branch op has a stride above 1 or the shortcut resamples.
+fn changes_resolution(g: &Graph, b: &Block, channels_first: bool) -> bool {
+    let known = |v| -> Option<Vec<u64>> {
+        g.value(v)
+            .fact
+            .shape
+            .as_ref()?
+            .iter()
+            .map(|d| match d {
+                crate::graph::Dim::Known(k) => Some(*k),
+                _ => None,
+            })
+            .collect()
+    };
+    if let (Some(f), Some(o)) = (known(b.fork), known(b.output))
+        && f.len() == o.len()
+        && f.len() >= 3
+    {
+        let skip = if channels_first { 1 } else { f.len() - 1 };
+        return f.iter().zip(&o).enumerate().any(|(k, (x, y))| k != 0 && k != skip && x != y);
+    }
+    b.shortcut.kind == ShortcutKind::Resampled
+        || b.branch.iter().any(|&n| {
+            attr::ints(&g.node(n).attrs, "strides").is_some_and(|s| s.iter().any(|&x| x > 1))
+        })
 }
 
 fn placement(

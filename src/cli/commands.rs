@@ -144,14 +144,12 @@ fn read_text(path: &Path, what: &str) -> anyhow::Result<String> {
 
 pub(super) fn verify(a: &VerifyArgs) -> anyhow::Result<u8> {
     let verification = if let Some(pin_path) = &a.pin {
-        let pin = structure::read_pin(&read_text(pin_path, "pin")?)
-            .map_err(|e| anyhow::anyhow!("{}: {e}", pin_path.display()))?;
+        let pin = structure::read_pin(&read_text(pin_path, "pin")?).map_err(|e| e.at(pin_path))?;
         let report = scan::scan_file(&a.model, &a.limits.config())?;
         structure::verify_pin(&pin, &report, &pin_path.display().to_string())
     } else {
         let path = a.expect.as_ref().context("--pin or --expect is required")?;
-        let expectation = expect::read(&read_text(path, "expectation")?)
-            .map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))?;
+        let expectation = expect::read(&read_text(path, "expectation")?).map_err(|e| e.at(path))?;
         let report = if expectation.needs_run() {
             let config = AuditConfig {
                 open: a.limits.config(),
@@ -244,7 +242,7 @@ fn run_batch(
     }
     let bar = progress::Bar::new(quiet);
     crate::probe::Progress::step(&bar, "models", found.len() as u64);
-    let entries = batch::run(&found, threads, job, &|_| crate::probe::Progress::advance(&bar));
+    let entries = batch::for_each(&found, threads, job, &|_| crate::probe::Progress::advance(&bar));
     bar.clear();
     let report = BatchReport::new(command, entries);
     let inputs: Vec<&Path> = found.iter().map(batch::Found::path).collect();

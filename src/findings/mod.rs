@@ -67,7 +67,7 @@ pub struct Finding {
 
 /// A bare run: learned layers between blocks `after` and `before` (1-based).
 #[derive(Debug, Clone)]
-pub struct Run {
+pub struct BareRunFacts {
     /// Block before the run.
     pub after: usize,
     /// Block after the run.
@@ -77,7 +77,11 @@ pub struct Run {
 }
 
 /// All findings for a model, in block order, structure first.
-pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> Vec<Finding> {
+pub fn findings(
+    blocks: &[BlockFacts],
+    runs: &[BareRunFacts],
+    config: &FindingConfig,
+) -> Vec<Finding> {
     let mut out = Vec::new();
     for r in runs {
         out.push(Finding {

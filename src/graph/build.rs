@@ -218,13 +218,12 @@ pub fn build(
         outputs,
         order,
         rank,
-        by_name,
         initializers,
         external,
     };
     mark_static(&mut g);
     shape::infer(&mut g);
-    debug_assert_eq!(g.validate(), Ok(()));
+    debug_assert!(g.validate().is_ok(), "{:?}", g.validate());
     Ok((g, diagnostics))
 }
 

@@ -127,7 +127,6 @@ pub struct Graph {
     pub order: Vec<NodeId>,
     /// Position of each node in `order`.
     pub rank: Vec<u32>,
-    by_name: HashMap<String, ValueId>,
     initializers: HashMap<ValueId, TensorProto>,
     external: ExternalData,
 }
@@ -149,11 +148,6 @@ impl Graph {
     /// A value by id.
     pub fn value(&self, id: ValueId) -> &Value {
         &self.values[id.0 as usize]
-    }
-
-    /// A value by its ONNX name.
-    pub fn value_by_name(&self, name: &str) -> Option<ValueId> {
-        self.by_name.get(name).copied()
     }
 
     /// The node that produces a value, if any.
@@ -179,11 +173,15 @@ impl Graph {
         self.initializers.get(&id)
     }
 
-    /// Lets go of the initializers' payloads (the decoded weights), once
-    /// nothing more is to be read from them: names, shapes, facts and
-    /// structure stay, but constants read as unknown from then on.
+    /// Lets go of the initializers (the decoded weights) and the nodes'
+    /// attributes, once the analysis has read what it needs of them: names,
+    /// op types, shapes, facts and structure stay; constants and attributes
+    /// read as absent from then on.
     pub fn release_payloads(&mut self) {
         self.initializers = HashMap::new();
+        for n in &mut self.nodes {
+            n.attrs = Vec::new();
+        }
     }
 
     /// The tensor a static value takes, when it is an initializer or the
@@ -243,27 +241,30 @@ impl Graph {
 
     /// Checks the invariants of the graph (one producer per value, the order
     /// is topological); used by tests and debug builds.
-    pub fn validate(&self) -> Result<(), String> {
+    pub fn validate(&self) -> crate::error::Result<()> {
         for (i, v) in self.values.iter().enumerate() {
             if let Source::Node(n, slot) = v.source
                 && self.node(n).outputs.get(slot) != Some(&ValueId(i as u32))
             {
-                return Err(format!("value '{}' names a producer that does not list it", v.name));
+                return Err(crate::error::invalid(format!(
+                    "value '{}' names a producer that does not list it",
+                    v.name
+                )));
             }
         }
         if self.order.len() != self.nodes.len() {
-            return Err("the order does not hold every node".to_owned());
+            return Err(crate::error::invalid("the order does not hold every node"));
         }
         for &n in &self.order {
             for v in self.node(n).inputs.iter().flatten() {
                 if let Some(p) = self.producer(*v)
                     && self.rank[p.0 as usize] >= self.rank[n.0 as usize]
                 {
-                    return Err(format!(
+                    return Err(crate::error::invalid(format!(
                         "node '{}' comes before its input '{}'",
                         self.node(n).name,
                         self.value(*v).name
-                    ));
+                    )));
                 }
             }
         }

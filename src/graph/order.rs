@@ -77,11 +77,6 @@ impl Dominance {
         Dominance { sources, idom }
     }
 
-    /// The signal sources, primary first.
-    pub fn sources(&self) -> &[ValueId] {
-        &self.sources
-    }
-
     /// The immediate dominator of `v` seen from its primary source: the fork
     /// of a merge whose output is `v`. `None` for a source itself and for
     /// static or unreached values.

@@ -13,11 +13,6 @@ pub fn int(attrs: &[AttributeProto], name: &str) -> Option<i64> {
     find(attrs, name).map(|a| a.i)
 }
 
-/// A float attribute.
-pub fn float(attrs: &[AttributeProto], name: &str) -> Option<f32> {
-    find(attrs, name).map(|a| a.f)
-}
-
 /// A list-of-integers attribute.
 pub fn ints<'a>(attrs: &'a [AttributeProto], name: &str) -> Option<&'a [i64]> {
     find(attrs, name).map(|a| a.ints.as_slice())

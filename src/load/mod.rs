@@ -117,15 +117,6 @@ pub fn decode(bytes: Bytes) -> Result<ModelProto> {
     Ok(model)
 }
 
-/// The version of the default ONNX operator set the model imports, if any.
-pub fn default_opset(model: &ModelProto) -> Option<i64> {
-    model
-        .opset_import
-        .iter()
-        .find(|o| o.domain.is_empty() || o.domain == "ai.onnx")
-        .map(|o| o.version)
-}
-
 /// Where the external data of one tensor lives, once checked.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct ExternalRef {

@@ -447,7 +447,7 @@ fn declared_rank(v: &crate::proto::ValueInfoProto) -> Option<usize> {
 }
 
 /// An integer attribute.
-pub fn int(name: &str, v: i64) -> AttributeProto {
+pub(crate) fn int(name: &str, v: i64) -> AttributeProto {
     AttributeProto {
         name: name.to_owned(),
         r#type: attribute_proto::AttributeType::Int as i32,
@@ -457,7 +457,7 @@ pub fn int(name: &str, v: i64) -> AttributeProto {
 }
 
 /// A float attribute.
-pub fn float(name: &str, v: f32) -> AttributeProto {
+pub(crate) fn float(name: &str, v: f32) -> AttributeProto {
     AttributeProto {
         name: name.to_owned(),
         r#type: attribute_proto::AttributeType::Float as i32,
@@ -467,7 +467,7 @@ pub fn float(name: &str, v: f32) -> AttributeProto {
 }
 
 /// An integer-list attribute.
-pub fn ints(name: &str, v: &[i64]) -> AttributeProto {
+pub(crate) fn ints(name: &str, v: &[i64]) -> AttributeProto {
     AttributeProto {
         name: name.to_owned(),
         r#type: attribute_proto::AttributeType::Ints as i32,
@@ -478,7 +478,7 @@ pub fn ints(name: &str, v: &[i64]) -> AttributeProto {
 
 /// A float-list attribute (rules pass float lists on as they are; tests build them).
 #[cfg(test)]
-pub fn floats(name: &str, v: &[f32]) -> AttributeProto {
+pub(crate) fn floats(name: &str, v: &[f32]) -> AttributeProto {
     AttributeProto {
         name: name.to_owned(),
         r#type: attribute_proto::AttributeType::Floats as i32,
@@ -488,7 +488,7 @@ pub fn floats(name: &str, v: &[f32]) -> AttributeProto {
 }
 
 /// A string attribute.
-pub fn string(name: &str, v: &str) -> AttributeProto {
+pub(crate) fn string(name: &str, v: &str) -> AttributeProto {
     AttributeProto {
         name: name.to_owned(),
         r#type: attribute_proto::AttributeType::String as i32,

@@ -63,11 +63,6 @@ impl LowerConfig {
     /// Nothing given: NCHWc models whose shapes fit both block sizes are
     /// read with this machine's ([`machine_nchwc_block`]).
     pub const STANDARD: LowerConfig = LowerConfig { nchwc_block: None };
-
-    /// [`LowerConfig::STANDARD`].
-    pub fn standard() -> LowerConfig {
-        LowerConfig::STANDARD
-    }
 }
 
 /// The NCHWc block size onnxruntime's MLAS picks on this machine: 16 where

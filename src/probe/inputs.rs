@@ -157,7 +157,7 @@ pub enum Values {
 
 /// How one input is fed.
 #[derive(Debug, Clone)]
-pub struct Fed {
+pub struct PlannedInput {
     /// ONNX name.
     pub name: String,
     /// ONNX element type.
@@ -177,28 +177,48 @@ enum Fill {
     Array(ArrayD<f64>),
 }
 
-impl Fed {
+impl PlannedInput {
     /// Whether `other` is fed the same values, each rounded to its own
     /// element type: the same source (distribution and scale, token range,
     /// constant or array) and, past the batch axis, the same shape; the
     /// element types agree, or both are float types (a float16 copy of a
     /// model gets the float32 stream rounded, to nearest even).
-    pub fn same_values(&self, other: &Fed) -> Result<(), String> {
+    pub fn same_values(&self, other: &PlannedInput) -> Result<(), Mismatch> {
         if self.dtype != other.dtype && !(is_float(self.dtype) && is_float(other.dtype)) {
-            return Err(format!(
-                "element type {} in A, {} in B",
-                crate::load::tensor::dtype_name(self.dtype),
-                crate::load::tensor::dtype_name(other.dtype)
-            ));
+            return Err(Mismatch::ElementType(self.dtype, other.dtype));
         }
-        let tail = |f: &Fed| f.pass_shape.iter().skip(1).copied().collect::<Vec<u64>>();
+        let tail = |f: &PlannedInput| f.pass_shape.iter().skip(1).copied().collect::<Vec<u64>>();
         if tail(self) != tail(other) {
-            return Err(format!("sample shape {:?} in A, {:?} in B", tail(self), tail(other)));
+            return Err(Mismatch::SampleShape(tail(self), tail(other)));
         }
         if self.source != other.source {
-            return Err(format!("values '{}' in A, '{}' in B", self.how, other.how));
+            return Err(Mismatch::Values(self.how.clone(), other.how.clone()));
         }
         Ok(())
+    }
+}
+
+/// How two planned inputs differ (A's side first).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Mismatch {
+    /// Element types that are not both float types.
+    ElementType(i32, i32),
+    /// Shapes past the batch axis.
+    SampleShape(Vec<u64>, Vec<u64>),
+    /// Value sources, described.
+    Values(String, String),
+}
+
+impl std::fmt::Display for Mismatch {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        use crate::load::tensor::dtype_name;
+        match self {
+            Mismatch::ElementType(a, b) => {
+                write!(f, "element type {} in A, {} in B", dtype_name(*a), dtype_name(*b))
+            }
+            Mismatch::SampleShape(a, b) => write!(f, "sample shape {a:?} in A, {b:?} in B"),
+            Mismatch::Values(a, b) => write!(f, "values '{a}' in A, '{b}' in B"),
+        }
     }
 }
 
@@ -228,9 +248,9 @@ impl NpyType {
 
 /// Everything about what is fed, pass by pass.
 #[derive(Debug, Clone)]
-pub struct Feeding {
+pub struct InputPlan {
     /// Inputs in graph order.
-    pub inputs: Vec<Fed>,
+    pub inputs: Vec<PlannedInput>,
     /// Samples per pass.
     pub pass_batch: usize,
     /// Number of passes.
@@ -244,7 +264,7 @@ pub struct Feeding {
 }
 
 /// Decides shapes, batching and values of every input.
-pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
+pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<InputPlan> {
     if config.samples == 0 {
         return Err(usage("--batch must be at least 1"));
     }
@@ -343,9 +363,9 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<Feeding> {
                 config.max_input_elements
             )));
         }
-        inputs.push(Fed { name: s.name.clone(), dtype: s.dtype, pass_shape, how, source });
+        inputs.push(PlannedInput { name: s.name.clone(), dtype: s.dtype, pass_shape, how, source });
     }
-    Ok(Feeding {
+    Ok(InputPlan {
         inputs,
         pass_batch,
         passes,
@@ -392,15 +412,15 @@ fn resolve_shape(s: &InputSpec, pass_batch: usize, config: &InputConfig) -> Resu
 }
 
 /// The values of every input for pass `pass` (0-based).
-pub fn values(feeding: &Feeding, pass: usize) -> Vec<Values> {
-    feeding
+pub fn values(input_plan: &InputPlan, pass: usize) -> Vec<Values> {
+    input_plan
         .inputs
         .iter()
         .enumerate()
         .map(|(index, fed)| {
             let n: u64 = fed.pass_shape.iter().product();
             let n = n as usize;
-            let per_sample = n.checked_div(feeding.pass_batch).unwrap_or(n);
+            let per_sample = n.checked_div(input_plan.pass_batch).unwrap_or(n);
             let as_f64: Vec<f64> = match &fed.source {
                 Fill::Constant(v) => vec![*v; n],
                 Fill::Array(a) => {
@@ -415,11 +435,11 @@ pub fn values(feeding: &Feeding, pass: usize) -> Vec<Values> {
                     chunk
                 }
                 Fill::Random(..) | Fill::Tokens(_) => {
-                    let mut rng = ChaCha8Rng::seed_from_u64(feeding.seed);
+                    let mut rng = ChaCha8Rng::seed_from_u64(input_plan.seed);
                     rng.set_stream(index as u64);
                     // Skip the samples of earlier passes, draw this pass's.
                     let mut out = Vec::with_capacity(n);
-                    for i in 0..(pass * per_sample * feeding.pass_batch + n) {
+                    for i in 0..(pass * per_sample * input_plan.pass_batch + n) {
                         let v = match &fed.source {
                             Fill::Random(Dist::Normal, s) => {
                                 let z: f32 = rng.sample(StandardNormal);
@@ -431,7 +451,7 @@ pub fn values(feeding: &Feeding, pass: usize) -> Vec<Values> {
                             Fill::Tokens(v) => rng.random_range(0..*v) as f64,
                             _ => unreachable!("only random fills are drawn"),
                         };
-                        if i >= pass * per_sample * feeding.pass_batch {
+                        if i >= pass * per_sample * input_plan.pass_batch {
                             out.push(v);
                         }
                     }
@@ -471,17 +491,17 @@ const DIRECTION_STREAMS: u64 = 1 << 32;
 /// default) is about two units in the last place of float16 (2^-11 relative
 /// per rounding) and below one of bfloat16 (2^-8), so the change would be
 /// mostly rounding.
-pub fn perturbed(feeding: &Feeding, pass: usize, values: &[Values], step: f32) -> Vec<Values> {
+pub fn perturbed(input_plan: &InputPlan, pass: usize, values: &[Values], step: f32) -> Vec<Values> {
     values
         .iter()
         .enumerate()
         .map(|(index, v)| {
             let Values::F32(x) = v else { return v.clone() };
             let n = x.len();
-            let per_sample = n.checked_div(feeding.pass_batch).filter(|&p| p > 0).unwrap_or(n);
-            let mut rng = ChaCha8Rng::seed_from_u64(feeding.seed);
+            let per_sample = n.checked_div(input_plan.pass_batch).filter(|&p| p > 0).unwrap_or(n);
+            let mut rng = ChaCha8Rng::seed_from_u64(input_plan.seed);
             rng.set_stream(DIRECTION_STREAMS + index as u64);
-            let skip = pass * per_sample * feeding.pass_batch;
+            let skip = pass * per_sample * input_plan.pass_batch;
             for _ in 0..skip {
                 let _: f32 = rng.sample(StandardNormal);
             }

@@ -15,7 +15,7 @@
 //! Half precision: float16 tensors are measured where they lie, each element
 //! widened to `f32` as the kernels read it (`stats::Value`), with `f64`
 //! accumulators; no float32 copy is made. Inputs are fed in the element type
-//! tract parsed for them, so the same feeding runs a float16 model natively
+//! tract parsed for them, so the same input plan runs a float16 model natively
 //! or its float32 twin (`lower::precision`).
 
 pub mod inputs;
@@ -29,7 +29,7 @@ use tract_onnx::tract_hir::infer::Factoid;
 
 use crate::error::{Error, ErrorKind, Result};
 use crate::stats;
-use inputs::{Feeding, Values};
+use inputs::{InputPlan, Values};
 
 /// The inference engine and its version, as reports name it.
 pub const ENGINE: &str = "tract-onnx 0.23.9";
@@ -124,14 +124,14 @@ enum Role {
     Output,
 }
 
-/// Runs the model over every pass of `feeding` and measures every watch.
+/// Runs the model over every pass of `input_plan` and measures every watch.
 pub fn run(
     source: ModelSource<'_>,
     watches: &[Watch],
-    feeding: &Feeding,
+    input_plan: &InputPlan,
     progress: &dyn Progress,
 ) -> Result<ProbeResult> {
-    match catch_unwind(AssertUnwindSafe(|| run_inner(source, watches, feeding, progress))) {
+    match catch_unwind(AssertUnwindSafe(|| run_inner(source, watches, input_plan, progress))) {
         Ok(r) => r,
         Err(panic) => {
             let what = panic
@@ -155,18 +155,18 @@ fn tract_err(what: &str, e: &anyhow::Error) -> Error {
 fn run_inner(
     source: ModelSource<'_>,
     watches: &[Watch],
-    feeding: &Feeding,
+    input_plan: &InputPlan,
     progress: &dyn Progress,
 ) -> Result<ProbeResult> {
-    let mut prepared = prepare(source, watches, feeding, &[], progress)?;
-    progress.step("running", feeding.passes as u64);
+    let mut prepared = prepare(source, watches, input_plan, &[], progress)?;
+    progress.step("running", input_plan.passes as u64);
     let mut acc: Vec<BlockSamples> = vec![BlockSamples::default(); watches.len()];
     let mut outputs: Vec<Vec<f32>> = vec![Vec::new(); prepared.n_outputs];
     let mut output_shapes = Vec::new();
-    for pass in 0..feeding.passes {
-        let values = inputs::values(feeding, pass);
-        let tensors = prepared.tensors(feeding, &values, &[])?;
-        let result = prepared.measure(watches, feeding, tensors, &mut acc, None)?;
+    for pass in 0..input_plan.passes {
+        let values = inputs::values(input_plan, pass);
+        let tensors = prepared.tensors(input_plan, &values, &[])?;
+        let result = prepared.measure(watches, input_plan, tensors, &mut acc, None)?;
         output_shapes = collect_outputs(&result, &mut outputs);
         progress.advance();
     }
@@ -177,8 +177,8 @@ fn run_inner(
 /// Where the value of one tract input comes from.
 #[derive(Debug, Clone, Copy)]
 enum InputSlot {
-    /// Input `i` of the feeding, as a tensor of this type.
-    Fed(usize, DatumType),
+    /// Input `i` of the input plan, as a tensor of this type.
+    PlannedInput(usize, DatumType),
     /// Gate `k` of the gate list.
     Gate(usize),
 }
@@ -198,7 +198,7 @@ struct Prepared {
 fn prepare(
     source: ModelSource<'_>,
     watches: &[Watch],
-    feeding: &Feeding,
+    input_plan: &InputPlan,
     gates: &[String],
     progress: &dyn Progress,
 ) -> Result<Prepared> {
@@ -252,25 +252,25 @@ fn prepare(
             order.push(InputSlot::Gate(k));
             continue;
         }
-        let fed = feeding.inputs.iter().position(|f| f.name == name).ok_or_else(|| {
+        let fed = input_plan.inputs.iter().position(|f| f.name == name).ok_or_else(|| {
             Error::new(
                 ErrorKind::Probe,
                 format!("tract sees an input '{name}' the graph does not declare"),
             )
         })?;
         let shape: Vec<usize> =
-            feeding.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
+            input_plan.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
         // A half-precision input is fed as the model tract reads declares it:
         // float16 natively, float32 in a float32 twin.
         let parsed_dt = model.input_fact(i).ok().and_then(|f| f.datum_type.concretize());
-        let dt = match (datum_type(&feeding.inputs[fed]), parsed_dt) {
+        let dt = match (datum_type(&input_plan.inputs[fed]), parsed_dt) {
             (DatumType::F16, Some(DatumType::F32)) => DatumType::F32,
             (dt, _) => dt,
         };
         model
             .set_input_fact(i, InferenceFact::dt_shape(dt, shape))
             .map_err(|e| tract_err(&format!("tract rejects the shape of input '{name}'"), &e))?;
-        order.push(InputSlot::Fed(fed, dt));
+        order.push(InputSlot::PlannedInput(fed, dt));
     }
 
     // Protect watched tensors as extra outputs.
@@ -345,13 +345,18 @@ fn prepare(
 impl Prepared {
     /// The tensors of one pass, in tract's input order, gates set to `gates`
     /// (missing gates are 1).
-    fn tensors(&self, feeding: &Feeding, values: &[Values], gates: &[f32]) -> Result<TVec<TValue>> {
+    fn tensors(
+        &self,
+        input_plan: &InputPlan,
+        values: &[Values],
+        gates: &[f32],
+    ) -> Result<TVec<TValue>> {
         let mut tensors: TVec<TValue> = tvec![];
         for slot in &self.order {
             let t = match *slot {
-                InputSlot::Fed(fed, dt) => {
+                InputSlot::PlannedInput(fed, dt) => {
                     let shape: Vec<usize> =
-                        feeding.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
+                        input_plan.inputs[fed].pass_shape.iter().map(|&d| d as usize).collect();
                     to_tensor(&values[fed], &shape, dt).map_err(|e| tract_err("tract", &e))?
                 }
                 InputSlot::Gate(k) => tensor0(gates.get(k).copied().unwrap_or(1.0)),
@@ -366,13 +371,13 @@ impl Prepared {
     fn measure(
         &mut self,
         watches: &[Watch],
-        feeding: &Feeding,
+        input_plan: &InputPlan,
         tensors: TVec<TValue>,
         acc: &mut [BlockSamples],
         mut hold: Option<&mut Vec<Held>>,
     ) -> Result<TVec<TValue>> {
         let mut pending = Pending::new(watches);
-        let batch = feeding.pass_batch;
+        let batch = input_plan.pass_batch;
         for (i, roles) in &self.source_roles {
             for &(b, role) in roles {
                 observe(
@@ -431,12 +436,12 @@ impl Prepared {
     fn compare(
         &mut self,
         watches: &[Watch],
-        feeding: &Feeding,
+        input_plan: &InputPlan,
         tensors: TVec<TValue>,
         held: &mut [Held],
         acc: &mut [GainSamples],
     ) -> Result<()> {
-        let batch = feeding.pass_batch;
+        let batch = input_plan.pass_batch;
         let mut now: Vec<Held> = watches.iter().map(Held::new).collect();
         for (i, roles) in &self.source_roles {
             for &(b, role) in roles {
@@ -647,13 +652,13 @@ pub struct GatedResult {
 pub fn run_gated(
     source: ModelSource<'_>,
     watches: &[Watch],
-    feeding: &Feeding,
+    input_plan: &InputPlan,
     plan: &GatedPlan,
     sink: &mut OutputSink<'_>,
     progress: &dyn Progress,
 ) -> Result<GatedResult> {
     let inner =
-        AssertUnwindSafe(|| run_gated_inner(source, watches, feeding, plan, sink, progress));
+        AssertUnwindSafe(|| run_gated_inner(source, watches, input_plan, plan, sink, progress));
     match catch_unwind(inner) {
         Ok(r) => r,
         Err(panic) => {
@@ -673,14 +678,14 @@ pub fn run_gated(
 fn run_gated_inner(
     source: ModelSource<'_>,
     watches: &[Watch],
-    feeding: &Feeding,
+    input_plan: &InputPlan,
     plan: &GatedPlan,
     sink: &mut OutputSink<'_>,
     progress: &dyn Progress,
 ) -> Result<GatedResult> {
-    let mut prepared = prepare(source, watches, feeding, &plan.gates, progress)?;
+    let mut prepared = prepare(source, watches, input_plan, &plan.gates, progress)?;
     let per_pass = if plan.gain_step.is_some() { 2 } else { 1 };
-    progress.step("running", (feeding.passes * per_pass) as u64);
+    progress.step("running", (input_plan.passes * per_pass) as u64);
     let mut acc: Vec<BlockSamples> = vec![BlockSamples::default(); watches.len()];
     let mut outputs: Vec<Vec<f32>> = vec![Vec::new(); prepared.n_outputs];
     let mut output_shapes = Vec::new();
@@ -688,33 +693,33 @@ fn run_gated_inner(
         plan.gain_step.map(|_| vec![GainSamples::default(); watches.len()]);
     let mut input_change = Vec::new();
     let mut forward_passes = 0;
-    for pass in 0..feeding.passes {
-        let values = inputs::values(feeding, pass);
-        let tensors = prepared.tensors(feeding, &values, &[])?;
+    for pass in 0..input_plan.passes {
+        let values = inputs::values(input_plan, pass);
+        let tensors = prepared.tensors(input_plan, &values, &[])?;
         let mut held: Option<Vec<Held>> =
             plan.gain_step.map(|_| watches.iter().map(Held::new).collect());
-        let result = prepared.measure(watches, feeding, tensors, &mut acc, held.as_mut())?;
+        let result = prepared.measure(watches, input_plan, tensors, &mut acc, held.as_mut())?;
         forward_passes += 1;
         output_shapes = collect_outputs(&result, &mut outputs);
         drop(result);
         progress.advance();
         if let (Some(step), Some(held), Some(gain)) = (plan.gain_step, held.as_mut(), gain.as_mut())
         {
-            let moved = inputs::perturbed(feeding, pass, &values, step);
-            input_changes(&values, &moved, feeding.pass_batch, &mut input_change);
-            let tensors = prepared.tensors(feeding, &moved, &[])?;
-            prepared.compare(watches, feeding, tensors, held, gain)?;
+            let moved = inputs::perturbed(input_plan, pass, &values, step);
+            input_changes(&values, &moved, input_plan.pass_batch, &mut input_change);
+            let tensors = prepared.tensors(input_plan, &moved, &[])?;
+            prepared.compare(watches, input_plan, tensors, held, gain)?;
             forward_passes += 1;
             progress.advance();
         }
     }
     if !plan.settings.is_empty() {
-        progress.step("knocking out", (plan.settings.len() * feeding.passes) as u64);
+        progress.step("knocking out", (plan.settings.len() * input_plan.passes) as u64);
         for (i, setting) in plan.settings.iter().enumerate() {
             let mut outs: Vec<Vec<f32>> = vec![Vec::new(); prepared.n_outputs];
-            for pass in 0..feeding.passes {
-                let values = inputs::values(feeding, pass);
-                let tensors = prepared.tensors(feeding, &values, setting)?;
+            for pass in 0..input_plan.passes {
+                let values = inputs::values(input_plan, pass);
+                let tensors = prepared.tensors(input_plan, &values, setting)?;
                 let result = prepared.plain(tensors)?;
                 forward_passes += 1;
                 collect_outputs(&result, &mut outs);
@@ -754,7 +759,7 @@ impl Pending {
     }
 }
 
-fn datum_type(fed: &inputs::Fed) -> DatumType {
+fn datum_type(fed: &inputs::PlannedInput) -> DatumType {
     use crate::proto::tensor_proto::DataType;
     match DataType::try_from(fed.dtype) {
         Ok(DataType::Int64) => i64::datum_type(),

@@ -10,40 +10,40 @@ use crate::vocab::FindingCode;
 
 /// The look of one kind of mark.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub struct Mark {
+pub(crate) struct Mark {
     /// CSS class and `data-kind` value: `ok`, `dead`, `dominant`, …
-    pub kind: &'static str,
+    pub(crate) kind: &'static str,
     /// Fill colour (Okabe–Ito).
-    pub fill: &'static str,
+    pub(crate) fill: &'static str,
     /// SVG path of the shape, centred on (0, 0), about 14 px across.
-    pub path: &'static str,
+    pub(crate) path: &'static str,
     /// Words for the legend.
-    pub legend: &'static str,
+    pub(crate) legend: &'static str,
 }
 
 /// Okabe–Ito blue: blocks without findings.
-pub const OK: Mark = Mark {
+pub(crate) const OK: Mark = Mark {
     kind: "ok",
     fill: "#0072B2",
     path: "M-4.5,0a4.5,4.5 0 1,0 9,0a4.5,4.5 0 1,0 -9,0Z",
     legend: "no finding (circle)",
 };
 /// Okabe–Ito vermillion, a downward triangle: the branch contributes nothing.
-pub const DEAD: Mark = Mark {
+pub(crate) const DEAD: Mark = Mark {
     kind: "dead",
     fill: "#D55E00",
     path: "M-7,-5L7,-5L0,7Z",
     legend: "dead branch: dead or static-dead (downward triangle)",
 };
 /// Okabe–Ito orange, an upward triangle: the branch drowns the shortcut.
-pub const DOMINANT: Mark = Mark {
+pub(crate) const DOMINANT: Mark = Mark {
     kind: "dominant",
     fill: "#E69F00",
     path: "M-7,5L7,5L0,-7Z",
     legend: "dominant branch (upward triangle)",
 };
 /// Okabe–Ito bluish green, a diamond: many dead channels.
-pub const DEAD_CHANNELS: Mark = Mark {
+pub(crate) const DEAD_CHANNELS: Mark = Mark {
     kind: "dead-channels",
     fill: "#009E73",
     path: "M0,-7L7,0L0,7L-7,0Z",
@@ -51,14 +51,14 @@ pub const DEAD_CHANNELS: Mark = Mark {
 };
 /// Okabe–Ito sky blue, a square: learned layers before the block that no
 /// shortcut spans.
-pub const LOST_SHORTCUT: Mark = Mark {
+pub(crate) const LOST_SHORTCUT: Mark = Mark {
     kind: "lost-shortcut",
     fill: "#56B4E9",
     path: "M-6,-6L6,-6L6,6L-6,6Z",
     legend: "lost shortcut before the block (square)",
 };
 /// Black, a cross: NaN or infinite values.
-pub const NON_FINITE: Mark = Mark {
+pub(crate) const NON_FINITE: Mark = Mark {
     kind: "non-finite",
     fill: "#000000",
     path: "M-7,-4L-4,-7L0,-3L4,-7L7,-4L3,0L7,4L4,7L0,3L-4,7L-7,4L-3,0Z",
@@ -66,14 +66,14 @@ pub const NON_FINITE: Mark = Mark {
 };
 /// Okabe–Ito yellow, a hexagon: knocking the branch out barely changes the
 /// outputs.
-pub const LOW_IMPACT: Mark = Mark {
+pub(crate) const LOW_IMPACT: Mark = Mark {
     kind: "low-impact",
     fill: "#F0E442",
     path: "M-7,0L-3.5,-6L3.5,-6L7,0L3.5,6L-3.5,6Z",
     legend: "low impact when knocked out (hexagon)",
 };
 /// Hollow grey: a block that was not measured.
-pub const UNMEASURED: Mark = Mark {
+pub(crate) const UNMEASURED: Mark = Mark {
     kind: "unmeasured",
     fill: "none",
     path: "M-4,0a4,4 0 1,0 8,0a4,4 0 1,0 -8,0Z",
@@ -82,14 +82,14 @@ pub const UNMEASURED: Mark = Mark {
 
 /// Okabe–Ito reddish purple, a chevron up: the signal (or a small input
 /// change) grows too much across depth.
-pub const EXPLODING: Mark = Mark {
+pub(crate) const EXPLODING: Mark = Mark {
     kind: "exploding-signal",
     fill: "#CC79A7",
     path: "M-7,1L0,-7L7,1L7,6L0,-2L-7,6Z",
     legend: "signal or input change grows across depth (chevron up)",
 };
 /// Okabe–Ito reddish purple, a chevron down: the signal shrinks too much.
-pub const VANISHING: Mark = Mark {
+pub(crate) const VANISHING: Mark = Mark {
     kind: "vanishing-signal",
     fill: "#CC79A7",
     path: "M-7,-1L0,7L7,-1L7,-6L0,2L-7,-6Z",
@@ -97,7 +97,7 @@ pub const VANISHING: Mark = Mark {
 };
 
 /// Every mark of a block, in the order of the legend.
-pub const ALL: [Mark; 10] = [
+pub(crate) const ALL: [Mark; 10] = [
     OK,
     DEAD,
     DOMINANT,
@@ -114,7 +114,7 @@ pub const ALL: [Mark; 10] = [
 /// (non-finite, then a dead branch, dominant, a growing or shrinking input
 /// change, dead channels, lost shortcut, low impact). The signal's growth
 /// across depth is a finding of the whole model and marks no block.
-pub fn for_codes(codes: impl IntoIterator<Item = FindingCode>) -> Mark {
+pub(crate) fn for_codes(codes: impl IntoIterator<Item = FindingCode>) -> Mark {
     let mut best: Option<(u8, Mark)> = None;
     for code in codes {
         let candidate = match code {

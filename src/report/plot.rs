@@ -27,103 +27,103 @@ const LINE: RGBColor = RGBColor(0x9A, 0x9A, 0x9A);
 
 /// One block on the x axis.
 #[derive(Debug, Clone)]
-pub struct Point {
+pub(crate) struct Point {
     /// Block id (its x position).
-    pub block: usize,
+    pub(crate) block: usize,
     /// The value, or `None` when the block was not measured.
-    pub value: Option<f64>,
+    pub(crate) value: Option<f64>,
     /// How the block's mark looks.
-    pub mark: Mark,
+    pub(crate) mark: Mark,
     /// Text label beside a flagged mark (empty for none).
-    pub label: String,
+    pub(crate) label: String,
     /// Tooltip text.
-    pub title: String,
+    pub(crate) title: String,
 }
 
 /// A horizontal threshold line with the zone beyond it tinted.
 #[derive(Debug, Clone)]
-pub struct Threshold {
+pub(crate) struct Threshold {
     /// Where the line is.
-    pub value: f64,
+    pub(crate) value: f64,
     /// Words drawn beside the line.
-    pub label: String,
+    pub(crate) label: String,
     /// Colour of the line and the tint.
-    pub colour: RGBColor,
+    pub(crate) colour: RGBColor,
     /// Tint the zone below the line (true) or above it (false).
-    pub below: bool,
+    pub(crate) below: bool,
 }
 
 /// A run of consecutive blocks of one stage.
 #[derive(Debug, Clone)]
-pub struct StageSpan {
+pub(crate) struct StageSpan {
     /// First and last block id.
-    pub first: usize,
+    pub(crate) first: usize,
     /// Last block id.
-    pub last: usize,
+    pub(crate) last: usize,
     /// Our own label (`stage 2`); never a name from the model.
-    pub label: String,
+    pub(crate) label: String,
 }
 
 /// What to draw.
 #[derive(Debug, Clone)]
-pub struct PlotSpec {
+pub(crate) struct PlotSpec {
     /// `ratio`, `rms`: the element id suffix.
-    pub id: &'static str,
+    pub(crate) id: &'static str,
     /// The y axis description.
-    pub y_desc: &'static str,
+    pub(crate) y_desc: &'static str,
     /// One point per block, in block order.
-    pub points: Vec<Point>,
+    pub(crate) points: Vec<Point>,
     /// Threshold lines.
-    pub thresholds: Vec<Threshold>,
+    pub(crate) thresholds: Vec<Threshold>,
     /// Stage runs, in order.
-    pub stages: Vec<StageSpan>,
+    pub(crate) stages: Vec<StageSpan>,
 }
 
 /// A drawn plot: plotters' SVG of the frame and the marks' positions.
 #[derive(Debug, Clone)]
-pub struct Plot {
+pub(crate) struct Plot {
     /// `ratio` or `rms`.
-    pub id: &'static str,
+    pub(crate) id: &'static str,
     /// Width in SVG units.
-    pub width: u32,
+    pub(crate) width: u32,
     /// Height in SVG units.
-    pub height: u32,
+    pub(crate) height: u32,
     /// The frame as a complete `<svg>` element written by plotters.
-    pub frame: String,
+    pub(crate) frame: String,
     /// One mark per block.
-    pub marks: Vec<PlacedMark>,
+    pub(crate) marks: Vec<PlacedMark>,
 }
 
 /// A mark at its place in the plot.
 #[derive(Debug, Clone)]
-pub struct PlacedMark {
+pub(crate) struct PlacedMark {
     /// Block id.
-    pub block: usize,
+    pub(crate) block: usize,
     /// Its look.
-    pub mark: Mark,
+    pub(crate) mark: Mark,
     /// Position in SVG units.
-    pub x: i32,
+    pub(crate) x: i32,
     /// Position in SVG units.
-    pub y: i32,
+    pub(crate) y: i32,
     /// Whether the value was zero or missing and is drawn on the axis floor.
-    pub on_floor: bool,
+    pub(crate) on_floor: bool,
     /// Tooltip.
-    pub title: String,
+    pub(crate) title: String,
     /// Label beside the mark, if flagged.
-    pub label: Option<Label>,
+    pub(crate) label: Option<Label>,
 }
 
 /// A text label in SVG units.
 #[derive(Debug, Clone)]
-pub struct Label {
+pub(crate) struct Label {
     /// The words.
-    pub text: String,
+    pub(crate) text: String,
     /// Anchor point.
-    pub x: i32,
+    pub(crate) x: i32,
     /// Anchor point.
-    pub y: i32,
+    pub(crate) y: i32,
     /// `start` or `end`.
-    pub anchor: &'static str,
+    pub(crate) anchor: &'static str,
 }
 
 fn drawing_error<E: std::error::Error + Send + Sync>(e: DrawingAreaErrorKind<E>) -> io::Error {
@@ -169,7 +169,7 @@ fn decade_label(v: f64) -> String {
 }
 
 /// Draws one profile.
-pub fn draw(spec: &PlotSpec) -> io::Result<Plot> {
+pub(crate) fn draw(spec: &PlotSpec) -> io::Result<Plot> {
     let n = spec.points.len().max(1);
     let (lo, hi) = y_range(spec);
     let mut frame = String::new();

@@ -49,31 +49,6 @@ pub fn sum_sq<T: Value>(x: &[T]) -> f64 {
     total
 }
 
-/// Dot product of two slices of equal length, in `f64`.
-pub fn dot(a: &[f32], b: &[f32]) -> f64 {
-    debug_assert_eq!(a.len(), b.len());
-    let mut total = 0f64;
-    for (ca, cb) in a.chunks(CHUNK).zip(b.chunks(CHUNK)) {
-        let mut lanes = [0f32; 8];
-        let mut ia = ca.chunks_exact(8);
-        let mut ib = cb.chunks_exact(8);
-        for (x, y) in (&mut ia).zip(&mut ib) {
-            for i in 0..8 {
-                lanes[i] += x[i] * y[i];
-            }
-        }
-        let mut s: f64 = lanes.iter().map(|&v| v as f64).sum();
-        s += ia
-            .remainder()
-            .iter()
-            .zip(ib.remainder())
-            .map(|(&x, &y)| x as f64 * y as f64)
-            .sum::<f64>();
-        total += s;
-    }
-    total
-}
-
 /// Sums of squares of `a` and `b` and their dot product, in one pass.
 pub fn sums3<A: Value, B: Value>(a: &[A], b: &[B]) -> (f64, f64, f64) {
     debug_assert_eq!(a.len(), b.len());
@@ -191,18 +166,6 @@ pub fn rms_diff(a: &[f32], b: &[f32]) -> f64 {
     (ss / n as f64).sqrt()
 }
 
-/// Cosine similarity; `None` when either vector is zero or the lengths differ.
-pub fn cosine(a: &[f32], b: &[f32]) -> Option<f64> {
-    if a.len() != b.len() {
-        return None;
-    }
-    let (na, nb) = (sum_sq(a), sum_sq(b));
-    if na == 0.0 || nb == 0.0 {
-        return None;
-    }
-    Some((dot(a, b) / (na.sqrt() * nb.sqrt())).clamp(-1.0, 1.0))
-}
-
 /// Number of NaN and infinite values.
 pub fn non_finite<T: Value>(x: &[T]) -> (u64, u64) {
     let mut nan = 0;
@@ -215,27 +178,6 @@ pub fn non_finite<T: Value>(x: &[T]) -> (u64, u64) {
         }
     }
     (nan, inf)
-}
-
-/// Fraction of values that are not positive (what a ReLU sets to zero).
-pub fn fraction_not_positive(x: &[f32]) -> f64 {
-    if x.is_empty() {
-        return 0.0;
-    }
-    x.iter().filter(|&&v| v <= 0.0).count() as f64 / x.len() as f64
-}
-
-/// Sum of squares per channel of one sample laid out as `[outer, channels,
-/// inner]` in row-major order (`outer` = 1 for `[C, H, W]` with the channel
-/// first; `inner` = 1 for `[T, C]` with the channel last).
-pub fn channel_sum_sq(x: &[f32], channels: usize, inner: usize, out: &mut [f64]) {
-    debug_assert_eq!(out.len(), channels);
-    if channels == 0 || inner == 0 {
-        return;
-    }
-    for (i, block) in x.chunks(inner).enumerate() {
-        out[i % channels] += sum_sq(block);
-    }
 }
 
 /// Mean, standard deviation, minimum and maximum of per-sample values.
@@ -382,12 +324,7 @@ mod tests {
         let x = [3.0f32, 4.0];
         assert_eq!(sum_sq(&x), 25.0);
         assert!((rms(&x) - (12.5f64).sqrt()).abs() < 1e-12);
-        assert_eq!(dot(&[1.0, 2.0, 3.0], &[4.0, 5.0, 6.0]), 32.0);
-        assert_eq!(cosine(&[1.0, 0.0], &[0.0, 1.0]), Some(0.0));
-        assert!((cosine(&[1.0, 2.0], &[2.0, 4.0]).unwrap() - 1.0).abs() < 1e-12);
-        assert_eq!(cosine(&[0.0, 0.0], &[1.0, 1.0]), None);
         assert_eq!(non_finite(&[1.0, f32::NAN, f32::INFINITY, -f32::INFINITY]), (1, 2));
-        assert_eq!(fraction_not_positive(&[-1.0, 0.0, 1.0, 2.0]), 0.5);
     }
 
     #[test]
@@ -397,7 +334,7 @@ mod tests {
         assert!((sum_sq(&x) - plain).abs() / plain < 1e-6);
         let y: Vec<f32> = x.iter().rev().copied().collect();
         let plain_dot: f64 = x.iter().zip(&y).map(|(&a, &b)| a as f64 * b as f64).sum();
-        assert!((dot(&x, &y) - plain_dot).abs() / plain_dot.abs() < 1e-5);
+        assert!((sums3(&x, &y).2 - plain_dot).abs() / plain_dot.abs() < 1e-5);
     }
 
     #[test]
@@ -407,7 +344,8 @@ mod tests {
         let (sa, sb, sab) = sums3(&a, &b);
         assert!((sa - sum_sq(&a)).abs() < 1e-9 * sa);
         assert!((sb - sum_sq(&b)).abs() < 1e-9 * sb);
-        assert!((sab - dot(&a, &b)).abs() < 1e-6);
+        let dot: f64 = a.iter().zip(&b).map(|(&x, &y)| x as f64 * y as f64).sum();
+        assert!((sab - dot).abs() < 1e-6);
         // [C=4, inner=250] and [T=250, C=4] give the same totals as the flat sums.
         for inner in [250, 1] {
             let (mut ca, mut cb) = (vec![0.0; 4], vec![0.0; 4]);
@@ -429,12 +367,12 @@ mod tests {
     #[test]
     fn channels_first_and_last() {
         // [C=2, H*W=3]: channel 0 = 1,1,1; channel 1 = 2,2,2.
-        let mut out = [0.0; 2];
-        channel_sum_sq(&[1.0, 1.0, 1.0, 2.0, 2.0, 2.0], 2, 3, &mut out);
+        let (mut out, mut zero) = (vec![0.0; 2], vec![0.0; 2]);
+        pair_sums(&[1.0, 1.0, 1.0, 2.0, 2.0, 2.0], &[0.0; 6], 3, &mut out, &mut zero);
         assert_eq!(out, [3.0, 12.0]);
         // [T=3, C=2] channels last: inner = 1.
-        let mut out = [0.0; 2];
-        channel_sum_sq(&[1.0, 2.0, 1.0, 2.0, 1.0, 2.0], 2, 1, &mut out);
+        let (mut out, mut zero) = (vec![0.0; 2], vec![0.0; 2]);
+        pair_sums(&[1.0, 2.0, 1.0, 2.0, 1.0, 2.0], &[0.0; 6], 1, &mut out, &mut zero);
         assert_eq!(out, [3.0, 12.0]);
     }
 

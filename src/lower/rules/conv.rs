@@ -1037,7 +1037,7 @@ mod tests {
     }
 
     fn run(m: ModelProto) -> Result<Lowered> {
-        lower(m, &ExternalData::none(), &crate::lower::LowerConfig::standard())
+        lower(m, &ExternalData::none(), &crate::lower::LowerConfig::STANDARD)
     }
 
     fn ops(l: &Lowered) -> Vec<&str> {

@@ -1235,7 +1235,7 @@ mod tests {
                 }),
                 ..Default::default()
             };
-            lower(model, &ExternalData::none(), &crate::lower::LowerConfig::standard())
+            lower(model, &ExternalData::none(), &crate::lower::LowerConfig::STANDARD)
         }
     }
 

@@ -864,7 +864,7 @@ mod tests {
         lower(
             model(opset, vec![node], inits, inputs),
             &ExternalData::none(),
-            &crate::lower::LowerConfig::standard(),
+            &crate::lower::LowerConfig::STANDARD,
         )
     }
 
@@ -1164,7 +1164,7 @@ mod tests {
         inits.push(axes);
         let m = model(13, vec![cast, sum, n.clone()], inits, vec![value("raw", 7, 2)]);
         let lengths =
-            lower(m, &ExternalData::none(), &crate::lower::LowerConfig::standard()).unwrap();
+            lower(m, &ExternalData::none(), &crate::lower::LowerConfig::STANDARD).unwrap();
         assert!(ops(&lengths).contains(&"Less") && ops(&lengths).contains(&"Range"));
         assert!(err(run(13, n, attention_inits())).contains("no known rank"));
     }
