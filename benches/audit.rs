@@ -36,7 +36,7 @@ use shunt::load::ExternalData;
 use shunt::probe::Progress;
 use shunt::probe::inputs::{self, InputConfig, Values};
 use shunt::scan::{self, ScanConfig};
-use shunt::testkit::zoo::{self, ImageSpec, ResNetConfig};
+use shunt_testkit::zoo::{self, ImageSpec, ResNetConfig};
 use tract_onnx::prelude::*;
 use tract_onnx::tract_core::plan::{SimpleState, eval};
 

@@ -26,7 +26,7 @@ use prost::Message;
 use serde_json::{Value, json};
 use shunt::audit::{self, AuditConfig, InfluenceConfig};
 use shunt::probe::Progress;
-use shunt::testkit::zoo::{self, ImageSpec, ResNetConfig};
+use shunt_testkit::zoo::{self, ImageSpec, ResNetConfig};
 use tract_onnx::prelude::*;
 
 const BATCH: usize = 8;

@@ -25,8 +25,8 @@ use shunt::proto::ModelProto;
 use shunt::proto::tensor_proto::DataType;
 use shunt::residual;
 use shunt::scan::{self, ScanConfig};
-use shunt::testkit::large::{self, DecoderConfig};
-use shunt::testkit::zoo::{self, ImageSpec, PreActConfig, ResNetConfig};
+use shunt_testkit::large::{self, DecoderConfig};
+use shunt_testkit::zoo::{self, ImageSpec, PreActConfig, ResNetConfig};
 
 const RUNS: usize = 10;
 

@@ -17,7 +17,7 @@ use prost::Message;
 use shunt::load::ExternalData;
 use shunt::probe::inputs::{self, InputConfig, Values};
 use shunt::scan::{self, ScanConfig};
-use shunt::testkit::zoo::{self, ImageSpec, ResNetConfig};
+use shunt_testkit::zoo::{self, ImageSpec, ResNetConfig};
 use tract_onnx::prelude::*;
 
 fn write(dir: &Path) {

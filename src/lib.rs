@@ -32,7 +32,5 @@ pub mod residual;
 pub mod scan;
 pub mod stats;
 pub mod structure;
-#[doc(hidden)]
-pub mod testkit;
 
 pub use error::{Diagnostic, Error, ErrorKind, Result, Severity};

@@ -4,7 +4,7 @@
 use shunt::audit::{self, AuditConfig};
 use shunt::probe::Silent;
 use shunt::report::Report;
-use shunt::testkit::builder::{Dim, Form, Init, ModelBuilder};
+use shunt_testkit::builder::{Dim, Form, Init, ModelBuilder};
 
 use crate::util::{fixture, shunt, tempdir};
 

@@ -4,9 +4,9 @@
 
 use shunt::report::Report;
 use shunt::scan::{self, ScanConfig};
-use shunt::testkit::builder::{self, Form};
-use shunt::testkit::fixtures::{self, Census};
-use shunt::testkit::zoo;
+use shunt_testkit::builder::{self, Form};
+use shunt_testkit::fixtures::{self, Census};
+use shunt_testkit::zoo;
 
 use crate::util::{fixture, shunt};
 

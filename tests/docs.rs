@@ -16,7 +16,7 @@ use std::path::{Path, PathBuf};
 
 use prost::Message;
 use shunt::proto::ModelProto;
-use shunt::testkit::surgery;
+use shunt_testkit::surgery;
 
 use crate::intent::same_text;
 use crate::util::{fixture, tempdir};

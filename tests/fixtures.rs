@@ -1,4 +1,4 @@
-//! The committed fixtures are exactly what `shunt::testkit::fixtures` builds
+//! The committed fixtures are exactly what `shunt_testkit::fixtures` builds
 //! today, their censuses agree with their graphs, and the ONNX checker and
 //! onnxruntime accept every one of them.
 
@@ -7,8 +7,8 @@ use std::path::PathBuf;
 use std::process::Command;
 
 use shunt::proto::ModelProto;
-use shunt::testkit::fixtures::{self, Fixture};
-use shunt::testkit::{reorder_nodes, strip_node_names, strip_value_info};
+use shunt_testkit::fixtures::{self, Fixture};
+use shunt_testkit::{reorder_nodes, strip_node_names, strip_value_info};
 
 const REGENERATE: &str = "run `cargo run --release --example fixtures` and commit the result";
 

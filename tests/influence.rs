@@ -11,7 +11,7 @@ use shunt::probe::Silent;
 use shunt::probe::inputs::{self, Values};
 use shunt::proto::ModelProto;
 use shunt::report::{InfluenceReport, Report};
-use shunt::testkit::builder::{Dim, Init, ModelBuilder};
+use shunt_testkit::builder::{Dim, Init, ModelBuilder};
 
 use crate::util::{fixture, shunt};
 
@@ -523,4 +523,54 @@ fn no_float_input_means_no_gain_but_knockout_still_runs() {
     let inf = influence(&r);
     assert!(inf.effective_depth.is_none());
     assert!(inf.blocks.iter().all(|b| b.gain.is_none() && b.knockout.is_some()));
+}
+
+/// The gate surgery itself (`shunt::gate`), on a model small enough to read.
+mod gate_surgery {
+    use shunt::gate::{Site, insert};
+    use shunt::proto::ModelProto;
+    use shunt_testkit::builder::{Dim, Init, ModelBuilder};
+
+    fn tiny() -> ModelProto {
+        let mut b = ModelBuilder::new("tiny", 17).seed(3);
+        let x = b.input("x", &[Dim::batch(), Dim::Fixed(4)]);
+        let h = b.gemm("fc", &x, 4, &Init::HeNormal);
+        let y = b.add("add", &x, &h);
+        b.output(&y);
+        b.finish()
+    }
+
+    #[test]
+    fn gates_multiply_the_merge_inputs_and_keep_order() {
+        let mut m = tiny();
+        let before = m.graph.as_ref().unwrap().node.len();
+        // The testkit names a node's output after the node.
+        let g = m.graph.as_ref().unwrap();
+        let add = g.node.iter().find(|n| n.op_type == "Add").unwrap();
+        let site = Site {
+            output: add.output[0].clone(),
+            shortcut: add.input[0].clone(),
+            branch: vec![add.input[1].clone()],
+        };
+        let gates = insert(&mut m, &[site], true).unwrap();
+        let g = m.graph.as_ref().unwrap();
+        assert_eq!(g.node.len(), before + 2);
+        assert_eq!(gates.branch, vec!["shunt.gate.1.branch"]);
+        assert_eq!(gates.shortcut, vec!["shunt.gate.1.shortcut"]);
+        assert!(g.input.iter().any(|i| i.name == "shunt.gate.1.branch"));
+        let add = g.node.iter().position(|n| n.op_type == "Add").unwrap();
+        // Both Muls come before the merge, and the merge reads only gated tensors.
+        for i in &g.node[add].input {
+            let p = g.node.iter().position(|n| n.output.contains(i)).unwrap();
+            assert!(p < add);
+            assert_eq!(g.node[p].op_type, "Mul");
+        }
+    }
+
+    #[test]
+    fn a_missing_merge_is_an_error() {
+        let mut m = tiny();
+        let site = Site { output: "nope".into(), shortcut: "x".into(), branch: vec![] };
+        assert!(insert(&mut m, &[site], false).is_err());
+    }
 }

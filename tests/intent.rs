@@ -3,14 +3,14 @@
 //! (`fixtures/torch/resnet_cifar_bn.onnx`, `resnet_cifar_folded.onnx`),
 //! onnxruntime's `quantize_static` in QDQ form (`resnet_cifar_qdq.onnx`;
 //! all three written by `fixtures/torch/export.py`), and copies changed by
-//! graph surgery (`shunt::testkit::surgery`) in each test.
+//! graph surgery (`shunt_testkit::surgery`) in each test.
 
 use std::path::{Path, PathBuf};
 
 use prost::Message;
 
 use shunt::proto::ModelProto;
-use shunt::testkit::surgery;
+use shunt_testkit::surgery;
 
 use crate::util::{Run, fixture, shunt, tempdir};
 

@@ -15,7 +15,7 @@ use shunt::proto::{
 };
 use shunt::report::Report;
 use shunt::scan::{ScanConfig, scan_model};
-use shunt::testkit::builder::{reorder_nodes, strip_node_names};
+use shunt_testkit::builder::{reorder_nodes, strip_node_names};
 
 /// One node of a random graph: an op and picks among the tensors made so far.
 #[derive(Debug, Clone)]

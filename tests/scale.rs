@@ -4,7 +4,7 @@
 use std::fs;
 
 use shunt::scan::{self, ScanConfig};
-use shunt::testkit::large::{self, DecoderConfig};
+use shunt_testkit::large::{self, DecoderConfig};
 
 use crate::util;
 

@@ -36,7 +36,7 @@ use std::path::Path;
 use prost::Message;
 use serde_json::Value;
 use shunt::proto::{AttributeProto, ModelProto, NodeProto, TensorProto, attribute_proto};
-use shunt::testkit::builder::{Attr, Conv, Dim, Init, ModelBuilder};
+use shunt_testkit::builder::{Attr, Conv, Dim, Init, ModelBuilder};
 
 use crate::util::{fixture, shunt, tempdir};
 

@@ -41,3 +41,5 @@ mod docs;
 mod tidy;
 // Guards: the JSON documents keep their fields within a schema version.
 mod schema;
+// The model builders of the tests (the `shunt-testkit` crate) themselves.
+mod testkit;

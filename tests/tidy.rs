@@ -8,7 +8,7 @@
 //! library and `shunt::B` in the binary, and the root's re-exports
 //! (`crate::Error`) resolved through `src/lib.rs`. Comments (doc links
 //! included), string literals and `#[cfg(test)]` items are not read: test code
-//! may use any module (unit tests build models with `testkit`). `super::`
+//! may use any module. `super::`
 //! paths are not followed; they stay inside a module's own folder.
 //!
 //! Table lines read `A, B → C, D (x, y), E`: the modules on the left may use

@@ -15,7 +15,7 @@ use ndarray::{ArrayD, IxDyn};
 use ndarray_npy::{NpzWriter, WriteNpyExt};
 use prost::Message;
 use shunt::proto::ModelProto;
-use shunt::testkit::builder::{Attr, Conv, Dim, ModelBuilder};
+use shunt_testkit::builder::{Attr, Conv, Dim, ModelBuilder};
 
 fn main() {
     let root = Path::new(env!("CARGO_MANIFEST_DIR"));
@@ -121,7 +121,7 @@ fn tiny_models() -> Vec<(&'static str, ModelProto)> {
 
     let mut b = ModelBuilder::new("gemm_block", 17);
     let x = b.input("x", &[Dim::batch(), 4.into()]);
-    let y = b.gemm("fc", &x, 4, &shunt::testkit::builder::Init::HeNormal);
+    let y = b.gemm("fc", &x, 4, &shunt_testkit::builder::Init::HeNormal);
     let y = b.mul("gate", &x, &y);
     let y = b.add("add", &x, &y);
     b.output(&y);

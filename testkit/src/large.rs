@@ -8,10 +8,10 @@ use std::path::{Path, PathBuf};
 
 use prost::Message;
 
-use crate::proto::ModelProto;
-use crate::proto::tensor_proto::DataType;
-use crate::testkit::builder::{Attention, Dim, Form, Init, ModelBuilder};
-use crate::testkit::zoo;
+use crate::builder::{Attention, Dim, Form, Init, ModelBuilder};
+use crate::zoo;
+use shunt::proto::ModelProto;
+use shunt::proto::tensor_proto::DataType;
 
 /// A decoder-only (causal) transformer language model.
 #[derive(Debug, Clone, PartialEq)]
@@ -104,32 +104,4 @@ pub fn write_decoder(dir: &Path, stem: &str, cfg: &DecoderConfig) -> io::Result<
     let path = dir.join(format!("{stem}.onnx"));
     fs::write(&path, model.encode_to_vec())?;
     Ok((path, bytes))
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn external_file_holds_exactly_the_large_weights() {
-        let cfg =
-            DecoderConfig { layers: 2, hidden: 256, heads: 4, ffn: 1024, vocab: 512, seq_len: 8 };
-        let (model, bytes) = decoder(&cfg, "w.bin");
-        let g = model.graph.expect("a graph");
-        let external: Vec<_> =
-            g.initializer.iter().filter(|t| !t.external_data.is_empty()).collect();
-        // 4 attention projections and 2 feed-forward layers per layer, the
-        // embedding and the head.
-        assert_eq!(external.len(), 2 * 6 + 2);
-        let elements: u64 = external.iter().map(|t| t.dims.iter().product::<i64>() as u64).sum();
-        assert_eq!(elements, cfg.external_parameters());
-        assert!(external.iter().all(|t| t.raw_data.is_empty()));
-        assert!(bytes >= elements * 4 && bytes < elements * 4 + 64 * external.len() as u64);
-    }
-
-    #[test]
-    fn seven_billion_counts() {
-        // 32 * (4 * 4096^2 + 2 * 4096 * 16384) + 2 * 32000 * 4096.
-        assert_eq!(DecoderConfig::seven_billion().external_parameters(), 6_704_594_944);
-    }
 }

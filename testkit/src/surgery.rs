@@ -4,7 +4,7 @@
 
 use std::collections::BTreeSet;
 
-use crate::proto::ModelProto;
+use shunt::proto::ModelProto;
 
 /// Removes the shortcut of the merge whose output is `merge_output`: the
 /// merge becomes an `Identity` of its other operand, so the block's branch
@@ -97,7 +97,7 @@ pub fn swap_blocks(model: &mut ModelProto, x0: &str, x1: &str, x2: &str) -> bool
 
 /// Re-orders the nodes so that each comes after the producers of its inputs,
 /// keeping the present order where it already holds.
-fn topological(graph: &mut crate::proto::GraphProto) {
+fn topological(graph: &mut shunt::proto::GraphProto) {
     let mut known: BTreeSet<String> = graph.input.iter().map(|v| v.name.clone()).collect();
     known.extend(graph.initializer.iter().map(|t| t.name.clone()));
     known.insert(String::new());

@@ -11,9 +11,9 @@ use std::path::{Path, PathBuf};
 
 use prost::Message;
 
-use crate::proto::ModelProto;
-use crate::testkit::builder::Form;
-use crate::testkit::zoo::{self, ImageSpec};
+use crate::builder::Form;
+use crate::zoo::{self, ImageSpec};
+use shunt::proto::ModelProto;
 
 /// What an audit of a fixture should find.
 ///

@@ -1,6 +1,8 @@
-//! Builders for small ONNX models used by tests, fixtures and benchmarks.
+//! Builders for small ONNX models used by shunt's tests, fixtures,
+//! benchmarks and fuzz targets. A workspace member of its own, used only as a
+//! dev-dependency: none of it ships in the `shunt` library.
 //!
-//! [`builder`] writes graphs op by op on the prost types of [`crate::proto`],
+//! [`builder`] writes graphs op by op on the prost types of [`shunt::proto`],
 //! [`zoo`] assembles whole architectures from it, and [`fixtures`] lists the
 //! models committed under `fixtures/` with the census each one should give.
 //! Everything here is deterministic: the same calls give the same bytes.

@@ -10,9 +10,9 @@
 //! GlobalAveragePool, Flatten and Gemm. Weights are He-normal and batch
 //! normalisation starts at identity statistics unless a config says otherwise.
 
-use crate::proto::ModelProto;
-use crate::proto::tensor_proto::DataType;
-use crate::testkit::builder::{Attention, Conv, Dim, Form, Init, ModelBuilder};
+use crate::builder::{Attention, Conv, Dim, Form, Init, ModelBuilder};
+use shunt::proto::ModelProto;
+use shunt::proto::tensor_proto::DataType;
 
 /// The input and head of an image model.
 #[derive(Debug, Clone, PartialEq)]

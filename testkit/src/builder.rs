@@ -14,10 +14,10 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, Normal};
 
-use crate::proto::attribute_proto::AttributeType;
-use crate::proto::tensor_proto::{DataLocation, DataType};
-use crate::proto::tensor_shape_proto::{Dimension, dimension};
-use crate::proto::{
+use shunt::proto::attribute_proto::AttributeType;
+use shunt::proto::tensor_proto::{DataLocation, DataType};
+use shunt::proto::tensor_shape_proto::{Dimension, dimension};
+use shunt::proto::{
     AttributeProto, GraphProto, ModelProto, NodeProto, OperatorSetIdProto, StringStringEntryProto,
     TensorProto, TensorShapeProto, TypeProto, ValueInfoProto, type_proto,
 };
@@ -958,6 +958,7 @@ impl ModelBuilder {
             ir_version: IR_VERSION,
             opset_import: vec![OperatorSetIdProto { domain: String::new(), version: self.opset }],
             producer_name: PRODUCER.to_owned(),
+            // The workspace's version, shared with shunt (Cargo.toml).
             producer_version: env!("CARGO_PKG_VERSION").to_owned(),
             graph: Some(graph),
             metadata_props,
@@ -1061,7 +1062,7 @@ impl ModelBuilder {
                 vec![product(&x[..axis]), product(&x[axis..])]
             })),
             "Reshape" => {
-                same(shape_of(0).zip(konst(1)).and_then(|(x, target)| reshape(&x, &target)))
+                same(shape_of(0).zip(konst(1)).and_then(|(x, target)| reshape_dims(&x, &target)))
             }
             "Transpose" => same(shape_of(0).map(|x| {
                 let perm = ints_attr("perm").unwrap_or_else(|| (0..x.len() as i64).rev().collect());
@@ -1353,7 +1354,7 @@ fn product(dims: &[Dim]) -> Dim {
 
 /// Reshape to `target` (0 copies the input axis, -1 takes the rest); the
 /// inferred axis needs every symbolic input axis to be copied.
-fn reshape(x: &[Dim], target: &[i64]) -> Option<Vec<Dim>> {
+pub fn reshape_dims(x: &[Dim], target: &[i64]) -> Option<Vec<Dim>> {
     let mut out: Vec<Option<Dim>> = Vec::new();
     let mut copied = Vec::new();
     for (idx, t) in target.iter().enumerate() {
@@ -1377,7 +1378,8 @@ fn reshape(x: &[Dim], target: &[i64]) -> Option<Vec<Dim>> {
     out.into_iter().map(|d| d.or(Some(Dim::Fixed(free / known)))).collect()
 }
 
-fn slice_len(size: i64, start: i64, end: i64, step: i64) -> i64 {
+/// The length of `Slice` over an axis of `size` (the ONNX clamping rules).
+pub fn slice_len(size: i64, start: i64, end: i64, step: i64) -> i64 {
     let clamp = |v: i64, lo: i64, hi: i64| v.max(lo).min(hi);
     let norm = |v: i64| if v < 0 { v.saturating_add(size) } else { v };
     if step > 0 {
@@ -1396,73 +1398,4 @@ fn fnv1a(bytes: &[u8]) -> u64 {
         hash = hash.wrapping_mul(0x0100_0000_01b3);
     }
     hash
-}
-
-#[cfg(test)]
-mod tests {
-    use prost::Message;
-
-    use super::*;
-
-    fn tiny() -> ModelBuilder {
-        let mut b = ModelBuilder::new("tiny", 17).emit_value_info(true);
-        let x = b.input("x", &[Dim::batch(), 3.into(), 9.into(), 9.into()]);
-        let y = b.conv("conv", &x, &Conv::new(4, 3).stride(2));
-        let y = b.bn("bn", &y);
-        let y = b.relu("relu", &y);
-        let z = b.add("add", &y, &y);
-        b.output(&z);
-        b
-    }
-
-    #[test]
-    fn conv_output_size_follows_the_spec() {
-        let b = tiny();
-        // [O2] floor((9 + 1 + 1 - 1*(3 - 1) - 1) / 2) + 1 = 5.
-        assert_eq!(
-            b.shape("conv").unwrap(),
-            &[Dim::batch(), Dim::Fixed(4), Dim::Fixed(5), Dim::Fixed(5)]
-        );
-    }
-
-    #[test]
-    fn same_calls_give_same_bytes() {
-        assert_eq!(tiny().finish().encode_to_vec(), tiny().finish().encode_to_vec());
-    }
-
-    #[test]
-    fn reshape_copies_symbolic_axes() {
-        let x = [Dim::batch(), Dim::Fixed(8), Dim::Fixed(16)];
-        let out = reshape(&x, &[0, 0, 2, -1]).unwrap();
-        assert_eq!(out, vec![Dim::batch(), Dim::Fixed(8), Dim::Fixed(2), Dim::Fixed(8)]);
-    }
-
-    #[test]
-    fn strided_slice_length() {
-        assert_eq!(slice_len(16, 0, i64::MAX, 2), 8);
-        assert_eq!(slice_len(15, 0, i64::MAX, 2), 8);
-        assert_eq!(slice_len(8, 4, 8, 1), 4);
-        assert_eq!(slice_len(8, -1, i64::MIN, -1), 8);
-    }
-
-    #[test]
-    fn reorder_keeps_a_topological_order() {
-        let mut b = ModelBuilder::new("fan", 17);
-        let x = b.input("x", &[Dim::Fixed(4)]);
-        let parts: Vec<String> = (0..6).map(|k| b.relu(&format!("r{k}"), &x)).collect();
-        let refs: Vec<&str> = parts.iter().map(String::as_str).collect();
-        let s = b.sum("sum", &refs);
-        b.output(&s);
-        let model = b.finish();
-        let mut shuffled = model.clone();
-        reorder_nodes(&mut shuffled, 7);
-        let names = |m: &ModelProto| {
-            m.graph.as_ref().unwrap().node.iter().map(|n| n.name.clone()).collect::<Vec<_>>()
-        };
-        assert_ne!(names(&model), names(&shuffled));
-        assert_eq!(names(&shuffled).last().unwrap(), "sum");
-        let mut again = model.clone();
-        reorder_nodes(&mut again, 7);
-        assert_eq!(names(&again), names(&shuffled));
-    }
 }
