@@ -61,7 +61,7 @@ fn audit_config() -> AuditConfig {
     AuditConfig {
         scan: ScanConfig::standard(),
         inputs: InputConfig::standard(BATCH),
-        findings: scan::standard_findings(),
+        findings: shunt::findings::FindingConfig::STANDARD,
         influence: None,
     }
 }

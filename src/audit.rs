@@ -6,7 +6,6 @@ use std::path::Path;
 
 use prost::Message;
 
-use crate::classify::Placement;
 use crate::error::{Error, Result};
 use crate::findings::{self, FindingConfig, InfluenceFacts, InfluenceThresholds};
 use crate::gate::{self, Site};
@@ -22,6 +21,7 @@ use crate::report::{
 };
 use crate::scan::{self, Analysis, ScanConfig};
 use crate::stats::{self, Agreement, Spread};
+use crate::vocab::{Command, Placement, ShortcutKind};
 
 /// Everything an audit needs to know.
 #[derive(Debug, Clone)]
@@ -53,15 +53,18 @@ pub struct InfluenceConfig {
 
 impl InfluenceConfig {
     /// The documented defaults: every block knocked out, no converse, the
-    /// gain with step [`GAIN_STEP`], `low-impact` below 0.01, a gain factor of 100.
+    /// gain with step [`GAIN_STEP`], the standard thresholds.
+    pub const STANDARD: InfluenceConfig = InfluenceConfig {
+        knockout: true,
+        shortcuts: false,
+        blocks: None,
+        gain_step: Some(GAIN_STEP),
+        thresholds: InfluenceThresholds::STANDARD,
+    };
+
+    /// [`InfluenceConfig::STANDARD`].
     pub fn standard() -> InfluenceConfig {
-        InfluenceConfig {
-            knockout: true,
-            shortcuts: false,
-            blocks: None,
-            gain_step: Some(GAIN_STEP),
-            thresholds: InfluenceThresholds { low_impact_below: 0.01, gain_factor: 100.0 },
-        }
+        InfluenceConfig::STANDARD
     }
 }
 
@@ -83,15 +86,18 @@ impl InfluenceConfig {
 pub const GAIN_STEP: f32 = 1e-3;
 
 impl AuditConfig {
-    /// The documented defaults: the standard scan, 8 samples of standard
-    /// normal inputs with seed 0, and the standard thresholds.
+    /// The documented defaults: the standard scan, inputs and thresholds,
+    /// no knockout or gain.
+    pub const STANDARD: AuditConfig = AuditConfig {
+        scan: ScanConfig::STANDARD,
+        inputs: InputConfig::STANDARD,
+        findings: FindingConfig::STANDARD,
+        influence: None,
+    };
+
+    /// [`AuditConfig::STANDARD`].
     pub fn standard() -> AuditConfig {
-        AuditConfig {
-            scan: ScanConfig::standard(),
-            inputs: InputConfig::standard(8),
-            findings: scan::standard_findings(),
-            influence: None,
-        }
+        AuditConfig::STANDARD
     }
 }
 
@@ -374,7 +380,7 @@ fn run(
     config: &AuditConfig,
     progress: &dyn Progress,
 ) -> Result<Audit> {
-    let mut report = scan::structure_report("audit", info, &analysis);
+    let mut report = scan::structure_report(Command::Audit, info, &analysis);
     report.run = Some(run_row(&feeding, &config.findings));
     let watches = watches(&analysis);
     // The analysis holds the decoded weights: free them before tract loads its own copy.
@@ -552,7 +558,7 @@ fn changes_resolution(a: &Analysis, i: usize, channels_first: bool) -> bool {
         let skip = if channels_first { 1 } else { f.len() - 1 };
         return f.iter().zip(&o).enumerate().any(|(k, (x, y))| k != 0 && k != skip && x != y);
     }
-    b.shortcut.kind == crate::residual::ShortcutKind::Resampled
+    b.shortcut.kind == ShortcutKind::Resampled
         || b.branch.iter().any(|&n| {
             crate::load::attr::ints(&g.node(n).attrs, "strides")
                 .is_some_and(|s| s.iter().any(|&x| x > 1))
@@ -646,7 +652,7 @@ fn run_influence(
     config: &AuditConfig,
     progress: &dyn Progress,
 ) -> Result<Audit> {
-    let mut report = scan::structure_report("audit", info, &analysis);
+    let mut report = scan::structure_report(Command::Audit, info, &analysis);
     report.run = Some(run_row(&feeding, &config.findings));
     let watches = watches(&analysis);
     let n = analysis.detection.blocks.len();
@@ -834,7 +840,7 @@ fn run_influence(
         .collect();
     for f in findings::influence(&influence_facts, &ic.thresholds) {
         report.findings.push(FindingRow {
-            code: f.code.as_str().to_owned(),
+            code: f.code,
             block: f.block,
             node: f.block.and_then(|id| report.blocks.get(id - 1)).map(|b| b.merge.clone()),
             message: f.message,

@@ -21,6 +21,7 @@ use crate::report::text::plural;
 use crate::scan;
 use crate::stats;
 use crate::structure::{BlockKey, Step, align};
+use crate::vocab::PairStatus;
 
 /// What a comparison does.
 #[derive(Debug, Clone)]
@@ -215,10 +216,10 @@ pub fn comparison(
                 _ => Vec::new(),
             };
             let status = match (i, j) {
-                (Some(_), Some(_)) if differences.is_empty() => "same",
-                (Some(_), Some(_)) => "changed",
-                (Some(_), None) => "only-a",
-                _ => "only-b",
+                (Some(_), Some(_)) if differences.is_empty() => PairStatus::Same,
+                (Some(_), Some(_)) => PairStatus::Changed,
+                (Some(_), None) => PairStatus::OnlyA,
+                _ => PairStatus::OnlyB,
             };
             let key = i.map(|i| &ka[i]).or(j.map(|j| &kb[j])).expect("a step has a side");
             let ra = i.and_then(|i| ratio(a, i));
@@ -227,7 +228,7 @@ pub fn comparison(
             BlockPair {
                 a: i.map(|i| i + 1),
                 b: j.map(|j| j + 1),
-                status: status.to_owned(),
+                status,
                 merge_a: i.map(|i| a.blocks[i].merge.name.clone()),
                 merge_b: j.map(|j| b.blocks[j].merge.name.clone()),
                 stage: key.stage,
@@ -240,7 +241,7 @@ pub fn comparison(
             }
         })
         .collect();
-    let structural_differences = blocks.iter().filter(|p| p.status != "same").count();
+    let structural_differences = blocks.iter().filter(|p| p.status != PairStatus::Same).count();
     Comparison {
         schema: COMPARE_SCHEMA.to_owned(),
         schema_version: COMPARE_SCHEMA_VERSION,

@@ -3,7 +3,8 @@
 //! The pipeline runs one way: [`load`] decodes the file, [`graph`] builds
 //! the dataflow graph, [`residual`] finds the blocks, [`classify`] says what
 //! kind each is, [`scan`] puts it together into a [`report::Report`], and
-//! [`report`] renders it.
+//! [`report`] renders it. [`cli::run`] is the whole command line as a
+//! function (what the `shunt` binary calls).
 //!
 //! ```no_run
 //! use std::path::Path;
@@ -17,6 +18,7 @@
 pub mod audit;
 pub mod batch;
 pub mod classify;
+pub mod cli;
 pub mod compare;
 pub mod error;
 pub mod expect;
@@ -32,5 +34,7 @@ pub mod residual;
 pub mod scan;
 pub mod stats;
 pub mod structure;
+pub mod vocab;
 
-pub use error::{Diagnostic, Error, ErrorKind, Result, Severity};
+pub use error::{Diagnostic, Error, ErrorKind, Result};
+pub use vocab::Severity;

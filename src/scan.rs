@@ -5,15 +5,16 @@
 use std::collections::BTreeMap;
 use std::path::Path;
 
-use crate::classify::{self, BareRun, ClassifyConfig, Kind, Stage, StaticDead};
-use crate::error::{Diagnostic, Result, Severity};
+use crate::classify::{self, BareRun, ClassifyConfig, Kind, Stage};
+use crate::error::{Diagnostic, Result};
 use crate::findings::{self, BlockFacts, FindingConfig, Run};
 use crate::graph::{self, BuildConfig, Dim, Dominance, Graph, NodeId, ValueId};
 use crate::load::{self, ExternalData, LoadConfig, tensor};
 use crate::lower::{self, LowerConfig, Lowered};
 use crate::proto::ModelProto;
 use crate::report::{self, *};
-use crate::residual::{self, Detection, Reason, ShortcutKind};
+use crate::residual::{self, Detection};
+use crate::vocab::Command;
 
 /// Everything the structural audit needs to know.
 #[derive(Debug, Clone)]
@@ -29,15 +30,20 @@ pub struct ScanConfig {
 }
 
 impl ScanConfig {
-    /// The documented defaults: files up to 4 GiB, graphs up to 1,000,000
-    /// nodes, weights up to 16 MiB read to check for all zeros.
+    /// The documented defaults, the only place they are written (the
+    /// command line's defaults read them): files up to 4 GiB, graphs up to
+    /// 1,000,000 nodes, weights up to 16 MiB read to check for all zeros,
+    /// NCHWc block size from the model or this machine.
+    pub const STANDARD: ScanConfig = ScanConfig {
+        load: LoadConfig { max_file_bytes: 4 << 30 },
+        build: BuildConfig { max_nodes: 1_000_000 },
+        classify: ClassifyConfig { max_inspect_bytes: 16 << 20 },
+        lower: LowerConfig::STANDARD,
+    };
+
+    /// [`ScanConfig::STANDARD`].
     pub fn standard() -> ScanConfig {
-        ScanConfig {
-            load: LoadConfig { max_file_bytes: 4 << 30 },
-            build: BuildConfig { max_nodes: 1_000_000 },
-            classify: ClassifyConfig { max_inspect_bytes: 16 << 20 },
-            lower: LowerConfig::standard(),
-        }
+        ScanConfig::STANDARD
     }
 }
 
@@ -214,31 +220,12 @@ fn dims(shape: &[Dim]) -> Vec<String> {
     shape.iter().map(ToString::to_string).collect()
 }
 
-/// The report's name for a shortcut kind.
-pub fn shortcut_name(kind: ShortcutKind) -> &'static str {
-    match kind {
-        ShortcutKind::Identity => "identity",
-        ShortcutKind::Projection => "projection",
-        ShortcutKind::Resampled => "resampled",
-    }
-}
-
 /// Builds the report of an analysis, with its structural findings.
 pub fn report_of(model: ModelInfo, a: &Analysis) -> Report {
-    let mut report = structure_report("scan", model, a);
+    let mut report = structure_report(Command::Scan, model, a);
     let facts = block_facts(&report);
-    set_findings(&mut report, &facts, &standard_findings());
+    set_findings(&mut report, &facts, &FindingConfig::STANDARD);
     report
-}
-
-/// The default thresholds of findings (docs/statistics.md).
-pub fn standard_findings() -> FindingConfig {
-    FindingConfig {
-        dead_below: 0.01,
-        dominant_above: 10.0,
-        dead_channels_above: 0.5,
-        depth_factor: 100.0,
-    }
 }
 
 /// The structural facts findings need, one per block of the report.
@@ -271,7 +258,7 @@ pub fn set_findings(report: &mut Report, facts: &[BlockFacts], config: &FindingC
     report.findings = findings::findings(facts, &runs, config)
         .into_iter()
         .map(|f| FindingRow {
-            code: f.code.as_str().to_owned(),
+            code: f.code,
             block: f.block,
             node: f.block.and_then(|id| report.blocks.get(id - 1)).map(|b| b.merge.clone()),
             message: f.message,
@@ -280,7 +267,7 @@ pub fn set_findings(report: &mut Report, facts: &[BlockFacts], config: &FindingC
 }
 
 /// The rows of an analysis, without findings, for `command` (`scan`, `audit`).
-pub(crate) fn structure_report(command: &str, model: ModelInfo, a: &Analysis) -> Report {
+pub(crate) fn structure_report(command: Command, model: ModelInfo, a: &Analysis) -> Report {
     let g = &a.graph;
     let det = &a.detection;
     let labelled = |list: &[(NodeId, String)]| -> Vec<LabelledNode> {
@@ -301,7 +288,7 @@ pub(crate) fn structure_report(command: &str, model: ModelInfo, a: &Analysis) ->
             output_shape: g.shape(b.output).map(dims),
             fork: value_name(g, b.fork),
             shortcut: ShortcutRow {
-                kind: shortcut_name(b.shortcut.kind).to_owned(),
+                kind: b.shortcut.kind,
                 projected: b.shortcut.projected,
                 input: value_name(g, b.shortcut.input),
                 ops: b.shortcut.ops.iter().map(|&n| node_ref(g, n)).collect(),
@@ -333,16 +320,11 @@ pub(crate) fn structure_report(command: &str, model: ModelInfo, a: &Analysis) ->
                     mean_abs: e.summary.map(|s| s.mean_abs),
                 }),
             },
-            placement: k.placement.as_str().to_owned(),
+            placement: k.placement,
             placement_node: k.placement_node.map(|n| node_ref(g, n)),
-            static_dead: k.static_dead.map(|d| {
-                let (reason, n) = match d {
-                    StaticDead::ZeroScale(n) => ("zero-scale", n),
-                    StaticDead::ZeroNormScale(n) => ("zero-norm-scale", n),
-                    StaticDead::ZeroWeights(n) => ("zero-weights", n),
-                };
-                DeadRow { reason: reason.to_owned(), node: node_ref(g, n) }
-            }),
+            static_dead: k
+                .static_dead
+                .map(|d| DeadRow { reason: d.reason, node: node_ref(g, d.node) }),
             parent: b.parent.map(|p| p + 1),
             depth: b.depth,
             children: b.children,
@@ -372,8 +354,8 @@ pub(crate) fn structure_report(command: &str, model: ModelInfo, a: &Analysis) ->
     let mut by_shortcut = BTreeMap::new();
     let mut by_placement = BTreeMap::new();
     for b in &blocks {
-        *by_shortcut.entry(b.shortcut.kind.clone()).or_insert(0) += 1;
-        *by_placement.entry(b.placement.clone()).or_insert(0) += 1;
+        *by_shortcut.entry(b.shortcut.kind.as_str().to_owned()).or_insert(0) += 1;
+        *by_placement.entry(b.placement.as_str().to_owned()).or_insert(0) += 1;
     }
     let concat_parents: std::collections::HashSet<usize> =
         concat_skips.iter().filter_map(|c| c.parent).collect();
@@ -390,7 +372,7 @@ pub(crate) fn structure_report(command: &str, model: ModelInfo, a: &Analysis) ->
     Report {
         schema: report::REPORT_SCHEMA.to_owned(),
         schema_version: report::REPORT_SCHEMA_VERSION,
-        command: command.to_owned(),
+        command,
         model,
         lowered: a
             .lowered
@@ -431,12 +413,7 @@ pub(crate) fn structure_report(command: &str, model: ModelInfo, a: &Analysis) ->
             .iter()
             .map(|r| NotBlockRow {
                 node: node_ref(g, r.node),
-                reason: match r.reason {
-                    Reason::Independent => "independent-inputs",
-                    Reason::NoShortcut => "no-shortcut",
-                    Reason::NoLearnedLayer => "no-learned-layer",
-                }
-                .to_owned(),
+                reason: r.reason,
                 detail: r.reason.describe().to_owned(),
             })
             .collect(),
@@ -454,11 +431,7 @@ pub(crate) fn structure_report(command: &str, model: ModelInfo, a: &Analysis) ->
             .diagnostics
             .iter()
             .map(|d| DiagnosticRow {
-                severity: match d.severity {
-                    Severity::Note => "note",
-                    Severity::Warning => "warning",
-                }
-                .to_owned(),
+                severity: d.severity,
                 node: d.node.clone(),
                 message: d.message.clone(),
             })

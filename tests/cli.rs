@@ -283,3 +283,32 @@ fn declared_sizes_are_checked_before_reading() {
     let p = write(dir.path(), "dtype.onnx", &m);
     assert_clean_error(&shunt(&["scan", &p]), &p, "unknown element type 99");
 }
+
+/// The library entry `shunt::cli::run` (what a Python binding calls) is the
+/// program: the same document and the same exit codes as the binary.
+#[test]
+fn the_library_entry_is_the_command_line() {
+    let dir = tempdir();
+    let model = crate::util::fixture("resnet18_a.onnx");
+    let out = dir.path().join("r.json");
+    let argv = |args: &[&str]| -> Vec<std::ffi::OsString> {
+        std::iter::once("shunt").chain(args.iter().copied()).map(Into::into).collect()
+    };
+    let model = model.to_str().unwrap();
+    let code =
+        shunt::cli::run(argv(&["scan", model, "--format", "json", "-o", out.to_str().unwrap()]));
+    assert_eq!(code, 0);
+    let binary = shunt(&["scan", model, "--format", "json"]);
+    assert_eq!(binary.code, 0);
+    assert_eq!(fs::read_to_string(&out).unwrap(), binary.stdout);
+    // An error is exit code 2, a usage error too; --help succeeds.
+    assert_eq!(shunt::cli::run(argv(&["scan", "no-such-model.onnx", "-q"])), 2);
+    assert_eq!(shunt::cli::run(argv(&["scan", model, "--format", "yaml"])), 2);
+    assert_eq!(shunt::cli::run(argv(&["verify", model, "--pin", model, "--format", "html"])), 2);
+    // A --fail-on finding is exit code 1 (zero_branch has a static-dead block).
+    let zero = crate::util::fixture("zero_branch.onnx");
+    let quiet = dir.path().join("z.json");
+    let args =
+        ["scan", zero.to_str().unwrap(), "--fail-on", "static-dead", "-o", quiet.to_str().unwrap()];
+    assert_eq!(shunt::cli::run(argv(&args)), 1);
+}

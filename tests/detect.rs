@@ -3,6 +3,7 @@
 //! not depend on names, `value_info` or node order.
 
 use shunt::report::Report;
+use shunt::report::text::{ARROW, layer_signature};
 use shunt::scan::{self, ScanConfig};
 use shunt_testkit::builder::{self, Form};
 use shunt_testkit::fixtures::{self, Census};
@@ -120,7 +121,7 @@ fn imagenet_resnets_match_table_1() {
             let projected: Vec<usize> = s
                 .blocks
                 .iter()
-                .filter(|&&id| r.blocks[id - 1].shortcut.kind == "projection")
+                .filter(|&&id| r.blocks[id - 1].shortcut.kind.as_str() == "projection")
                 .copied()
                 .collect();
             assert!(
@@ -156,7 +157,10 @@ fn shortcut_options_a_and_c() {
     }));
     assert_eq!(count(&d, "resampled"), 3, "[Z2] pooled projections in stages 2-4");
     assert!(
-        d.blocks.iter().filter(|b| b.shortcut.kind == "resampled").all(|b| b.shortcut.projected)
+        d.blocks
+            .iter()
+            .filter(|b| b.shortcut.kind.as_str() == "resampled")
+            .all(|b| b.shortcut.projected)
     );
 }
 
@@ -299,7 +303,7 @@ fn signature(r: &Report) -> (Vec<String>, usize, usize, Vec<Vec<String>>) {
         .map(|b| {
             // Graph order of independent layers may change with the node order.
             let mut layers: Vec<String> =
-                b.branch.layers.iter().map(shunt::report::table::layer_label).collect();
+                b.branch.layers.iter().map(|l| layer_signature(l, ARROW)).collect();
             layers.sort();
             format!(
                 "{} {} [{}] stage={:?} depth={}",

@@ -94,7 +94,7 @@ fn knockout_of_a_zero_branch_changes_nothing() {
             assert_eq!(k.top1, Some(1.0));
             assert!(row.low_impact);
         }
-        let low = a.report.findings.iter().filter(|f| f.code == "low-impact").count();
+        let low = a.report.findings.iter().filter(|f| f.code.as_str() == "low-impact").count();
         assert_eq!(low, 3, "{name}");
     }
 }

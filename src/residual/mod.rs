@@ -14,20 +14,7 @@ use std::collections::{HashMap, HashSet};
 
 use crate::graph::op::{self, Family};
 use crate::graph::{Dominance, Graph, NodeId, ValueId};
-
-/// How the shortcut reaches the merge.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
-pub enum ShortcutKind {
-    /// The fork tensor itself, through at most reshapes, casts,
-    /// quantize/dequantize pairs or a normalisation.
-    Identity,
-    /// One learned linear layer (1x1 convolution, fully connected),
-    /// optionally with a normalisation or a folded scale and shift.
-    Projection,
-    /// Pooling, strided slicing, padding or resizing, with or without one
-    /// projection.
-    Resampled,
-}
+use crate::vocab::{NotBlockReason, ShortcutKind};
 
 /// The shortcut path of a block.
 #[derive(Debug, Clone)]
@@ -94,29 +81,7 @@ pub struct Rejected {
     /// The Add, Sum or Concat node.
     pub node: NodeId,
     /// Why it is not a block.
-    pub reason: Reason,
-}
-
-/// Why a merge with several signal inputs is not a block.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Reason {
-    /// Its inputs come from independent signals (separate graph inputs).
-    Independent,
-    /// No input reaches it from the fork as a shortcut.
-    NoShortcut,
-    /// No path from the fork holds a layer with weights: elementwise arithmetic.
-    NoLearnedLayer,
-}
-
-impl Reason {
-    /// A short explanation.
-    pub fn describe(self) -> &'static str {
-        match self {
-            Reason::Independent => "its inputs come from independent signals",
-            Reason::NoShortcut => "no input reaches it from the fork as a shortcut",
-            Reason::NoLearnedLayer => "no path from the fork holds a layer with weights",
-        }
-    }
+    pub reason: NotBlockReason,
 }
 
 /// Everything detection found.
@@ -152,7 +117,7 @@ pub fn find_blocks(g: &Graph, dom: &Dominance) -> Detection {
         let Some(&output) = node.outputs.first() else { continue };
         let outcome = match dom.fork(output) {
             Some(fork) => join(g, fork, &signals, is_merge).map(|j| (fork, j)),
-            None => Err(Reason::Independent),
+            None => Err(NotBlockReason::Independent),
         };
         match outcome {
             Ok((fork, (shortcut, branch_inputs, branch))) => {
@@ -206,7 +171,7 @@ fn join(
     fork: ValueId,
     signals: &[(usize, ValueId)],
     is_merge: bool,
-) -> Result<(Shortcut, Vec<ValueId>, Vec<NodeId>), Reason> {
+) -> Result<(Shortcut, Vec<ValueId>, Vec<NodeId>), NotBlockReason> {
     let paths: Vec<Option<Vec<NodeId>>> =
         signals.iter().map(|&(_, v)| path_from(g, fork, v)).collect();
     // The shortcut is the simplest eligible path; ties go to the fewest ops,
@@ -224,7 +189,11 @@ fn join(
     }
     let Some((chosen, shortcut)) = best else {
         let any_learned = paths.iter().flatten().flatten().any(|&n| op::is_parametrised(g, n));
-        return Err(if any_learned { Reason::NoShortcut } else { Reason::NoLearnedLayer });
+        return Err(if any_learned {
+            NotBlockReason::NoShortcut
+        } else {
+            NotBlockReason::NoLearnedLayer
+        });
     };
     let mut branch_set: HashSet<NodeId> = HashSet::new();
     let mut branch_inputs = Vec::new();
@@ -239,10 +208,10 @@ fn join(
     }
     let learned = branch_set.iter().any(|&n| op::is_parametrised(g, n));
     if !learned {
-        return Err(Reason::NoLearnedLayer);
+        return Err(NotBlockReason::NoLearnedLayer);
     }
     if shortcut.ops.iter().any(|n| branch_set.contains(n)) {
-        return Err(Reason::NoShortcut);
+        return Err(NotBlockReason::NoShortcut);
     }
     let mut branch: Vec<NodeId> = branch_set.into_iter().collect();
     branch.sort_by_key(|n| g.rank[n.0 as usize]);
