@@ -10,6 +10,7 @@ use std::path::Path;
 
 use crate::audit::{self, AuditConfig};
 use crate::error::{Error, ErrorKind, Result};
+use crate::open;
 
 use crate::probe::Progress;
 use crate::probe::inputs::Feeding;
@@ -93,21 +94,22 @@ pub fn compare_files(
     progress: &dyn Progress,
 ) -> Result<Comparison> {
     if !config.run {
-        let a = scan::scan_file(a_path, &config.audit.scan)?;
-        let b = scan::scan_file(b_path, &config.audit.scan)?;
+        let a = scan::scan_file(a_path, &config.audit.open)?;
+        let b = scan::scan_file(b_path, &config.audit.open)?;
         return Ok(comparison(&a, &b, None, None));
     }
     // Each model is opened once; both plans are checked before either runs.
-    let oa = audit::open_file(a_path, &config.audit)?;
-    let ob = audit::open_file(b_path, &config.audit)?;
+    let purpose = open::Purpose::Run;
+    let oa = open::open_file(a_path, &config.audit.open, purpose)?;
+    let ob = open::open_file(b_path, &config.audit.open, purpose)?;
     let fa = oa.plan(&config.audit.inputs).map_err(|e| e.at(a_path))?;
     let fb = ob.plan(&config.audit.inputs).map_err(|e| e.at(b_path))?;
     same_feeding(&fa, &fb, b_path)?;
-    let a = audit::measure(oa, fa, &config.audit, progress)?;
+    let a = audit::measured(oa, &fa, &config.audit, progress).map_err(|e| e.at(a_path))?;
     if let Some(e) = a.run_error {
         return Err(e.at(a_path));
     }
-    let b = audit::measure(ob, fb, &config.audit, progress)?;
+    let b = audit::measured(ob, &fb, &config.audit, progress).map_err(|e| e.at(b_path))?;
     if let Some(e) = b.run_error {
         return Err(e.at(b_path));
     }

@@ -431,7 +431,7 @@ fn subgraphs_are_reported() {
         ],
         ..Default::default()
     });
-    let r = shunt::scan::scan_model(model, "if", &shunt::scan::ScanConfig::standard()).unwrap();
+    let r = shunt::scan::scan_model(model, "if", &shunt::open::OpenConfig::standard()).unwrap();
     assert_eq!(r.subgraphs.len(), 1);
     assert_eq!((r.subgraphs[0].node.name.as_str(), r.subgraphs[0].subgraphs), ("branchy", 2));
     assert!(r.diagnostics.iter().any(|d| d.message.contains("not searched")));

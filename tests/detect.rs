@@ -2,9 +2,10 @@
 //! published layouts give the counts their papers state, and the result does
 //! not depend on names, `value_info` or node order.
 
+use shunt::open::OpenConfig;
 use shunt::report::Report;
 use shunt::report::text::{ARROW, layer_signature};
-use shunt::scan::{self, ScanConfig};
+use shunt::scan;
 use shunt_testkit::builder::{self, Form};
 use shunt_testkit::fixtures::{self, Census};
 use shunt_testkit::zoo;
@@ -12,7 +13,7 @@ use shunt_testkit::zoo;
 use crate::util::{fixture, shunt};
 
 fn scan_in_memory(model: shunt::proto::ModelProto) -> Report {
-    scan::scan_model(model, "in-memory", &ScanConfig::standard()).expect("the scan succeeds")
+    scan::scan_model(model, "in-memory", &OpenConfig::standard()).expect("the scan succeeds")
 }
 
 fn count(r: &Report, key: &str) -> u32 {

@@ -7,8 +7,9 @@
 
 use std::path::PathBuf;
 
+use shunt::open::OpenConfig;
 use shunt::report::{BlockRow, Report};
-use shunt::scan::{ScanConfig, scan_file};
+use shunt::scan::scan_file;
 
 fn torch_fixture(name: &str) -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("fixtures").join("torch").join(name)
@@ -17,7 +18,7 @@ fn torch_fixture(name: &str) -> PathBuf {
 fn scan(name: &str) -> Report {
     let path = torch_fixture(name);
     let report =
-        scan_file(&path, &ScanConfig::standard()).unwrap_or_else(|e| panic!("scan {name}: {e}"));
+        scan_file(&path, &OpenConfig::standard()).unwrap_or_else(|e| panic!("scan {name}: {e}"));
     let warnings: Vec<_> =
         report.diagnostics.iter().filter(|d| d.severity.as_str() == "warning").collect();
     assert!(warnings.is_empty(), "{name}: warnings {warnings:?}");

@@ -6,10 +6,10 @@ use std::path::PathBuf;
 
 use clap::{Parser, Subcommand, ValueEnum};
 
-use crate::audit::GAIN_STEP;
 use crate::findings::{FindingConfig, InfluenceThresholds};
+use crate::measure::GAIN_STEP;
+use crate::open::OpenConfig;
 use crate::probe::inputs::{Dist, InputConfig};
-use crate::scan::ScanConfig;
 
 /// Audit the residual structure of ONNX models.
 #[derive(Debug, Parser)]
@@ -222,16 +222,16 @@ impl From<Dist> for DistArg {
 #[derive(Debug, clap::Args)]
 pub(super) struct Limits {
     /// Largest model file read, in bytes.
-    #[arg(long, value_name = "BYTES", default_value_t = ScanConfig::STANDARD.load.max_file_bytes)]
+    #[arg(long, value_name = "BYTES", default_value_t = OpenConfig::STANDARD.load.max_file_bytes)]
     pub max_file_bytes: u64,
     /// Most nodes in the main graph.
-    #[arg(long, value_name = "N", default_value_t = ScanConfig::STANDARD.build.max_nodes)]
+    #[arg(long, value_name = "N", default_value_t = OpenConfig::STANDARD.build.max_nodes)]
     pub max_nodes: usize,
     /// Largest weight tensor read to check whether a branch is zeroed, in bytes.
     #[arg(
         long,
         value_name = "BYTES",
-        default_value_t = ScanConfig::STANDARD.classify.max_inspect_bytes
+        default_value_t = OpenConfig::STANDARD.classify.max_inspect_bytes
     )]
     pub max_inspect_bytes: u64,
     /// The NCHWc block size onnxruntime used when it saved a model at

@@ -70,7 +70,7 @@ pub(super) fn audit(a: &AuditArgs, argv: &[OsString]) -> anyhow::Result<u8> {
         bail!("--no-run cannot be combined with --knockout or --gain, which run the model");
     }
     let config = AuditConfig {
-        scan: a.limits.config(),
+        open: a.limits.config(),
         inputs: if a.no_run { no_inputs() } else { a.inputs.config()? },
         findings,
         influence: a.influence.config()?,
@@ -98,11 +98,7 @@ fn audit_one(
     progress: &dyn crate::probe::Progress,
 ) -> crate::Result<(Report, Option<crate::Error>)> {
     if no_run {
-        let mut report = scan::scan_file(model, &config.scan)?;
-        report.command = Command::Audit;
-        let facts = scan::block_facts(&report);
-        scan::set_findings(&mut report, &facts, &config.findings);
-        return Ok((report, None));
+        return Ok((audit::audit_structure(model, config)?, None));
     }
     let outcome = audit::audit_file(model, config, progress)?;
     Ok((outcome.report, outcome.run_error))
@@ -158,7 +154,7 @@ pub(super) fn verify(a: &VerifyArgs) -> anyhow::Result<u8> {
             .map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))?;
         let report = if expectation.needs_run() {
             let config = AuditConfig {
-                scan: a.limits.config(),
+                open: a.limits.config(),
                 inputs: a.inputs.config()?,
                 findings: FindingConfig::STANDARD,
                 influence: None,
@@ -195,7 +191,7 @@ fn emit_verification(
 pub(super) fn compare(a: &CompareArgs) -> anyhow::Result<u8> {
     let config = CompareConfig {
         audit: AuditConfig {
-            scan: a.limits.config(),
+            open: a.limits.config(),
             inputs: a.inputs.config()?,
             findings: FindingConfig::STANDARD,
             influence: None,

@@ -7,15 +7,15 @@ use std::collections::BTreeMap;
 use anyhow::{Context, bail};
 
 use super::args::{DistArg, InfluenceArgs, InputArgs, Limits, ThresholdArgs};
-use crate::audit::InfluenceConfig;
 use crate::findings::{FindingConfig, InfluenceThresholds};
+use crate::measure::InfluenceConfig;
+use crate::open::OpenConfig;
 use crate::probe::inputs::{Dist, InputConfig};
-use crate::scan::ScanConfig;
 use crate::vocab::FindingCode;
 
 impl Limits {
-    pub(super) fn config(&self) -> ScanConfig {
-        let mut c = ScanConfig::STANDARD;
+    pub(super) fn config(&self) -> OpenConfig {
+        let mut c = OpenConfig::STANDARD;
         c.load.max_file_bytes = self.max_file_bytes;
         c.build.max_nodes = self.max_nodes;
         c.classify.max_inspect_bytes = self.max_inspect_bytes;

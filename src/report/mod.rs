@@ -2,7 +2,7 @@
 //! library. Renderers in this module's children turn it into text or JSON.
 //!
 //! **Invariant:** nothing here knows about graphs, protobuf or tract; every
-//! field is filled by the stage that builds reports (`scan`), and every ONNX
+//! field is filled by the stage that builds reports (`assemble`), and every ONNX
 //! node or tensor the report mentions is named so a user can find it.
 
 pub mod batch;
