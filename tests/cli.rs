@@ -312,3 +312,35 @@ fn the_library_entry_is_the_command_line() {
         ["scan", zero.to_str().unwrap(), "--fail-on", "static-dead", "-o", quiet.to_str().unwrap()];
     assert_eq!(shunt::cli::run(argv(&args)), 1);
 }
+
+/// `shunt::cli::run_quietly` (what the Python package calls) returns the
+/// one-line error the program prints after `shunt: error: `, and prints
+/// nothing itself.
+#[test]
+fn the_quiet_entry_returns_the_programs_error() {
+    let argv = |args: &[&str]| -> Vec<std::ffi::OsString> {
+        std::iter::once("shunt").chain(args.iter().copied()).map(Into::into).collect()
+    };
+    let missing = "no-such-model.onnx";
+    let outcome = shunt::cli::run_quietly(argv(&["scan", missing]));
+    assert_eq!((outcome.code, outcome.internal), (2, false));
+    let message = outcome.error.expect("an error for a missing file");
+    let binary = shunt(&["scan", missing]);
+    assert_eq!(binary.code, 2);
+    assert_eq!(binary.stderr.trim_end(), format!("shunt: error: {message}"));
+    // A usage error: clap's first line, without its `error: ` prefix.
+    let usage = shunt::cli::run_quietly(argv(&["scan", missing, "--no-such-option"]));
+    assert_eq!(usage.code, 2);
+    let line = usage.error.expect("a usage error");
+    assert!(line.contains("--no-such-option") && !line.starts_with("error:"), "{line}");
+    // Success and a --fail-on gate carry no error.
+    let zero = crate::util::fixture("zero_branch.onnx");
+    let dir = tempdir();
+    let out = dir.path().join("z.json");
+    let args =
+        ["scan", zero.to_str().unwrap(), "--fail-on", "static-dead", "-o", out.to_str().unwrap()];
+    assert_eq!(
+        shunt::cli::run_quietly(argv(&args)),
+        shunt::cli::Outcome { code: 1, error: None, internal: false }
+    );
+}

@@ -63,6 +63,7 @@
 //! | `input_bomb` | 2, "would hold … elements in one pass" (audit; also dims whose product overflows, and a lowered limit) |
 //! | `intent_files` | 2 for pin and expectation files that are bad TOML ("line 2, column 7"), devices, FIFOs, folders, over 16 MiB or missing, and for `pin` of a garbage model |
 //! | `r7_conv_weight_rank_one` | 0 (a Conv weight of rank 1 made the shape inference index past it) |
+//! | `r12_node_without_outputs` | 2 naming the node (a QuantizeLinear with no outputs panicked the placement rule) |
 //! | **lowered ops** | |
 //! | `lowered_ops_refuse_malformed_nodes` | 2 naming the node: a missing or extra input, an attribute of the wrong type, an unknown activation, a zero or NaN scale, a uint8 zero point of 300 |
 
@@ -1064,6 +1065,28 @@ fn r7_conv_weight_rank_one() {
     let m = model(block_graph(weight("w1", &[4, 4, 3, 3]), weight("w2", &[144])));
     let report = scanned(&write(dir.path(), "conv_rank1.onnx", &m));
     assert_eq!(report["summary"]["blocks"], 1, "{}", report["blocks"]);
+}
+
+#[test]
+fn r12_node_without_outputs() {
+    // Issue 12's campaign, found by the decode_scan fuzz target: a
+    // QuantizeLinear whose output list was emptied panicked the placement
+    // rule (it followed the node's first output). No ONNX operator has zero
+    // outputs, so the graph stage refuses such a node by name.
+    let dir = tempdir();
+    let path = crate::util::fixture("qdq_resnet_blocks.onnx");
+    let mut m = ModelProto::decode(fs::read(&path).unwrap().as_slice()).unwrap();
+    let graph = m.graph.as_mut().expect("a graph");
+    let node = graph
+        .node
+        .iter_mut()
+        .find(|n| n.name == "block0.bn2.qdq.quantize")
+        .expect("the fixture's QuantizeLinear after block0.bn2");
+    node.output.clear();
+    let bad = write(dir.path(), "no_outputs.onnx", &m);
+    refused(&bad, "node 'block0.bn2.qdq.quantize' (QuantizeLinear) has no outputs");
+    let audit = shunt(&["audit", &bad]);
+    assert_refused(&audit, &bad, "has no outputs");
 }
 
 // ---------------------------------------------------------------- lowered ops

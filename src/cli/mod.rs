@@ -35,16 +35,61 @@ const ERRORS: u8 = 2;
 /// named by `--fail-on` or a difference, 2 an error (the message is on
 /// standard error). A panic inside is caught and reported as one line.
 pub fn run(args: impl IntoIterator<Item = OsString>) -> u8 {
+    let outcome = execute(args, true);
+    if let Some(message) = &outcome.error {
+        let _ = if outcome.internal {
+            writeln!(std::io::stderr(), "shunt: internal error: {message} (please report this)")
+        } else {
+            writeln!(std::io::stderr(), "shunt: error: {message}")
+        };
+    }
+    outcome.code
+}
+
+/// What a command line came to, for front ends that report errors their own
+/// way (the Python package raises them).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Outcome {
+    /// The exit code, as [`run`] returns it.
+    pub code: u8,
+    /// For exit code 2, the one-line message [`run`] prints after
+    /// `shunt: error: ` (a usage error: the first line of clap's message).
+    pub error: Option<String>,
+    /// The error is a caught panic: a bug, not bad input.
+    pub internal: bool,
+}
+
+/// Runs the command line as [`run`] does, but returns the error instead of
+/// printing it. Reports still go where the arguments say (`--output FILE`,
+/// else standard output); `--help` and `--version` still print.
+pub fn run_quietly(args: impl IntoIterator<Item = OsString>) -> Outcome {
+    execute(args, false)
+}
+
+fn execute(args: impl IntoIterator<Item = OsString>, print_usage_errors: bool) -> Outcome {
+    let done = |code| Outcome { code, error: None, internal: false };
     let argv: Vec<OsString> = args.into_iter().collect();
     let parsed = match Args::try_parse_from(&argv) {
         Ok(a) => a,
         Err(e) => {
-            let _ = e.print();
-            return match e.kind() {
-                clap::error::ErrorKind::DisplayHelp | clap::error::ErrorKind::DisplayVersion => {
-                    SUCCESS
-                }
-                _ => ERRORS,
+            let shown = matches!(
+                e.kind(),
+                clap::error::ErrorKind::DisplayHelp | clap::error::ErrorKind::DisplayVersion
+            );
+            if shown || print_usage_errors {
+                let _ = e.print();
+            }
+            if shown {
+                return done(SUCCESS);
+            }
+            // Printed in full above for the program; one line for the others.
+            let rendered = e.render().to_string();
+            let first = rendered.lines().next().unwrap_or_default();
+            let first = first.strip_prefix("error: ").unwrap_or(first);
+            return Outcome {
+                code: ERRORS,
+                error: (!print_usage_errors).then(|| first.to_owned()),
+                internal: false,
             };
         }
     };
@@ -56,16 +101,15 @@ pub fn run(args: impl IntoIterator<Item = OsString>) -> u8 {
     let outcome = std::panic::catch_unwind(|| dispatch(parsed, &argv));
     std::panic::set_hook(hook);
     match outcome {
-        Ok(Ok(code)) => code,
+        Ok(Ok(code)) => done(code),
         Ok(Err(e)) => {
             if is_broken_pipe(&e) {
-                return SUCCESS;
+                return done(SUCCESS);
             }
             // Names in the message come from the file: escaped, so a name
             // with a newline or an escape sequence keeps the error one line.
             let message = crate::report::text::terminal_safe(&format!("{e:#}"));
-            let _ = writeln!(std::io::stderr(), "shunt: error: {message}");
-            ERRORS
+            Outcome { code: ERRORS, error: Some(message), internal: false }
         }
         Err(panic) => {
             let what = panic
@@ -74,9 +118,7 @@ pub fn run(args: impl IntoIterator<Item = OsString>) -> u8 {
                 .or_else(|| panic.downcast_ref::<&str>().copied())
                 .unwrap_or("unknown cause");
             let what = crate::report::text::terminal_safe(what);
-            let _ =
-                writeln!(std::io::stderr(), "shunt: internal error: {what} (please report this)");
-            ERRORS
+            Outcome { code: ERRORS, error: Some(what), internal: true }
         }
     }
 }

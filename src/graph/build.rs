@@ -110,6 +110,13 @@ pub fn build(
         let node_id = NodeId(index as u32);
         let named = !n.name.is_empty();
         let name = if named { n.name.clone() } else { format!("{}#{index}", n.op_type) };
+        if n.output.is_empty() {
+            // Every operator of the ONNX specification and of onnxruntime's
+            // contrib list declares at least one output (recalled from both
+            // documents, not from check-values); the stages below rely on a
+            // node's first output slot existing. Found by fuzzing decode_scan.
+            return Err(invalid(format!("node '{name}' ({}) has no outputs", n.op_type)));
+        }
         let mut outputs = Vec::with_capacity(n.output.len());
         for (slot, out) in n.output.iter().enumerate() {
             if out.is_empty() {
