@@ -180,10 +180,7 @@ pub(crate) fn model_info(
         graph_name: graph.map_or(String::new(), |g| g.name.clone()),
         nodes: graph.map_or(0, |g| g.node.len()),
         initializers: inits.len(),
-        parameters: inits
-            .iter()
-            .filter_map(|t| tensor::element_count(&t.dims))
-            .fold(0u64, u64::saturating_add),
+        parameters: graph.map_or(0, tensor::parameter_count),
         external_tensors,
         external_bytes,
         inputs: graph.map_or(Vec::new(), |g| tensor_rows(&g.input, true)),
