@@ -2,7 +2,7 @@
 //!
 //! Run `cargo run --release --example fixtures` from the repository root, or
 //! pass another target folder as the only argument. The list of fixtures
-//! lives in `shunt_testkit::fixtures`, so the integration tests rebuild the
+//! lives in `shunt_testkit::fixtures` (and `::structure`), so the integration tests rebuild the
 //! same bytes in memory and fail when a committed file is stale.
 
 use std::io::Write;
@@ -15,7 +15,11 @@ fn main() -> ExitCode {
         None => PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("fixtures"),
     };
     let mut stdout = std::io::stdout().lock();
-    match shunt_testkit::fixtures::write_all(&dir) {
+    let written = shunt_testkit::fixtures::write_all(&dir).and_then(|mut paths| {
+        paths.extend(shunt_testkit::structure::write_all(&dir)?);
+        Ok(paths)
+    });
+    match written {
         Ok(paths) => {
             for path in paths {
                 let size = std::fs::metadata(&path).map_or(0, |m| m.len());

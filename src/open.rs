@@ -110,10 +110,7 @@ impl FileFacts {
             graph_name: graph.map_or(String::new(), |g| g.name.clone()),
             nodes: graph.map_or(0, |g| g.node.len()),
             initializers: inits.len(),
-            parameters: inits
-                .iter()
-                .filter_map(|t| load::tensor::element_count(&t.dims))
-                .fold(0u64, u64::saturating_add),
+            parameters: graph.map_or(0, load::tensor::parameter_count),
             external_tensors,
             external_bytes,
             inputs: graph.map_or(Vec::new(), |g| {

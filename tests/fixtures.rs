@@ -184,7 +184,7 @@ fn outside_tools_accept_the_fixtures() {
     );
 }
 
-const CHECK_SCRIPT: &str = r#"
+pub(crate) const CHECK_SCRIPT: &str = r#"
 import sys
 import numpy as np
 import onnx

@@ -32,16 +32,19 @@ const RMS_TOL: f64 = 1e-4;
 /// Absolute tolerance of cosines.
 const COS_TOL: f64 = 1e-4;
 
-struct Case {
-    /// Name of the committed inputs and values.
-    name: &'static str,
+pub(crate) struct Case {
+    /// Name of the committed values.
+    pub name: &'static str,
+    /// Name of the committed inputs (a model built from another's weights
+    /// reuses that one's inputs).
+    pub inputs: &'static str,
     /// The model, relative to `fixtures/`.
-    model: &'static str,
+    pub model: &'static str,
     /// Extension of the inputs file.
-    ext: &'static str,
-    /// Its residual blocks: the census in fixtures/MANIFEST.txt or
-    /// fixtures/torch/MANIFEST.txt (`additive=`).
-    blocks: usize,
+    pub ext: &'static str,
+    /// Its residual blocks: the census in fixtures/MANIFEST.txt,
+    /// fixtures/torch/MANIFEST.txt or fixtures/structure/MANIFEST.txt.
+    pub blocks: usize,
 }
 
 fn root() -> &'static Path {
@@ -53,7 +56,7 @@ impl Case {
         format!("fixtures/{}", self.model)
     }
     fn inputs_rel(&self) -> String {
-        format!("tests/reference/inputs/{}.{}", self.name, self.ext)
+        format!("tests/reference/inputs/{}.{}", self.inputs, self.ext)
     }
     fn values_path(&self) -> PathBuf {
         root().join("tests/reference/values").join(format!("{}.json", self.name))
@@ -312,7 +315,7 @@ pub(crate) fn check_blocks_within(
     dead
 }
 
-fn check_case(case: &Case) -> usize {
+pub(crate) fn check_case(case: &Case) -> usize {
     let reference = committed(case);
     check_drift(case, &reference);
     let report = audit(&case.model_rel(), &case.inputs_rel());
@@ -321,13 +324,20 @@ fn check_case(case: &Case) -> usize {
 
 #[test]
 fn resnet18_b() {
-    check_case(&Case { name: "resnet18_b", model: "resnet18_b.onnx", ext: "npy", blocks: 8 });
+    check_case(&Case {
+        name: "resnet18_b",
+        inputs: "resnet18_b",
+        model: "resnet18_b.onnx",
+        ext: "npy",
+        blocks: 8,
+    });
 }
 
 #[test]
 fn preact_resnet14() {
     check_case(&Case {
         name: "preact_resnet14",
+        inputs: "preact_resnet14",
         model: "preact_resnet14.onnx",
         ext: "npy",
         blocks: 6,
@@ -336,18 +346,31 @@ fn preact_resnet14() {
 
 #[test]
 fn mobilenet_v2() {
-    check_case(&Case { name: "mobilenet_v2", model: "mobilenet_v2.onnx", ext: "npy", blocks: 10 });
+    check_case(&Case {
+        name: "mobilenet_v2",
+        inputs: "mobilenet_v2",
+        model: "mobilenet_v2.onnx",
+        ext: "npy",
+        blocks: 10,
+    });
 }
 
 #[test]
 fn text_postnorm_with_mask() {
-    check_case(&Case { name: "text_postnorm", model: "text_postnorm.onnx", ext: "npz", blocks: 4 });
+    check_case(&Case {
+        name: "text_postnorm",
+        inputs: "text_postnorm",
+        model: "text_postnorm.onnx",
+        ext: "npz",
+        blocks: 4,
+    });
 }
 
 #[test]
 fn tile_grader_dead_block_is_exactly_zero() {
     let dead = check_case(&Case {
         name: "tile_grader",
+        inputs: "tile_grader",
         model: "demo/tile_grader.onnx",
         ext: "npy",
         blocks: 8,
@@ -360,6 +383,7 @@ fn tile_grader_dead_block_is_exactly_zero() {
 fn torch_resnet_cifar_folded() {
     check_case(&Case {
         name: "resnet_cifar_folded",
+        inputs: "resnet_cifar_folded",
         model: "torch/resnet_cifar_folded.onnx",
         ext: "npy",
         blocks: 6,
@@ -372,6 +396,7 @@ fn torch_resnet_cifar_folded() {
 fn torch_encoder_postnorm() {
     check_case(&Case {
         name: "encoder_postnorm",
+        inputs: "encoder_postnorm",
         model: "torch/encoder_postnorm.onnx",
         ext: "npy",
         blocks: 4,
@@ -384,6 +409,7 @@ fn torch_encoder_postnorm() {
 fn torch_encoder_postnorm_one_sample_per_feed() {
     let case = Case {
         name: "encoder_postnorm",
+        inputs: "encoder_postnorm",
         model: "torch/encoder_postnorm.onnx",
         ext: "npy",
         blocks: 4,

@@ -19,6 +19,8 @@ mod fixtures;
 mod real_exports;
 // Statistics against onnxruntime on the same inputs.
 mod reference_stats;
+// Issue 15: control flow, batch axes, stages, unusual branches, sums that are not blocks.
+mod structure;
 // Optimised, quantised and half-precision models: lowering against onnxruntime.
 mod lowering;
 // Broken and hostile model files: each with its expected error.

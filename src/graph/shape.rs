@@ -18,6 +18,7 @@ pub(crate) fn infer(g: &mut Graph) {
         if let Some(shape) = infer_node(g, n) {
             let dtype = match g.node(n).op.as_str() {
                 "Cast" => attr::int(&g.node(n).attrs, "to").unwrap_or(0) as i32,
+                "Constant" => constant_fact(g, n).map_or(0, |(dtype, _)| dtype),
                 _ => g.input(n, 0).map_or(0, |v| g.value(v).fact.dtype),
             };
             let fact = &mut g.values[first.0 as usize].fact;
@@ -52,10 +53,33 @@ fn norm_axis(axis: i64, rank: usize) -> Option<usize> {
     (0..rank as i64).contains(&a).then_some(a as usize)
 }
 
+/// The element type and shape of a Constant node's value (the ONNX operator
+/// specification of Constant, recalled from memory: exactly one attribute of
+/// `value`, `sparse_value`, `value_float(s)`, `value_int(s)`, `value_string(s)`).
+fn constant_fact(g: &Graph, n: NodeId) -> Option<(i32, Vec<Dim>)> {
+    let a = g.node(n).attrs.first()?;
+    let dims = |d: &[i64]| {
+        d.iter().map(|&k| u64::try_from(k).ok().map(Dim::Known)).collect::<Option<Vec<Dim>>>()
+    };
+    match a.name.as_str() {
+        "value" => a.t.as_deref().and_then(|t| Some((t.data_type, dims(&t.dims)?))),
+        "sparse_value" => a
+            .sparse_tensor
+            .as_deref()
+            .and_then(|s| Some((s.values.as_ref().map_or(0, |v| v.data_type), dims(&s.dims)?))),
+        "value_float" => Some((1, Vec::new())),
+        "value_int" => Some((7, Vec::new())),
+        "value_floats" => Some((1, vec![Dim::Known(a.floats.len() as u64)])),
+        "value_ints" => Some((7, vec![Dim::Known(a.ints.len() as u64)])),
+        _ => None,
+    }
+}
+
 fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
     let node = g.node(n);
     let attrs = &node.attrs;
     match node.op.as_str() {
+        "Constant" if g.node(n).attrs.len() == 1 => constant_fact(g, n).map(|(_, shape)| shape),
         "Relu"
         | "LeakyRelu"
         | "Elu"

@@ -97,6 +97,66 @@ pub fn for_each_tensor<'a>(graph: &'a GraphProto, f: &mut dyn FnMut(&'a TensorPr
     }
 }
 
+/// The number of learned parameters stored in `graph`: the elements of every
+/// initializer, and of every Constant node whose value is a floating-point
+/// tensor of two or more elements (converters that write each weight as a
+/// Constant node leave no initializer at all), in the graph and in every
+/// subgraph it carries. Scalar Constants are the operands of arithmetic
+/// (epsilons, clip bounds, `sqrt(d)`) and integer Constants are shapes, axes
+/// and indices; neither is a learned weight. Saturates at `u64::MAX`.
+pub fn parameter_count(graph: &GraphProto) -> u64 {
+    let mut total = graph
+        .initializer
+        .iter()
+        .filter_map(|t| element_count(&t.dims))
+        .fold(0u64, u64::saturating_add);
+    for node in &graph.node {
+        if node.op_type == "Constant" && (node.domain.is_empty() || node.domain == "ai.onnx") {
+            total = total.saturating_add(constant_parameters(&node.attribute));
+        }
+        for a in &node.attribute {
+            for g in a.g.iter().chain(a.graphs.iter()) {
+                total = total.saturating_add(parameter_count(g));
+            }
+        }
+    }
+    total
+}
+
+/// The parameters a Constant node's attributes hold (see [`parameter_count`]).
+fn constant_parameters(attrs: &[crate::proto::AttributeProto]) -> u64 {
+    let weight = |n: u64| if n >= 2 { n } else { 0 };
+    let mut total = 0u64;
+    for a in attrs {
+        match a.name.as_str() {
+            "value" => {
+                if let Some(t) = a.t.as_deref()
+                    && is_float_type(t.data_type)
+                {
+                    total = total.saturating_add(element_count(&t.dims).map_or(0, weight));
+                }
+            }
+            "sparse_value" => {
+                if let Some(v) = a.sparse_tensor.as_deref().and_then(|s| s.values.as_ref())
+                    && is_float_type(v.data_type)
+                {
+                    total = total.saturating_add(element_count(&v.dims).map_or(0, weight));
+                }
+            }
+            "value_floats" => total = total.saturating_add(weight(a.floats.len() as u64)),
+            _ => {}
+        }
+    }
+    total
+}
+
+fn is_float_type(data_type: i32) -> bool {
+    matches!(
+        DataType::try_from(data_type),
+        Ok(DataType::Float | DataType::Float16 | DataType::Bfloat16 | DataType::Double)
+    )
+}
+
 /// The raw little-endian payload of a tensor stored as `raw_data` or in an
 /// external file; `None` when the values live in the typed `*_data` fields.
 fn raw_payload(

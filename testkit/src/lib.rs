@@ -4,12 +4,14 @@
 //!
 //! [`builder`] writes graphs op by op on the prost types of [`shunt::proto`],
 //! [`zoo`] assembles whole architectures from it, and [`fixtures`] lists the
-//! models committed under `fixtures/` with the census each one should give.
+//! models committed under `fixtures/` with the census each one should give
+//! ([`structure`]: the cases of issue 15, under `fixtures/structure/`).
 //! Everything here is deterministic: the same calls give the same bytes.
 
 pub mod builder;
 pub mod fixtures;
 pub mod large;
+pub mod structure;
 pub mod surgery;
 pub mod zoo;
 

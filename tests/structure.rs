@@ -1,0 +1,176 @@
+//! Issue 15, real models' structure: the cases of `fixtures/structure/` are
+//! what `shunt_testkit::structure` builds today, each scan gives the census
+//! its manifest line states (blocks by shortcut and placement, blocks per
+//! stage, merges that are not blocks by reason), and the measured statistics
+//! agree with onnxruntime on the same inputs.
+
+use std::collections::BTreeMap;
+
+use serde_json::Value;
+use shunt_testkit::structure::{self, Case};
+
+use crate::reference_stats;
+use crate::util::{fixture, python, shunt};
+
+const REGENERATE: &str = "run `cargo run --release --example fixtures` and commit the result";
+
+fn case(path: &str) -> Case {
+    structure::all()
+        .into_iter()
+        .find(|c| c.path == path)
+        .unwrap_or_else(|| panic!("no structure case {path}"))
+}
+
+/// `shunt scan --format json` of a committed case.
+fn scan(path: &str) -> Value {
+    let run = shunt(&["scan", fixture(path).to_str().unwrap(), "--format", "json"]);
+    assert_eq!(run.code, 0, "{path}: {}", run.stderr);
+    serde_json::from_str(&run.stdout).expect("shunt writes JSON")
+}
+
+fn counts(map: &Value) -> BTreeMap<String, usize> {
+    map.as_object()
+        .map(|m| m.iter().map(|(k, v)| (k.clone(), v.as_u64().unwrap() as usize)).collect())
+        .unwrap_or_default()
+}
+
+fn listed(items: &[(&str, usize)]) -> BTreeMap<String, usize> {
+    items.iter().map(|(k, n)| ((*k).to_owned(), *n)).collect()
+}
+
+#[test]
+fn committed_cases_are_current() {
+    let all = structure::all();
+    let mut stale = Vec::new();
+    for case in &all {
+        match std::fs::read(fixture(case.path)) {
+            Ok(bytes) if bytes == structure::encode(case) => {}
+            Ok(_) => stale.push(format!("{} differs", case.path)),
+            Err(err) => stale.push(format!("{} unreadable: {err}", case.path)),
+        }
+    }
+    match std::fs::read_to_string(fixture("structure/MANIFEST.txt")) {
+        Ok(text) if text == structure::manifest(&all) => {}
+        Ok(_) => stale.push("structure/MANIFEST.txt differs".to_owned()),
+        Err(err) => stale.push(format!("structure/MANIFEST.txt unreadable: {err}")),
+    }
+    assert!(stale.is_empty(), "stale cases ({REGENERATE}):\n{}", stale.join("\n"));
+}
+
+/// Every case's scan gives the census of its manifest line; the source of
+/// each census is named in that line (check-values ids, a module definition,
+/// or "recalled from memory").
+#[test]
+fn cases_give_their_census() {
+    let mut failures = Vec::new();
+    for case in structure::all() {
+        let r = scan(case.path);
+        let e = &case.expect;
+        let by_shortcut = counts(&r["summary"]["by_shortcut"]);
+        let by_placement = counts(&r["summary"]["by_placement"]);
+        let stages: Vec<usize> = r["stages"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|s| s["blocks"].as_array().unwrap().len())
+            .collect();
+        let mut not_blocks = BTreeMap::new();
+        for n in r["not_blocks"].as_array().unwrap() {
+            *not_blocks.entry(n["reason"].as_str().unwrap().to_owned()).or_insert(0) += 1;
+        }
+        let unknown_stage = r["blocks"].as_array().unwrap().iter().any(|b| b["stage"].is_null());
+        let mut problems = Vec::new();
+        if by_shortcut != listed(&e.shortcuts) {
+            problems.push(format!("shortcuts {by_shortcut:?}, expected {:?}", e.shortcuts));
+        }
+        if by_placement != listed(&e.placements) {
+            problems.push(format!("placements {by_placement:?}, expected {:?}", e.placements));
+        }
+        if stages != e.stages {
+            problems.push(format!("stages {stages:?}, expected {:?}", e.stages));
+        }
+        if not_blocks != listed(&e.not_blocks) {
+            problems.push(format!("not_blocks {not_blocks:?}, expected {:?}", e.not_blocks));
+        }
+        if unknown_stage {
+            problems.push("a block in stage unknown".to_owned());
+        }
+        if !problems.is_empty() {
+            failures.push(format!("{} [{}]:\n  {}", case.path, case.source, problems.join("\n  ")));
+        }
+    }
+    assert!(failures.is_empty(), "census mismatches:\n{}", failures.join("\n"));
+}
+
+/// Item 8: parameters held in Constant nodes are counted. The expected count
+/// is numpy's: the elements of every floating-point Constant value of two or
+/// more elements, counted by the onnx package (pinned reference venv); and
+/// it equals the parameters of fixtures/resnet18_b.onnx, whose initializers
+/// the case moved into Constant nodes.
+#[test]
+fn constant_node_weights_are_parameters() {
+    let path = "structure/resnet18_constant_weights.onnx";
+    let r = scan(path);
+    let counted = python(
+        "import sys, numpy as np, onnx\n\
+         m = onnx.load(sys.argv[1])\n\
+         floats = {1, 10, 11, 16}\n\
+         n = sum(int(np.prod(a.t.dims)) for x in m.graph.node if x.op_type == 'Constant'\n\
+                 for a in x.attribute if a.name == 'value' and a.t.data_type in floats\n\
+                 and int(np.prod(a.t.dims)) >= 2)\n\
+         print(n, len(m.graph.initializer))",
+        &[fixture(path).to_str().unwrap()],
+    );
+    let mut parts = counted.split_whitespace().map(|w| w.parse::<u64>().unwrap());
+    let (want, initializers) = (parts.next().unwrap(), parts.next().unwrap());
+    assert_eq!(initializers, 0, "the case holds no initializer");
+    assert!(want > 0);
+    assert_eq!(r["model"]["parameters"].as_u64(), Some(want), "{path}: parameters");
+    let original = scan("resnet18_b.onnx");
+    assert_eq!(r["model"]["parameters"], original["model"]["parameters"]);
+    // The layers are read from the Constant weights as from initializers.
+    let layers = |r: &Value| -> Vec<Value> {
+        r["blocks"].as_array().unwrap().iter().map(|b| b["branch"]["layers"].clone()).collect()
+    };
+    let strip = |v: Vec<Value>| -> Vec<Vec<(Value, Value, Value)>> {
+        v.iter()
+            .map(|l| {
+                l.as_array()
+                    .unwrap()
+                    .iter()
+                    .map(|x| {
+                        (x["kernel"].clone(), x["in_channels"].clone(), x["out_channels"].clone())
+                    })
+                    .collect()
+            })
+            .collect()
+    };
+    assert_eq!(strip(layers(&r)), strip(layers(&original)));
+    assert_eq!(r["stages"], original["stages"], "stages from shapes inferred through Constants");
+}
+
+/// Item 8 against onnxruntime: per-block RMS of shortcut and branch on the
+/// inputs of resnet18_b (the same weights, held in Constant nodes).
+#[test]
+fn constant_node_weights_measured_like_onnxruntime() {
+    let path = "structure/resnet18_constant_weights.onnx";
+    reference_stats::check_case(&reference_stats::Case {
+        name: "resnet18_constant_weights",
+        inputs: "resnet18_b",
+        model: path,
+        ext: "npy",
+        blocks: case(path).expect.blocks(),
+    });
+}
+
+/// [ONNX checker, onnx==1.19.1] accepts every case, and onnxruntime loads
+/// and runs each (the same check as the committed fixtures').
+#[test]
+fn outside_tools_accept_the_cases() {
+    let paths: Vec<String> =
+        structure::all().iter().map(|c| fixture(c.path).display().to_string()).collect();
+    let args: Vec<&str> = paths.iter().map(String::as_str).collect();
+    let stdout = python(crate::fixtures::CHECK_SCRIPT, &args);
+    let expected = format!("{0} of {0} fixtures pass", paths.len());
+    assert!(stdout.contains(&expected), "outside checks:\n{stdout}");
+}
