@@ -432,6 +432,7 @@ pub(crate) fn structure_report(command: &str, model: ModelInfo, a: &Analysis) ->
                     Reason::Independent => "independent-inputs",
                     Reason::NoShortcut => "no-shortcut",
                     Reason::NoLearnedLayer => "no-learned-layer",
+                    Reason::HeadSum => "sum-of-heads",
                 }
                 .to_owned(),
                 detail: r.reason.describe().to_owned(),

@@ -174,3 +174,57 @@ fn outside_tools_accept_the_cases() {
     let expected = format!("{0} of {0} fixtures pass", paths.len());
     assert!(stdout.contains(&expected), "outside checks:\n{stdout}");
 }
+
+/// Item 6: the sums of two heads on one map are merges that are not blocks,
+/// with their reason; the arithmetic on slices of one head output stays a
+/// merge without a learned layer. Each of the `sum-of-heads` merges was a
+/// `projection` block before the rule (a 1x1 classifier of the fork as its
+/// "shortcut").
+#[test]
+fn sums_of_heads_are_not_blocks() {
+    for (path, merges) in [
+        (
+            "structure/segmentation_head_sum.onnx",
+            vec![("fuse2", "sum-of-heads"), ("fuse1", "sum-of-heads")],
+        ),
+        (
+            "structure/detector_box_decode.onnx",
+            vec![("decode.max", "sum-of-heads"), ("decode2.corner", "no-learned-layer")],
+        ),
+    ] {
+        let r = scan(path);
+        let got: Vec<(&str, &str)> = r["not_blocks"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|n| (n["node"]["name"].as_str().unwrap(), n["reason"].as_str().unwrap()))
+            .collect();
+        assert_eq!(got, merges, "{path}");
+        for n in r["not_blocks"].as_array().unwrap() {
+            if n["reason"] == "sum-of-heads" {
+                assert!(n["detail"].as_str().unwrap().contains("two heads"), "{n}");
+            }
+        }
+        // No block is a projection: the real blocks are the backbone's.
+        assert!(
+            r["blocks"].as_array().unwrap().iter().all(|b| b["shortcut"]["kind"] == "identity")
+        );
+    }
+    // A feature pyramid's top-down sums are read by the 3x3 smoothing convs:
+    // still blocks (fixtures/MANIFEST.txt, fpn_topdown).
+    let fpn = scan("fpn_topdown.onnx");
+    assert_eq!(fpn["summary"]["by_shortcut"]["projection"], 2);
+}
+
+/// Item 6 against onnxruntime: the backbone's blocks of the detector.
+#[test]
+fn detector_blocks_measured_like_onnxruntime() {
+    let path = "structure/detector_box_decode.onnx";
+    reference_stats::check_case(&reference_stats::Case {
+        name: "detector_box_decode",
+        inputs: "detector_box_decode",
+        model: path,
+        ext: "npy",
+        blocks: case(path).expect.blocks(),
+    });
+}

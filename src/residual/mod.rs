@@ -106,6 +106,10 @@ pub enum Reason {
     NoShortcut,
     /// No path from the fork holds a layer with weights: elementwise arithmetic.
     NoLearnedLayer,
+    /// The sum of two heads on a common map: the would-be shortcut ends in a
+    /// learned layer of the fork, and no learned layer follows the sum (it is
+    /// a prediction, not a residual stream that later layers read).
+    HeadSum,
 }
 
 impl Reason {
@@ -115,6 +119,10 @@ impl Reason {
             Reason::Independent => "its inputs come from independent signals",
             Reason::NoShortcut => "no input reaches it from the fork as a shortcut",
             Reason::NoLearnedLayer => "no path from the fork holds a layer with weights",
+            Reason::HeadSum => {
+                "it adds two heads computed from one map: one input is a learned layer of the \
+                 fork, not its identity, and no learned layer reads the sum"
+            }
         }
     }
 }
@@ -133,6 +141,7 @@ pub struct Detection {
 /// Finds every residual block and concatenative skip of `g`.
 pub fn find_blocks(g: &Graph, dom: &Dominance) -> Detection {
     let mut det = Detection::default();
+    let mut learned_after: Option<Vec<bool>> = None;
     for &n in &g.order {
         let node = g.node(n);
         let is_merge = op::is_merge(&node.op);
@@ -153,6 +162,20 @@ pub fn find_blocks(g: &Graph, dom: &Dominance) -> Detection {
         let outcome = match dom.fork(output) {
             Some(fork) => join(g, fork, &signals, is_merge).map(|j| (fork, j)),
             None => Err(Reason::Independent),
+        };
+        // A projected shortcut into a sum that no learned layer reads: two
+        // heads on one map (a segmentation head's two classifiers, a
+        // detector's offset and size heads), not a block.
+        let outcome = match outcome {
+            Ok((_, (shortcut, ..)))
+                if is_merge
+                    && shortcut.projected
+                    && !learned_after.get_or_insert_with(|| learned_downstream(g))
+                        [n.0 as usize] =>
+            {
+                Err(Reason::HeadSum)
+            }
+            other => other,
         };
         match outcome {
             Ok((fork, (shortcut, branch_inputs, branch))) => {
@@ -198,6 +221,20 @@ pub fn find_blocks(g: &Graph, dom: &Dominance) -> Detection {
         det.concat_skips[i].depth = depth;
     }
     det
+}
+
+/// For each node, whether a learned layer reads (directly or further on)
+/// any of its outputs: one pass in reverse topological order.
+fn learned_downstream(g: &Graph) -> Vec<bool> {
+    let mut after = vec![false; g.nodes.len()];
+    for &n in g.order.iter().rev() {
+        after[n.0 as usize] = g
+            .node(n)
+            .outputs
+            .iter()
+            .any(|&v| g.consumers(v).any(|c| after[c.0 as usize] || op::is_parametrised(g, c)));
+    }
+    after
 }
 
 /// Splits the signal inputs of a merge into one shortcut and the branch.

@@ -18,7 +18,8 @@ use prost::Message;
 use shunt::proto::attribute_proto::AttributeType;
 use shunt::proto::{AttributeProto, ModelProto, NodeProto};
 
-use crate::zoo;
+use crate::builder::{Conv, ModelBuilder};
+use crate::zoo::{self, BlockDesign, ImageSpec, ResBlock, Shortcut};
 
 /// What a scan of a case should find.
 #[derive(Debug, Clone, PartialEq, Eq, Default)]
@@ -60,18 +61,123 @@ pub struct Case {
 /// Every case, in manifest order.
 pub fn all() -> Vec<Case> {
     let r18 = zoo::ResNetConfig { width_divisor: 32, ..zoo::ResNetConfig::resnet18() };
-    vec![Case {
-        path: "structure/resnet18_constant_weights.onnx",
-        model: weights_as_constants(zoo::resnet(&r18)),
-        isolates: "item 8: fixtures/resnet18_b.onnx with every initializer a Constant node and no value_info",
-        expect: Expect {
-            shortcuts: vec![("identity", 5), ("projection", 3)],
-            placements: vec![("post-activation", 8)],
-            stages: vec![2, 2, 2, 2],
-            not_blocks: Vec::new(),
+    vec![
+        Case {
+            path: "structure/resnet18_constant_weights.onnx",
+            model: weights_as_constants(zoo::resnet(&r18)),
+            isolates: "item 8: fixtures/resnet18_b.onnx with every initializer a Constant node and no value_info",
+            expect: Expect {
+                shortcuts: vec![("identity", 5), ("projection", 3)],
+                placements: vec![("post-activation", 8)],
+                stages: vec![2, 2, 2, 2],
+                not_blocks: Vec::new(),
+            },
+            source: "R1 R2 R3",
         },
-        source: "R1 R2 R3",
-    }]
+        Case {
+            path: "structure/segmentation_head_sum.onnx",
+            model: segmentation_head_sum(),
+            isolates: "item 6: FCN-style head, 1x1 classifiers of three backbone maps summed coarse to fine; two real blocks",
+            expect: Expect {
+                shortcuts: vec![("identity", 2)],
+                placements: vec![("post-activation", 2)],
+                stages: vec![1, 1],
+                not_blocks: vec![("sum-of-heads", 2)],
+            },
+            source: "FCN skip architecture (Long et al., arXiv:1411.4038, Fig. 3), recalled from memory; torchvision's FCN upsamples by interpolation",
+        },
+        Case {
+            path: "structure/detector_box_decode.onnx",
+            model: detector_box_decode(),
+            isolates: "item 6: centre + size/2 from an offset and a size head on one map; corner from two slices of one head output",
+            expect: Expect {
+                shortcuts: vec![("identity", 2)],
+                placements: vec![("post-activation", 2)],
+                stages: vec![1, 1],
+                not_blocks: vec![("no-learned-layer", 1), ("sum-of-heads", 1)],
+            },
+            source: "CenterNet (Objects as Points, arXiv:1904.07850) offset and size heads, recalled from memory",
+        },
+    ]
+}
+
+/// A small backbone for the head cases: a stride-2 stem, an identity basic
+/// block `layer1.0` at 16x16, a stride-2 stage `down2` and an identity
+/// block `layer2.0` at 8x8. Returns the two block outputs.
+fn backbone(b: &mut ModelBuilder, x: &str) -> (String, String) {
+    let stem = b.conv_bn("stem.conv", "stem.bn", x, &Conv::new(4, 3).stride(2), false);
+    let stem = b.relu("stem.relu", &stem);
+    let basic = |prefix: &str, width| ResBlock {
+        prefix: prefix.to_owned(),
+        width,
+        out: width,
+        stride: 1,
+        design: BlockDesign::Basic,
+        shortcut: Shortcut::ProjectWhereNeeded,
+        fold_bn: false,
+    };
+    let c1 = zoo::post_activation_block(b, &stem, &basic("layer1.0", 4));
+    let down = b.conv_bn("down2.conv", "down2.bn", &c1, &Conv::new(8, 3).stride(2), false);
+    let down = b.relu("down2.relu", &down);
+    let c2 = zoo::post_activation_block(b, &down, &basic("layer2.0", 8));
+    (c1, c2)
+}
+
+/// Item 6: a segmentation head that sums the predictions of 1x1 classifiers
+/// on three maps, coarse to fine (FCN's skip architecture, as torchvision's
+/// FCN spells upsampling: interpolation, no learned layer), then upsamples
+/// to the input size. `fuse3` and `fuse2` each add a classifier of a map to
+/// a prediction computed further down from the same map: the sum of two
+/// heads, read by no learned layer.
+pub fn segmentation_head_sum() -> ModelProto {
+    let image = ImageSpec { classes: 5, ..ImageSpec::rgb(32) };
+    let (mut b, x) = zoo::image_model("segmentation_head_sum", 17, &image);
+    let (c1, c2) = backbone(&mut b, &x);
+    let c3 = b.conv_bn("down3.conv", "down3.bn", &c2, &Conv::new(16, 3).stride(2), false);
+    let c3 = b.relu("down3.relu", &c3);
+    let classifier = Conv::new(image.classes, 1).with_bias();
+    let score3 = b.conv("score3", &c3, &classifier);
+    let up3 = b.upsample2x("score3.up", &score3);
+    let score2 = b.conv("score2", &c2, &classifier);
+    let fuse2 = b.add("fuse2", &score2, &up3);
+    let up2 = b.upsample2x("fuse2.up", &fuse2);
+    let score1 = b.conv("score1", &c1, &classifier);
+    let fuse1 = b.add("fuse1", &score1, &up2);
+    let out = b.upsample2x("out", &fuse1);
+    b.output(&out);
+    b.finish()
+}
+
+/// Item 6: a detector head on the backbone's 8x8 map: a shared 3x3 conv,
+/// then an offset head and a size head (1x1 convs to 2 channels) decoded as
+/// `centre = offset + grid`, `max = centre + size / 2` (the sum of two
+/// heads) and `min = centre - size / 2`; and a box head of 4 channels whose
+/// two slices are decoded as `corner = xy + wh / 2` (arithmetic on one head
+/// output, no learned layer between its fork and the sum).
+pub fn detector_box_decode() -> ModelProto {
+    let (mut b, x) = zoo::image_model("detector_box_decode", 17, &ImageSpec::rgb(32));
+    let (_, c2) = backbone(&mut b, &x);
+    let h = b.conv("head.conv", &c2, &Conv::new(8, 3).with_bias());
+    let h = b.relu("head.relu", &h);
+    let offset = b.conv("head.offset", &h, &Conv::new(2, 1).with_bias());
+    let size = b.conv("head.size", &h, &Conv::new(2, 1).with_bias());
+    // Channel 0 holds each cell's column, channel 1 its row.
+    let grid: Vec<f32> =
+        (0..2 * 64).map(|i| if i < 64 { i % 8 } else { (i - 64) / 8 } as f32).collect();
+    let grid = b.init("decode.grid", &[1, 2, 8, 8], grid);
+    let centre = b.add("decode.centre", &offset, &grid);
+    let half = b.mul_const("decode.half", &size, &[], vec![0.5]);
+    let max = b.add("decode.max", &centre, &half);
+    let min = b.sub("decode.min", &centre, &half);
+    let boxes = b.conv("head.box", &h, &Conv::new(4, 1).with_bias());
+    let xy = b.slice("decode2.xy", &boxes, &[0], &[2], &[1], &[1]);
+    let wh = b.slice("decode2.wh", &boxes, &[2], &[4], &[1], &[1]);
+    let half_wh = b.mul_const("decode2.half", &wh, &[], vec![0.5]);
+    let corner = b.add("decode2.corner", &xy, &half_wh);
+    for out in [&min, &max, &corner] {
+        b.output(out);
+    }
+    b.finish()
 }
 
 /// A converter's output: every initializer of `model` becomes a Constant

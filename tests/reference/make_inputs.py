@@ -27,6 +27,8 @@ def main():
     np.save(os.path.join(OUT, "mobilenet_v2.npy"), images(3, 3))
     np.save(os.path.join(OUT, "tile_grader.npy"), images(4, 1))
     np.save(os.path.join(OUT, "resnet_cifar_folded.npy"), images(5, 3))
+    # fixtures/structure/ (issue 15); resnet18_constant_weights reuses resnet18_b's.
+    np.save(os.path.join(OUT, "detector_box_decode.npy"), images(8, 3))
 
     # fixtures/text_postnorm.onnx: input_ids [N, 8] int64 into a 50-row
     # table, attention_mask [N, 8] float (1 = attend); samples end with 0..3
