@@ -217,6 +217,7 @@ pub fn shortcut_name(kind: ShortcutKind) -> &'static str {
         ShortcutKind::Identity => "identity",
         ShortcutKind::Projection => "projection",
         ShortcutKind::Resampled => "resampled",
+        ShortcutKind::Parameter => "parameter",
     }
 }
 

@@ -162,7 +162,7 @@ pub fn write_pin(pin: &Pin, source: &str, out: &mut dyn io::Write) -> io::Result
 }
 
 /// The shortcut kinds a pin or expectation file may name.
-pub(crate) const SHORTCUTS: [&str; 3] = ["identity", "projection", "resampled"];
+pub(crate) const SHORTCUTS: [&str; 4] = ["identity", "projection", "resampled", "parameter"];
 /// The placements a pin or expectation file may name.
 pub(crate) const PLACEMENTS: [&str; 5] =
     ["post-activation", "pre-activation", "pre-norm", "post-norm", "unactivated"];

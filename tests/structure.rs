@@ -92,6 +92,10 @@ fn cases_give_their_census() {
         if not_blocks != listed(&e.not_blocks) {
             problems.push(format!("not_blocks {not_blocks:?}, expected {:?}", e.not_blocks));
         }
+        let concats = r["concat_skips"].as_array().unwrap().len();
+        if concats != e.concat_skips {
+            problems.push(format!("concat_skips {concats}, expected {}", e.concat_skips));
+        }
         if unknown_stage {
             problems.push("a block in stage unknown".to_owned());
         }
@@ -223,6 +227,47 @@ fn detector_blocks_measured_like_onnxruntime() {
     reference_stats::check_case(&reference_stats::Case {
         name: "detector_box_decode",
         inputs: "detector_box_decode",
+        model: path,
+        ext: "npy",
+        blocks: case(path).expect.blocks(),
+    });
+}
+
+/// Item 5: the class-attention layer's merge into the learned class token
+/// is a block of its own shortcut kind, forking at the expanded token; the
+/// second layer's stream forks at its own class token although the branch
+/// also reads the patches ([K1]).
+#[test]
+fn class_token_shortcut_is_a_parameter() {
+    let r = scan("structure/cait_class_attention.onnx");
+    let blocks = r["blocks"].as_array().unwrap();
+    assert_eq!(blocks.len(), 8, "the census of fixtures/structure/MANIFEST.txt");
+    let by_name = |name: &str| blocks.iter().find(|b| b["merge"]["name"] == name).unwrap();
+    let first = by_name("cls_blocks.0.add1");
+    assert_eq!(first["shortcut"]["kind"], "parameter");
+    assert_eq!(first["fork"], "cls_token.expand");
+    assert_eq!(first["placement_node"]["op_type"], "LayerNormalization");
+    let second = by_name("cls_blocks.1.add1");
+    assert_eq!(second["shortcut"]["kind"], "identity");
+    assert_eq!(second["fork"], "cls_blocks.0.add2");
+    for b in blocks {
+        let scale = b["branch"]["end_scale"]["max"].as_f64().expect("a LayerScale end scale");
+        assert!((scale - 0.1).abs() < 1e-6, "LayerScale {scale}");
+    }
+    // A bias or positional add is still not a merge: the constant must also
+    // be read by the branch (fixtures/trap_positional_add.onnx stays plain).
+    let trap = scan("trap_positional_add.onnx");
+    assert_eq!(trap["summary"]["blocks"], 0);
+}
+
+/// Item 5 against onnxruntime: every block, the parameter shortcut measured
+/// as the expanded class token.
+#[test]
+fn class_attention_measured_like_onnxruntime() {
+    let path = "structure/cait_class_attention.onnx";
+    reference_stats::check_case(&reference_stats::Case {
+        name: "cait_class_attention",
+        inputs: "cait_class_attention",
         model: path,
         ext: "npy",
         blocks: case(path).expect.blocks(),

@@ -360,7 +360,10 @@ fn openings(g: &Graph, fork: ValueId, branch: &HashSet<NodeId>) -> Vec<NodeId> {
             if !branch.contains(&c) || !seen.insert(c) {
                 continue;
             }
-            if op::family(g, c) == Family::PassThrough {
+            // A Concat joins the fork with other tokens (the class token
+            // with the patches of a class-attention layer, [K1]): what opens
+            // the branch is what reads the joined tensor.
+            if op::family(g, c) == Family::PassThrough || op::is_concat(&g.node(c).op) {
                 stack.extend(g.node(c).outputs.iter().copied());
             } else {
                 out.push(c);

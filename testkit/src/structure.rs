@@ -18,7 +18,7 @@ use prost::Message;
 use shunt::proto::attribute_proto::AttributeType;
 use shunt::proto::{AttributeProto, ModelProto, NodeProto};
 
-use crate::builder::{Conv, ModelBuilder};
+use crate::builder::{Attention, Conv, Dim, Form, Init, ModelBuilder};
 use crate::zoo::{self, BlockDesign, ImageSpec, ResBlock, Shortcut};
 
 /// What a scan of a case should find.
@@ -33,6 +33,8 @@ pub struct Expect {
     pub stages: Vec<usize>,
     /// Merges that are not blocks, by reason (`no-learned-layer`, …).
     pub not_blocks: Vec<(&'static str, usize)>,
+    /// Concatenative skips.
+    pub concat_skips: usize,
 }
 
 impl Expect {
@@ -71,6 +73,7 @@ pub fn all() -> Vec<Case> {
                 placements: vec![("post-activation", 8)],
                 stages: vec![2, 2, 2, 2],
                 not_blocks: Vec::new(),
+                concat_skips: 0,
             },
             source: "R1 R2 R3",
         },
@@ -83,6 +86,7 @@ pub fn all() -> Vec<Case> {
                 placements: vec![("post-activation", 2)],
                 stages: vec![1, 1],
                 not_blocks: vec![("sum-of-heads", 2)],
+                concat_skips: 0,
             },
             source: "FCN skip architecture (Long et al., arXiv:1411.4038, Fig. 3), recalled from memory; torchvision's FCN upsamples by interpolation",
         },
@@ -95,10 +99,97 @@ pub fn all() -> Vec<Case> {
                 placements: vec![("post-activation", 2)],
                 stages: vec![1, 1],
                 not_blocks: vec![("no-learned-layer", 1), ("sum-of-heads", 1)],
+                concat_skips: 0,
             },
             source: "CenterNet (Objects as Points, arXiv:1904.07850) offset and size heads, recalled from memory",
         },
+        Case {
+            path: "structure/cait_class_attention.onnx",
+            model: cait_class_attention(),
+            isolates: "item 5: CaiT layout, 2 self-attention then 2 class-attention layers; the first adds its branch to the learned class token expanded to the batch; no value_info",
+            expect: Expect {
+                shortcuts: vec![("identity", 7), ("parameter", 1)],
+                placements: vec![("pre-norm", 8)],
+                stages: vec![4, 4],
+                not_blocks: Vec::new(),
+                // The second class-attention layer joins the patches with the
+                // class token computed from them: a Concat of a tensor and a
+                // path from it with learned layers, as in DenseNet.
+                concat_skips: 1,
+            },
+            source: "K1 (CaiT: class-attention layers update only the class token, pre-norm, LayerScale)",
+        },
     ]
+}
+
+/// Item 5: a CaiT-like network ([K1]): a 4x4 stride-4 patch embedding to 8
+/// channels (16 tokens), two pre-norm self-attention layers, then two
+/// class-attention layers that update only the class token: `cls = cls +
+/// γ1 · CA(LN(concat(cls, x)))`, `cls = cls + γ2 · MLP(LN(cls))`, where the
+/// first layer's `cls` is the learned `[1, 1, 8]` token expanded to the
+/// batch (`Expand` to `concat(Shape(x)[0:1], [1, 8])`, as PyTorch exports
+/// `cls_token.expand(B, -1, -1)`). Every branch ends in a per-channel
+/// LayerScale of 0.1. No `value_info`: the expanded shape is inferred.
+pub fn cait_class_attention() -> ModelProto {
+    let d = 8;
+    let image = ImageSpec { value_info: false, ..ImageSpec::rgb(16) };
+    let (mut b, x) = zoo::image_model("cait_class_attention", 17, &image);
+    let patches = b.conv("patch_embed", &x, &Conv::new(d, 4).stride(4).pad(0).with_bias());
+    let tokens = b.reshape("patch_embed.flatten", &patches, &[0, d, 16]);
+    let mut x = b.transpose("patch_embed.tokens", &tokens, &[0, 2, 1]);
+    let gamma =
+        |b: &mut ModelBuilder, name: &str, y: &str| b.mul_const(name, y, &[d], vec![0.1; 8]);
+    let mlp = |b: &mut ModelBuilder, p: &str, y: &str| {
+        let n = b.layer_norm(&format!("{p}.norm2"), y, Form::Fused);
+        let h = b.linear(&format!("{p}.mlp.fc1"), &n, 4 * d, &Init::HeNormal, true);
+        let h = b.gelu(&format!("{p}.mlp.act"), &h, Form::Decomposed);
+        let h = b.linear(&format!("{p}.mlp.fc2"), &h, d, &Init::HeNormal, true);
+        gamma(b, &format!("{p}.gamma2"), &h)
+    };
+    for i in 0..2 {
+        let p = format!("blocks.{i}");
+        let n = b.layer_norm(&format!("{p}.norm1"), &x, Form::Fused);
+        let spec = Attention { heads: 2, mask: None, rotary: None };
+        let a = b.attention(&format!("{p}.attn"), &n, &spec);
+        let a = gamma(&mut b, &format!("{p}.gamma1"), &a);
+        x = b.add(&format!("{p}.add1"), &x, &a);
+        let h = mlp(&mut b, &p, &x);
+        x = b.add(&format!("{p}.add2"), &x, &h);
+    }
+    // The class token, expanded to the batch of x.
+    let token = b.init_filled("cls_token", &[1, 1, d], &Init::Normal(1.0), 1);
+    let shape = b.node("Shape", "cls_token.shape", &[&x], &[]);
+    let batch = b.slice("cls_token.batch", &shape, &[0], &[1], &[0], &[1]);
+    let rest = b.init_i64("cls_token.rest", &[2], vec![1, d]);
+    let target = b.concat("cls_token.target", &[&batch, &rest], 0);
+    let mut cls = b.node("Expand", "cls_token.expand", &[&token, &target], &[]);
+    b.declare_shape(&cls, &[Dim::batch(), 1.into(), d.into()]);
+    let init = Init::Normal(1.0 / (d as f32).sqrt());
+    for i in 0..2 {
+        let p = format!("cls_blocks.{i}");
+        let u = b.concat(&format!("{p}.concat"), &[&cls, &x], 1);
+        let n = b.layer_norm(&format!("{p}.norm1"), &u, Form::Fused);
+        let first = b.slice(&format!("{p}.attn.cls"), &n, &[0], &[1], &[1], &[1]);
+        let q = b.linear(&format!("{p}.attn.q"), &first, d, &init, true);
+        let k = b.linear(&format!("{p}.attn.k"), &n, d, &init, true);
+        let v = b.linear(&format!("{p}.attn.v"), &n, d, &init, true);
+        let k_t = b.transpose(&format!("{p}.attn.k.t"), &k, &[0, 2, 1]);
+        let scores = b.matmul(&format!("{p}.attn.scores"), &q, &k_t);
+        let scaled =
+            b.mul_const(&format!("{p}.attn.scale"), &scores, &[], vec![1.0 / (d as f32).sqrt()]);
+        let probs = b.softmax(&format!("{p}.attn.softmax"), &scaled, -1);
+        let context = b.matmul(&format!("{p}.attn.context"), &probs, &v);
+        let a = b.linear(&format!("{p}.attn.proj"), &context, d, &init, true);
+        let a = gamma(&mut b, &format!("{p}.gamma1"), &a);
+        cls = b.add(&format!("{p}.add1"), &cls, &a);
+        let h = mlp(&mut b, &p, &cls);
+        cls = b.add(&format!("{p}.add2"), &cls, &h);
+    }
+    let n = b.layer_norm("norm", &cls, Form::Fused);
+    let flat = b.reshape("head.flatten", &n, &[0, d]);
+    let logits = b.gemm("head.fc", &flat, image.classes, &Init::HeNormal);
+    b.output(&logits);
+    b.finish()
 }
 
 /// A small backbone for the head cases: a stride-2 stem, an identity basic
@@ -219,7 +310,7 @@ pub fn manifest(cases: &[Case]) -> String {
         "# shunt structure cases (issue 15), written by `cargo run --release --example fixtures`;\n",
         "# do not edit by hand. Columns: file | item and what it isolates | expected census | source.\n",
         "# Census: blocks by shortcut kind and by placement, blocks per stage in order, and merges\n",
-        "# that are not blocks by reason.\n",
+        "# that are not blocks by reason, and concatenative skips.\n",
     ));
     let list = |items: &[(&str, usize)]| {
         items.iter().map(|(k, n)| format!("{k}={n}")).collect::<Vec<_>>().join(" ")
@@ -229,7 +320,7 @@ pub fn manifest(cases: &[Case]) -> String {
         let stages: Vec<String> = e.stages.iter().map(usize::to_string).collect();
         let _ = writeln!(
             out,
-            "{} | {} | blocks={} ({}; {}) stages=[{}] not-blocks=({}) | {}",
+            "{} | {} | blocks={} ({}; {}) stages=[{}] not-blocks=({}) concat={} | {}",
             case.path,
             case.isolates,
             e.blocks(),
@@ -237,6 +328,7 @@ pub fn manifest(cases: &[Case]) -> String {
             list(&e.placements),
             stages.join(","),
             list(&e.not_blocks),
+            e.concat_skips,
             case.source,
         );
     }

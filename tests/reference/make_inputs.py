@@ -15,9 +15,9 @@ OUT = os.path.join("tests", "reference", "inputs")
 SAMPLES = 4
 
 
-def images(seed, channels):
+def images(seed, channels, size=32):
     rng = np.random.default_rng(seed)
-    return rng.standard_normal((SAMPLES, channels, 32, 32)).astype(np.float32)
+    return rng.standard_normal((SAMPLES, channels, size, size)).astype(np.float32)
 
 
 def main():
@@ -29,6 +29,7 @@ def main():
     np.save(os.path.join(OUT, "resnet_cifar_folded.npy"), images(5, 3))
     # fixtures/structure/ (issue 15); resnet18_constant_weights reuses resnet18_b's.
     np.save(os.path.join(OUT, "detector_box_decode.npy"), images(8, 3))
+    np.save(os.path.join(OUT, "cait_class_attention.npy"), images(9, 3, 16))
 
     # fixtures/text_postnorm.onnx: input_ids [N, 8] int64 into a 50-row
     # table, attention_mask [N, 8] float (1 = attend); samples end with 0..3
