@@ -273,3 +273,55 @@ fn class_attention_measured_like_onnxruntime() {
         blocks: case(path).expect.blocks(),
     });
 }
+
+/// Item 4: branches of unusual form keep their blocks and placements. The
+/// PoolFormer token mixer holds no learned layer, only the spelled-out group
+/// norm and `pool(n) - n` ([F1]): a block, pre-norm, decided at the
+/// InstanceNormalization; the normaliser-free blocks scale their input by
+/// 1/β before the first ReLU ([N1]): pre-activation, decided at that ReLU.
+#[test]
+fn unusual_branches_keep_their_placement() {
+    let r = scan("structure/poolformer_s12_like.onnx");
+    let blocks = r["blocks"].as_array().unwrap();
+    assert_eq!(blocks.len(), 24, "the census of fixtures/structure/MANIFEST.txt");
+    for b in blocks {
+        let name = b["merge"]["name"].as_str().unwrap();
+        assert_eq!(b["placement_node"]["op_type"], "InstanceNormalization", "{name}");
+        let norms: Vec<&str> = b["branch"]["norms"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|n| n["label"].as_str().unwrap())
+            .collect();
+        assert_eq!(norms, ["GroupNormalization (spelled out)"], "{name}");
+        let scale = b["branch"]["end_scale"]["max"].as_f64().expect("LayerScale");
+        assert!((scale - 0.1).abs() < 1e-6, "{name}: LayerScale {scale}");
+        let layers = b["branch"]["layers"].as_array().unwrap().len();
+        assert_eq!(layers, if name.ends_with("add1") { 0 } else { 2 }, "{name}");
+    }
+    let r = scan("structure/nf_scaled_preact.onnx");
+    for b in r["blocks"].as_array().unwrap() {
+        assert_eq!(b["placement_node"]["op_type"], "Relu");
+        assert_eq!(
+            b["placement_node"]["name"].as_str().unwrap(),
+            format!("{}.relu1", &b["merge"]["name"].as_str().unwrap()[..6])
+        );
+    }
+}
+
+/// Item 4 against onnxruntime: every block of both cases.
+#[test]
+fn unusual_branches_measured_like_onnxruntime() {
+    for (name, path) in [
+        ("poolformer_s12_like", "structure/poolformer_s12_like.onnx"),
+        ("nf_scaled_preact", "structure/nf_scaled_preact.onnx"),
+    ] {
+        reference_stats::check_case(&reference_stats::Case {
+            name,
+            inputs: name,
+            model: path,
+            ext: "npy",
+            blocks: case(path).expect.blocks(),
+        });
+    }
+}

@@ -438,7 +438,11 @@ fn join(
             branch_set.extend(path.iter().copied());
         }
     }
-    let learned = branch_set.iter().any(|&n| op::is_parametrised(g, n));
+    // A normalisation learns a scale and a shift: a branch of a norm and
+    // parameter-free mixing (PoolFormer's `pool(n) - n`, [F1]) is learned.
+    let learned = branch_set
+        .iter()
+        .any(|&n| op::is_parametrised(g, n) || (is_merge && op::family(g, n) == Family::Norm));
     if !learned {
         return Err(Reason::NoLearnedLayer);
     }

@@ -119,7 +119,121 @@ pub fn all() -> Vec<Case> {
             },
             source: "K1 (CaiT: class-attention layers update only the class token, pre-norm, LayerScale)",
         },
+        Case {
+            path: "structure/poolformer_s12_like.onnx",
+            model: poolformer_s12_like(),
+            isolates: "item 4: PoolFormer-S12 layout, token mixer pool(n) - n with no learned layer, GroupNorm(1) spelled Reshape -> InstanceNormalization -> Reshape -> scale/shift, LayerScale; no value_info",
+            expect: Expect {
+                shortcuts: vec![("identity", 24)],
+                placements: vec![("pre-norm", 24)],
+                stages: vec![4, 4, 12, 4],
+                not_blocks: Vec::new(),
+                concat_skips: 0,
+            },
+            source: "F1 (PoolFormer-S12: stages of 2, 2, 6, 2 blocks, two pre-norm residual sub-layers each)",
+        },
+        Case {
+            path: "structure/nf_scaled_preact.onnx",
+            model: nf_scaled_preact(),
+            isolates: "item 4: normaliser-free blocks h + 0.2 * f(h * (1/beta)): a scalar Mul between the block input and the branch's first ReLU",
+            expect: Expect {
+                shortcuts: vec![("identity", 3)],
+                placements: vec![("pre-activation", 3)],
+                stages: vec![3],
+                not_blocks: Vec::new(),
+                concat_skips: 0,
+            },
+            source: "N1 (recalled from memory: x + alpha * f(x / beta), the activation first in f)",
+        },
     ]
+}
+
+/// Item 4: a PoolFormer-S12-like network ([F1]): a 7x7 stride-4 patch
+/// embedding, stages of 2, 2, 6, 2 blocks at widths 64, 128, 320, 512
+/// divided by 16, joined by 3x3 stride-2 patch embeddings. Each block is
+/// `x = x + γ1 · (pool(n) − n)` with `n = GN(x)` and a 3x3 average pool of
+/// stride 1 that does not count the padding, then `x = x + γ2 · MLP(GN(x))`
+/// with 1x1 convolutions (ratio 4) and GELU. The group norm has one group,
+/// spelled as PyTorch exports `nn.GroupNorm` below opset 18: `Reshape` to
+/// `[N, 1, -1]`, `InstanceNormalization` with unit scale, `Reshape` back,
+/// then the per-channel scale and shift. LayerScale starts at 0.1.
+pub fn poolformer_s12_like() -> ModelProto {
+    let image = ImageSpec { value_info: false, ..ImageSpec::rgb(32) };
+    let (mut b, x) = zoo::image_model("poolformer_s12_like", 17, &image);
+    let group_norm = |b: &mut ModelBuilder, p: &str, x: &str| {
+        let c = b.dim(x, 1);
+        let grouped = b.reshape(&format!("{p}.group"), x, &[0, 1, -1]);
+        let one = b.init(&format!("{p}.instance.scale"), &[1], vec![1.0]);
+        let zero = b.init(&format!("{p}.instance.bias"), &[1], vec![0.0]);
+        let normed = b.node(
+            "InstanceNormalization",
+            &format!("{p}.instance"),
+            &[&grouped, &one, &zero],
+            &[("epsilon", crate::builder::Attr::Float(1e-5))],
+        );
+        let grouped_dims = b.shape(&grouped).expect("a known shape").to_vec();
+        b.declare_shape(&normed, &grouped_dims);
+        let (h, w) = (b.dim(x, 2), b.dim(x, 3));
+        let back = b.reshape(&format!("{p}.ungroup"), &normed, &[0, c, h, w]);
+        let scaled = b.mul_const(&format!("{p}.weight"), &back, &[c, 1, 1], vec![1.0; c as usize]);
+        let shift = b.init(&format!("{p}.bias"), &[c, 1, 1], vec![0.0; c as usize]);
+        b.add(&format!("{p}.shift"), &scaled, &shift)
+    };
+    let layer_scale = |b: &mut ModelBuilder, name: &str, y: &str| {
+        let c = b.dim(y, 1);
+        b.mul_const(name, y, &[c, 1, 1], vec![0.1; c as usize])
+    };
+    let widths = [64 / 16, 128 / 16, 320 / 16, 512 / 16];
+    let mut x = b.conv("patch_embed.0", &x, &Conv::new(widths[0], 7).stride(4).pad(2).with_bias());
+    for (stage, &blocks) in [2usize, 2, 6, 2].iter().enumerate() {
+        let width = widths[stage];
+        if stage > 0 {
+            let conv = Conv::new(width, 3).stride(2).pad(1).with_bias();
+            x = b.conv(&format!("patch_embed.{stage}"), &x, &conv);
+        }
+        for j in 0..blocks {
+            let p = format!("stage{}.{j}", stage + 1);
+            let n = group_norm(&mut b, &format!("{p}.norm1"), &x);
+            let pooled = b.avg_pool(&format!("{p}.mixer.pool"), &n, 3, 1, 1);
+            let mixed = b.sub(&format!("{p}.mixer.sub"), &pooled, &n);
+            let mixed = layer_scale(&mut b, &format!("{p}.gamma1"), &mixed);
+            x = b.add(&format!("{p}.add1"), &x, &mixed);
+            let n = group_norm(&mut b, &format!("{p}.norm2"), &x);
+            let h = b.conv(&format!("{p}.mlp.fc1"), &n, &Conv::new(4 * width, 1).with_bias());
+            let h = b.gelu(&format!("{p}.mlp.act"), &h, Form::Decomposed);
+            let h = b.conv(&format!("{p}.mlp.fc2"), &h, &Conv::new(width, 1).with_bias());
+            let h = layer_scale(&mut b, &format!("{p}.gamma2"), &h);
+            x = b.add(&format!("{p}.add2"), &x, &h);
+        }
+    }
+    let n = group_norm(&mut b, "norm", &x);
+    zoo::classifier(&mut b, &n, image.classes);
+    b.finish()
+}
+
+/// Item 4: normaliser-free residual blocks ([N1], from memory) `h + α ·
+/// f(h · (1/β))` with `α = 0.2` and `β = sqrt(1 + i α²)` the expected
+/// standard deviation of block `i`'s input, `f` = ReLU → 3x3 conv → ReLU →
+/// 3x3 conv; the scalar `Mul` sits between the block input and the
+/// branch's first activation. A 3x3 stem to 8 channels, three blocks at
+/// 16x16, the usual head.
+pub fn nf_scaled_preact() -> ModelProto {
+    let (mut b, x) = zoo::image_model("nf_scaled_preact", 17, &ImageSpec::rgb(16));
+    let alpha: f32 = 0.2;
+    let mut h = b.conv("stem", &x, &Conv::new(8, 3).with_bias());
+    for i in 0..3 {
+        let p = format!("block{i}");
+        let beta = (1.0 + i as f32 * alpha * alpha).sqrt();
+        let y = b.mul_const(&format!("{p}.inv_beta"), &h, &[], vec![1.0 / beta]);
+        let y = b.relu(&format!("{p}.relu1"), &y);
+        let y = b.conv(&format!("{p}.conv1"), &y, &Conv::new(8, 3).with_bias());
+        let y = b.relu(&format!("{p}.relu2"), &y);
+        let y = b.conv(&format!("{p}.conv2"), &y, &Conv::new(8, 3).with_bias());
+        let y = b.mul_const(&format!("{p}.alpha"), &y, &[], vec![alpha]);
+        h = b.add(&format!("{p}.add"), &h, &y);
+    }
+    zoo::classifier(&mut b, &h, 10);
+    b.finish()
 }
 
 /// Item 5: a CaiT-like network ([K1]): a 4x4 stride-4 patch embedding to 8
