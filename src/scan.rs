@@ -82,7 +82,11 @@ pub fn analyse_lowered(
     let detection = residual::find_blocks(&graph, &dom);
     let kinds: Vec<Kind> = classify::classify_all(&graph, &detection.blocks, &config.classify);
     let (stages, stage_of) = classify::stages(&graph, &detection.blocks);
-    let bare_runs = classify::bare_runs(&graph, &detection.blocks, &stage_of);
+    let runs = classify::bare_runs(&graph, &detection.blocks, &stage_of);
+    for pattern in &runs.regular {
+        diagnostics.push(regular_pattern_note(&graph, pattern));
+    }
+    let bare_runs = runs.anomalies;
     for (i, n) in graph.nodes.iter().enumerate() {
         if n.subgraphs > 0 {
             diagnostics.push(Diagnostic::note(
@@ -105,6 +109,23 @@ pub fn analyse_lowered(
         diagnostics,
         lowered: summary,
     })
+}
+
+/// The note that reports a stage's regular unspanned layers once.
+fn regular_pattern_note(g: &Graph, pattern: &classify::RegularRun) -> Diagnostic {
+    let first = &pattern.runs[0];
+    let layers: Vec<&str> = first.layers.iter().map(|&n| g.node(n).name.as_str()).collect();
+    Diagnostic::note(
+        None,
+        format!(
+            "stage {}: {} of its gaps between blocks hold the same {} learned layer(s) that no \
+             shortcut spans (first: {}); read as the architecture's pattern, not as lost shortcuts",
+            pattern.stage + 1,
+            pattern.runs.len(),
+            first.layers.len(),
+            layers.join(", ")
+        ),
+    )
 }
 
 /// Reads, decodes and analyses a model file.

@@ -325,3 +325,64 @@ fn unusual_branches_measured_like_onnxruntime() {
         });
     }
 }
+
+fn findings(r: &Value) -> Vec<(String, u64)> {
+    r["findings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|f| (f["code"].as_str().unwrap().to_owned(), f["block"].as_u64().unwrap_or(0)))
+        .collect()
+}
+
+fn notes(r: &Value) -> Vec<String> {
+    r["diagnostics"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|d| d["severity"] == "note")
+        .map(|d| d["message"].as_str().unwrap().to_owned())
+        .collect()
+}
+
+/// Item 7: ConvMixer's pointwise layer after every residual depthwise conv
+/// is the stage's pattern: one note and no `lost-shortcut`; removing one
+/// shortcut leaves a gap that breaks the pattern, and only that gap is a
+/// `lost-shortcut`. The demo's lost shortcut (a stage of two blocks, too few
+/// gaps to show a pattern) is still found.
+#[test]
+fn lost_shortcut_only_where_the_pattern_breaks() {
+    let r = scan("structure/convmixer_like.onnx");
+    assert_eq!(r["blocks"].as_array().unwrap().len(), 6, "fixtures/structure/MANIFEST.txt");
+    assert_eq!(findings(&r), []);
+    assert!(r["bare_runs"].as_array().unwrap().is_empty());
+    let pattern: Vec<String> = notes(&r).into_iter().filter(|n| n.contains("pattern")).collect();
+    assert_eq!(pattern.len(), 1, "{pattern:?}");
+    assert!(pattern[0].starts_with("stage 1: 5 of its gaps"), "{}", pattern[0]);
+
+    let r = scan("structure/convmixer_lost_shortcut.onnx");
+    assert_eq!(r["blocks"].as_array().unwrap().len(), 5, "fixtures/structure/MANIFEST.txt");
+    assert_eq!(findings(&r), [("lost-shortcut".to_owned(), 4)]);
+    let runs = r["bare_runs"].as_array().unwrap();
+    assert_eq!(runs.len(), 1);
+    let layers: Vec<&str> =
+        runs[0]["layers"].as_array().unwrap().iter().map(|l| l["name"].as_str().unwrap()).collect();
+    assert_eq!(layers, ["layer2.pointwise", "layer3.depthwise", "layer3.pointwise"]);
+    assert!(notes(&r).iter().any(|n| n.starts_with("stage 1: 3 of its gaps")));
+
+    let demo = scan("demo/tile_grader.onnx");
+    assert!(findings(&demo).iter().any(|(code, _)| code == "lost-shortcut"));
+}
+
+/// Item 7 against onnxruntime: the ConvMixer blocks.
+#[test]
+fn convmixer_measured_like_onnxruntime() {
+    let path = "structure/convmixer_like.onnx";
+    reference_stats::check_case(&reference_stats::Case {
+        name: "convmixer_like",
+        inputs: "convmixer_like",
+        model: path,
+        ext: "npy",
+        blocks: case(path).expect.blocks(),
+    });
+}

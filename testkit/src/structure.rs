@@ -145,7 +145,67 @@ pub fn all() -> Vec<Case> {
             },
             source: "N1 (recalled from memory: x + alpha * f(x / beta), the activation first in f)",
         },
+        Case {
+            path: "structure/convmixer_like.onnx",
+            model: convmixer_like(None),
+            isolates: "item 7: ConvMixer layout, a residual around each depthwise conv only, then an unspanned pointwise conv: one stage pattern, no lost shortcut",
+            expect: Expect {
+                shortcuts: vec![("identity", 6)],
+                placements: vec![("unactivated", 6)],
+                stages: vec![6],
+                not_blocks: Vec::new(),
+                concat_skips: 0,
+            },
+            source: "ConvMixer (Patches Are All You Need?, arXiv:2201.09792), recalled from memory",
+        },
+        Case {
+            path: "structure/convmixer_lost_shortcut.onnx",
+            model: convmixer_like(Some(3)),
+            isolates: "item 7: convmixer_like with block 3's shortcut removed: the one gap that breaks the stage's pattern",
+            expect: Expect {
+                shortcuts: vec![("identity", 5)],
+                placements: vec![("unactivated", 5)],
+                stages: vec![5],
+                not_blocks: Vec::new(),
+                concat_skips: 0,
+            },
+            source: "ConvMixer (arXiv:2201.09792), recalled from memory; one shortcut removed",
+        },
     ]
+}
+
+/// Item 7: a ConvMixer-like network (Trockman and Kolter, arXiv:2201.09792,
+/// recalled from memory): a 2x2 stride-2 patch embedding to 8 channels, GELU
+/// and BN, then 6 layers of `x = x + BN(GELU(depthwise 5x5 conv(x)))`
+/// followed by `x = BN(GELU(pointwise conv(x)))`, which no shortcut spans
+/// by design. With `lost`, block `lost`'s shortcut is removed (its `Add`
+/// becomes an `Identity` of the branch).
+pub fn convmixer_like(lost: Option<usize>) -> ModelProto {
+    let image = ImageSpec::rgb(16);
+    let (mut b, x) = zoo::image_model("convmixer_like", 17, &image);
+    let h = 8;
+    let y = b.conv("patch", &x, &Conv::new(h, 2).stride(2).pad(0).with_bias());
+    let y = b.gelu("patch.act", &y, Form::Decomposed);
+    let mut x = b.bn("patch.bn", &y);
+    for i in 0..6 {
+        let p = format!("layer{i}");
+        let y = b.conv(&format!("{p}.depthwise"), &x, &Conv::new(h, 5).groups(h).with_bias());
+        let y = b.gelu(&format!("{p}.act1"), &y, Form::Decomposed);
+        let y = b.bn(&format!("{p}.bn1"), &y);
+        let y = b.add(&format!("{p}.add"), &y, &x);
+        let y = b.conv(&format!("{p}.pointwise"), &y, &Conv::new(h, 1).with_bias());
+        let y = b.gelu(&format!("{p}.act2"), &y, Form::Decomposed);
+        x = b.bn(&format!("{p}.bn2"), &y);
+    }
+    zoo::classifier(&mut b, &x, image.classes);
+    let mut model = b.finish();
+    if let Some(i) = lost {
+        let shortcut = if i == 0 { "patch.bn".to_owned() } else { format!("layer{}.bn2", i - 1) };
+        let removed =
+            crate::surgery::remove_shortcut(&mut model, &format!("layer{i}.add"), &shortcut);
+        assert!(removed, "layer{i}.add has the shortcut {shortcut}");
+    }
+    model
 }
 
 /// Item 4: a PoolFormer-S12-like network ([F1]): a 7x7 stride-4 patch

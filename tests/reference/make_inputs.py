@@ -32,6 +32,7 @@ def main():
     np.save(os.path.join(OUT, "cait_class_attention.npy"), images(9, 3, 16))
     np.save(os.path.join(OUT, "poolformer_s12_like.npy"), images(10, 3))
     np.save(os.path.join(OUT, "nf_scaled_preact.npy"), images(11, 3, 16))
+    np.save(os.path.join(OUT, "convmixer_like.npy"), images(12, 3, 16))
 
     # fixtures/text_postnorm.onnx: input_ids [N, 8] int64 into a 50-row
     # table, attention_mask [N, 8] float (1 = attend); samples end with 0..3
