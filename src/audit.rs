@@ -376,6 +376,12 @@ fn run(
 ) -> Result<Audit> {
     let mut report = scan::structure_report("audit", info, &analysis);
     report.run = Some(run_row(&feeding, &config.findings));
+    // What the input plan had to guess, where a reader of the report sees it.
+    report.diagnostics.extend(feeding.warnings.iter().map(|w| crate::report::DiagnosticRow {
+        severity: "warning".to_owned(),
+        node: None,
+        message: w.clone(),
+    }));
     let watches = watches(&analysis);
     // The analysis holds the decoded weights: free them before tract loads its own copy.
     drop(analysis);
@@ -648,6 +654,12 @@ fn run_influence(
 ) -> Result<Audit> {
     let mut report = scan::structure_report("audit", info, &analysis);
     report.run = Some(run_row(&feeding, &config.findings));
+    // What the input plan had to guess, where a reader of the report sees it.
+    report.diagnostics.extend(feeding.warnings.iter().map(|w| crate::report::DiagnosticRow {
+        severity: "warning".to_owned(),
+        node: None,
+        message: w.clone(),
+    }));
     let watches = watches(&analysis);
     let n = analysis.detection.blocks.len();
     let selected: Vec<usize> = if !ic.knockout {

@@ -386,3 +386,71 @@ fn convmixer_measured_like_onnxruntime() {
         blocks: case(path).expect.blocks(),
     });
 }
+
+/// `shunt audit` of the streaming case with `args`, as JSON.
+fn audit_streaming(args: &[&str]) -> Value {
+    let model = fixture("structure/streaming_state.onnx");
+    let mut all = vec!["audit", model.to_str().unwrap(), "--format", "json", "--quiet"];
+    all.extend_from_slice(args);
+    let run = shunt(&all);
+    assert_eq!(run.code, 0, "{args:?}: {}", run.stderr);
+    serde_json::from_str(&run.stdout).expect("shunt writes JSON")
+}
+
+fn fed_shapes(r: &Value) -> Vec<(String, Vec<u64>)> {
+    r["run"]["inputs"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|i| {
+            let shape =
+                i["shape"].as_array().unwrap().iter().map(|d| d.as_u64().unwrap()).collect();
+            (i["name"].as_str().unwrap().to_owned(), shape)
+        })
+        .collect()
+}
+
+/// Item 2: the batch axis is found per input (`state [2, batch, 16]` has it
+/// second), scalars are never batched, explicit whole shapes are fed as
+/// given, and the batch symbol's value fixes the samples per pass. The
+/// scalar integer `sr` is fed 1 with a warning naming `--fill`.
+#[test]
+fn batch_axes_per_input() {
+    let shapes = |v: &[(&str, &[u64])]| -> Vec<(String, Vec<u64>)> {
+        v.iter().map(|(n, s)| ((*n).to_owned(), s.to_vec())).collect()
+    };
+    let r = audit_streaming(&["--dim", "samples=64", "--batch", "3"]);
+    assert_eq!(fed_shapes(&r), shapes(&[("input", &[3, 64]), ("state", &[2, 3, 16]), ("sr", &[])]));
+    let warnings: Vec<&str> = r["diagnostics"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|d| d["severity"] == "warning")
+        .map(|d| d["message"].as_str().unwrap())
+        .collect();
+    assert!(
+        warnings.iter().any(|w| w.contains("'sr'") && w.contains("--fill sr=VALUE")),
+        "{warnings:?}"
+    );
+    let r = audit_streaming(&["--input", "state=2x1x16", "--input", "input=1x64", "--batch", "2"]);
+    assert_eq!(fed_shapes(&r), shapes(&[("input", &[1, 64]), ("state", &[2, 1, 16]), ("sr", &[])]));
+    assert_eq!((r["run"]["pass_batch"].as_u64(), r["run"]["passes"].as_u64()), (Some(1), Some(2)));
+    let r = audit_streaming(&["--dim", "batch=1", "--dim", "samples=64", "--fill", "sr=16000"]);
+    assert_eq!(fed_shapes(&r), shapes(&[("input", &[1, 64]), ("state", &[2, 1, 16]), ("sr", &[])]));
+    assert!(r["diagnostics"].as_array().unwrap().iter().all(|d| d["severity"] != "warning"));
+}
+
+/// Item 2 against onnxruntime: a `.npz` feed whose state holds its samples
+/// on axis 1 and whose `sr` is a 0-d array; onnxruntime runs each sample
+/// sliced along each input's own sample axis (stats.py --batch-axis state=1).
+#[test]
+fn streaming_inputs_measured_like_onnxruntime() {
+    let path = "structure/streaming_state.onnx";
+    reference_stats::check_case(&reference_stats::Case {
+        name: "streaming_state",
+        inputs: "streaming_state",
+        model: path,
+        ext: "npz",
+        blocks: case(path).expect.blocks(),
+    });
+}

@@ -157,17 +157,23 @@ struct AuditArgs {
     /// Scale of the distribution (standard deviation, or half-width for uniform).
     #[arg(long, value_name = "X", default_value_t = 1.0)]
     scale: f32,
-    /// Value of a symbolic dimension other than the batch, e.g. `--dim seq=128` (repeatable).
+    /// Value of a symbolic dimension, e.g. `--dim seq=128` (repeatable); a
+    /// value of the batch symbol fixes the samples per pass.
     #[arg(long = "dim", value_name = "NAME=VALUE")]
     dims: Vec<String>,
-    /// Whole shape of an input, e.g. `--input pixels=1x3x224x224` (repeatable).
+    /// Whole shape of an input, fed as given, e.g. `--input pixels=1x3x224x224` (repeatable).
     #[arg(long = "input", value_name = "NAME=D1xD2x...")]
     shapes: Vec<String>,
-    /// Fill an input with one value, e.g. `--fill attention_mask=1` (repeatable).
+    /// Fill an input with one value, e.g. `--fill attention_mask=1` or
+    /// `--fill sr=16000` for a scalar that is not an index (repeatable).
     #[arg(long = "fill", value_name = "NAME=VALUE")]
     fills: Vec<String>,
+    /// The sample axis of an input where the inferred one is wrong, e.g.
+    /// `--batch-axis state=1`, or `none` for an input without samples (repeatable).
+    #[arg(long = "batch-axis", value_name = "NAME=AXIS")]
+    batch_axes: Vec<String>,
     /// Feed real inputs from a .npy file (one-input models) or a .npz file
-    /// (one entry per input name); the first axis is the sample axis.
+    /// (one entry per input name); samples lie along each input's sample axis.
     #[arg(long, value_name = "FILE")]
     feed: Option<PathBuf>,
     /// Do not run the model: report the structure and structural findings only.
@@ -456,6 +462,7 @@ fn input_config(a: &AuditArgs) -> anyhow::Result<InputConfig> {
         dims: parse_pairs(&a.dims, "--dim", |v| v.parse::<u64>().ok())?,
         shapes: parse_pairs(&a.shapes, "--input", parse_shape)?,
         fills: parse_pairs(&a.fills, "--fill", |v| v.parse::<f64>().ok())?,
+        batch_axes: parse_pairs(&a.batch_axes, "--batch-axis", parse_axis)?,
         feed: a.feed.clone(),
         max_input_elements: a.max_input_elements,
     })
@@ -581,6 +588,11 @@ fn parse_pairs<T>(
         out.insert(name.trim().to_owned(), parsed);
     }
     Ok(out)
+}
+
+/// A sample axis: a number, or `none` for an input without samples.
+fn parse_axis(s: &str) -> Option<Option<usize>> {
+    if s.eq_ignore_ascii_case("none") { Some(None) } else { s.parse::<usize>().ok().map(Some) }
 }
 
 fn parse_shape(s: &str) -> Option<Vec<u64>> {

@@ -13,7 +13,7 @@ use shunt::report::verify::Verification;
 use shunt::scan;
 use shunt::structure;
 
-use super::{DistArg, Format, Limits, output, parse_pairs, parse_shape, progress};
+use super::{DistArg, Format, Limits, output, parse_axis, parse_pairs, parse_shape, progress};
 
 #[derive(Debug, clap::Args)]
 pub(super) struct PinArgs {
@@ -67,7 +67,7 @@ pub(super) struct RunArgs {
     /// Scale of the distribution.
     #[arg(long, value_name = "X", default_value_t = 1.0)]
     pub scale: f32,
-    /// Value of a symbolic dimension other than the batch (repeatable).
+    /// Value of a symbolic dimension (repeatable).
     #[arg(long = "dim", value_name = "NAME=VALUE")]
     pub dims: Vec<String>,
     /// Whole shape of an input (repeatable).
@@ -76,6 +76,9 @@ pub(super) struct RunArgs {
     /// Fill an input with one value (repeatable).
     #[arg(long = "fill", value_name = "NAME=VALUE")]
     pub fills: Vec<String>,
+    /// The sample axis of an input, or `none` (repeatable).
+    #[arg(long = "batch-axis", value_name = "NAME=AXIS")]
+    pub batch_axes: Vec<String>,
     /// Feed real inputs from a .npy or .npz file.
     #[arg(long, value_name = "FILE")]
     pub feed: Option<PathBuf>,
@@ -101,6 +104,7 @@ impl RunArgs {
             dims: parse_pairs(&self.dims, "--dim", |v| v.parse::<u64>().ok())?,
             shapes: parse_pairs(&self.shapes, "--input", parse_shape)?,
             fills: parse_pairs(&self.fills, "--fill", |v| v.parse::<f64>().ok())?,
+            batch_axes: parse_pairs(&self.batch_axes, "--batch-axis", parse_axis)?,
             feed: self.feed.clone(),
             max_input_elements: self.max_input_elements,
         })

@@ -561,7 +561,17 @@ fn spatial(
     let mut out = vec![x[0].clone(), Dim::Known(channels)];
     for i in 0..rank {
         let (Some(input), Some(k)) = (known(&x[i + 2]), known(&kernel[i])) else {
-            out.push(Dim::Unknown);
+            // Stride 1 with "same" padding keeps any size, symbolic included.
+            let same = known(&kernel[i]).is_some_and(|k| {
+                let stride = strides.get(i).copied().unwrap_or(1);
+                let dilation = dilations.get(i).copied().unwrap_or(1);
+                let pad = i128::from(pads.get(i).copied().unwrap_or(0))
+                    + i128::from(pads.get(i + rank).copied().unwrap_or(0));
+                stride == 1
+                    && auto_pad == "NOTSET"
+                    && pad == i128::from(dilation) * (i128::from(k) - 1)
+            });
+            out.push(if same { x[i + 2].clone() } else { Dim::Unknown });
             continue;
         };
         // i128: no dim, pad, stride or dilation a file declares can overflow.

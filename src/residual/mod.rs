@@ -260,7 +260,10 @@ fn constant_shortcut(g: &Graph, merge: NodeId, output: ValueId, signal: ValueId)
         }
         let Some(root) = constant_root(g, c) else { continue };
         let dims = g.constant_dims(root).unwrap_or_default();
-        let elements = crate::load::tensor::element_count(dims).unwrap_or(0);
+        let elements = dims
+            .iter()
+            .try_fold(1u64, |acc, &d| u64::try_from(d).ok().and_then(|d| acc.checked_mul(d)))
+            .unwrap_or(0);
         let sample = g.shape(output).and_then(|s| {
             s.iter().skip(1).try_fold(1u64, |acc, d| match d {
                 crate::graph::Dim::Known(k) => acc.checked_mul(*k),

@@ -171,7 +171,62 @@ pub fn all() -> Vec<Case> {
             },
             source: "ConvMixer (arXiv:2201.09792), recalled from memory; one shortcut removed",
         },
+        Case {
+            path: "structure/streaming_state.onnx",
+            model: streaming_state(),
+            isolates: "item 2: inputs input [batch, samples], state [2, batch, 16] (batch on axis 1) and a scalar int64 sr; two post-activation blocks",
+            expect: Expect {
+                shortcuts: vec![("identity", 2)],
+                placements: vec![("post-activation", 2)],
+                stages: vec![2],
+                not_blocks: Vec::new(),
+                concat_skips: 0,
+            },
+            source: "hand-built (a streaming audio model's inputs as the issue describes them); R3 for the blocks",
+        },
     ]
+}
+
+/// Item 2: a streaming audio model's inputs: `input [batch, samples]`
+/// (float), a recurrent `state [2, batch, 16]` whose batch is its second
+/// axis, and a scalar int64 sample rate `sr`. The waveform is unsqueezed to
+/// `[batch, 1, 1, samples]`, a 3x3 conv to 8 channels and ReLU, scaled by
+/// `sr / 16000` and by `sigmoid(Gemm(state as [batch, 32]))` per channel,
+/// then two post-activation basic blocks `relu(x + conv(relu(conv(x))))`
+/// and a 3x3 conv to one channel. A second output is `state / 2`.
+pub fn streaming_state() -> ModelProto {
+    let mut b = ModelBuilder::new("streaming_state", 17);
+    let batch = || Dim::Sym("batch".to_owned());
+    let input = b.input("input", &[batch(), Dim::Sym("samples".to_owned())]);
+    let state = b.input("state", &[2.into(), batch(), 16.into()]);
+    let sr = b.typed_input("sr", shunt::proto::tensor_proto::DataType::Int64, &[]);
+    let x = b.unsqueeze("wave", &input, &[1, 2]);
+    let x = b.conv("stem", &x, &Conv::new(8, 3).with_bias());
+    let x = b.relu("stem.relu", &x);
+    let rate = b.node("Cast", "sr.float", &[&sr], &[("to", crate::builder::Attr::Int(1))]);
+    b.declare_shape(&rate, &[]);
+    let reference = b.scalar("sr.reference", 16000.0);
+    let gain = b.node("Div", "sr.gain", &[&rate, &reference], &[]);
+    let x = b.mul("sr.scale", &x, &gain);
+    let per_sample = b.transpose("state.samples", &state, &[1, 0, 2]);
+    let flat = b.reshape("state.flat", &per_sample, &[0, 32]);
+    let cond = b.gemm("state.fc", &flat, 8, &Init::HeNormal);
+    let cond = b.sigmoid("state.gate", &cond);
+    let cond = b.unsqueeze("state.channels", &cond, &[2, 3]);
+    let mut x = b.mul("state.scale", &x, &cond);
+    for i in 0..2 {
+        let p = format!("block{i}");
+        let y = b.conv(&format!("{p}.conv1"), &x, &Conv::new(8, 3).with_bias());
+        let y = b.relu(&format!("{p}.relu1"), &y);
+        let y = b.conv(&format!("{p}.conv2"), &y, &Conv::new(8, 3).with_bias());
+        let y = b.add(&format!("{p}.add"), &y, &x);
+        x = b.relu(&format!("{p}.relu"), &y);
+    }
+    let out = b.conv("out", &x, &Conv::new(1, 3).with_bias());
+    b.output(&out);
+    let next = b.mul_const("state.next", &state, &[], vec![0.5]);
+    b.output(&next);
+    b.finish()
 }
 
 /// Item 7: a ConvMixer-like network (Trockman and Kolter, arXiv:2201.09792,

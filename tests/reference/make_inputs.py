@@ -33,6 +33,15 @@ def main():
     np.save(os.path.join(OUT, "poolformer_s12_like.npy"), images(10, 3))
     np.save(os.path.join(OUT, "nf_scaled_preact.npy"), images(11, 3, 16))
     np.save(os.path.join(OUT, "convmixer_like.npy"), images(12, 3, 16))
+    # fixtures/structure/streaming_state.onnx: input [N, 64], state [2, N, 16]
+    # (samples on axis 1), sr a 0-d int64 sample rate.
+    rng = np.random.default_rng(13)
+    np.savez(
+        os.path.join(OUT, "streaming_state.npz"),
+        input=rng.standard_normal((SAMPLES, 64)).astype(np.float32),
+        state=rng.standard_normal((2, SAMPLES, 16)).astype(np.float32),
+        sr=np.array(16000, dtype=np.int64),
+    )
 
     # fixtures/text_postnorm.onnx: input_ids [N, 8] int64 into a 50-row
     # table, attention_mask [N, 8] float (1 = attend); samples end with 0..3
