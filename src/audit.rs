@@ -383,6 +383,7 @@ fn run(
         message: w.clone(),
     }));
     let watches = watches(&analysis);
+    let stage_keys = crate::classify::stage_keys(&analysis.graph, &analysis.detection.blocks);
     // The analysis holds the decoded weights: free them before tract loads its own copy.
     drop(analysis);
     let mut facts = scan::block_facts(&report);
@@ -395,6 +396,7 @@ fn run(
     let (run_error, outputs) = match outcome {
         Ok(result) => {
             fill_stats(&mut report, &mut facts, &result.blocks, config.findings.dead_below);
+            measured_stages(&mut report, &stage_keys, &result.blocks);
             (None, result.outputs)
         }
         Err(e) => {
@@ -404,6 +406,55 @@ fn run(
     };
     scan::set_findings(&mut report, &facts, &config.findings);
     Ok(Audit { report, run_error, outputs })
+}
+
+/// Stages from the shapes the run measured where static shape inference
+/// stopped (Reshape targets computed at run time, dynamic spatial sizes): a
+/// block whose output shape is unknown statically takes the shape tract
+/// produced, past the batch axis, and the blocks are grouped into stages
+/// again. Bare runs are not searched again (they need the graph).
+fn measured_stages(
+    report: &mut Report,
+    keys: &[Option<Vec<crate::graph::Dim>>],
+    blocks: &[BlockSamples],
+) {
+    if keys.len() != report.blocks.len() || keys.iter().all(Option::is_some) {
+        return;
+    }
+    let keys: Vec<Option<Vec<crate::graph::Dim>>> = keys
+        .iter()
+        .zip(blocks)
+        .map(|(k, b)| {
+            k.clone().or_else(|| {
+                let measured = b.output_shape.get(1..).filter(|_| b.output_shape.len() >= 2)?;
+                Some(measured.iter().map(|&d| crate::graph::Dim::Known(d as u64)).collect())
+            })
+        })
+        .collect();
+    let (stages, of_block) = crate::classify::group(&keys);
+    report.stages = stages
+        .iter()
+        .enumerate()
+        .map(|(i, s)| crate::report::StageRow {
+            id: i + 1,
+            shape: s.shape.iter().map(ToString::to_string).collect(),
+            blocks: s.blocks.iter().map(|b| b + 1).collect(),
+        })
+        .collect();
+    for ((row, stage), b) in report.blocks.iter_mut().zip(of_block).zip(blocks) {
+        row.stage = stage.map(|s| s + 1);
+        // Where the static shape has unknown dims, show the measured ones
+        // (the batch axis as declared).
+        let unknown = row.output_shape.as_ref().is_none_or(|s| s.iter().any(|d| d == "?"));
+        if unknown && b.output_shape.len() >= 2 {
+            let batch = row.output_shape.as_ref().and_then(|s| s.first().cloned());
+            let mut shape: Vec<String> = b.output_shape.iter().map(ToString::to_string).collect();
+            if let Some(batch) = batch.filter(|d| d != "?") {
+                shape[0] = batch;
+            }
+            row.output_shape = Some(shape);
+        }
+    }
 }
 
 /// What to measure for each block.
@@ -661,6 +712,7 @@ fn run_influence(
         message: w.clone(),
     }));
     let watches = watches(&analysis);
+    let stage_keys = crate::classify::stage_keys(&analysis.graph, &analysis.detection.blocks);
     let n = analysis.detection.blocks.len();
     let selected: Vec<usize> = if !ic.knockout {
         Vec::new()
@@ -761,6 +813,7 @@ fn run_influence(
         }
     };
     fill_stats(&mut report, &mut facts, &result.intact.blocks, config.findings.dead_below);
+    measured_stages(&mut report, &stage_keys, &result.intact.blocks);
     scan::set_findings(&mut report, &facts, &config.findings);
 
     let mut rows: Vec<InfluenceRow> = (0..n)

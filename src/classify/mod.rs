@@ -15,7 +15,7 @@ use crate::graph::{Graph, NodeId, ValueId};
 use crate::load::attr;
 use crate::residual::Block;
 
-pub use stage::{BareRun, BareRuns, RegularRun, Stage, bare_runs, stages};
+pub use stage::{BareRun, BareRuns, RegularRun, Stage, bare_runs, group, stage_keys, stages};
 
 /// Limits for reading weights while classifying.
 #[derive(Debug, Clone)]

@@ -19,15 +19,31 @@ pub struct Stage {
 /// Groups blocks into stages; a block whose output shape is unknown is in
 /// no stage (`None`).
 pub fn stages(g: &Graph, blocks: &[Block]) -> (Vec<Stage>, Vec<Option<usize>>) {
+    group(&stage_keys(g, blocks))
+}
+
+/// The output shape of each block past the batch axis, when known.
+pub fn stage_keys(g: &Graph, blocks: &[Block]) -> Vec<Option<Vec<Dim>>> {
+    blocks.iter().map(|b| stage_key(g, b.output)).collect()
+}
+
+/// Groups consecutive blocks into stages by their output shapes past the
+/// batch axis (`None`: unknown, in no stage). Two shapes are of one stage
+/// when they are equal, or when they hold the same number of positions of
+/// the same width in another layout: the same product of dims and a width
+/// (the first or last dim of each) in common, so `[H, W, C]` and
+/// `[H·W, C]` (a windowed-attention transformer's stream, [W1]) or
+/// `[C, H, W]` and `[H·W, C]` are one stage. A stage's shape is its first
+/// block's.
+pub fn group(keys: &[Option<Vec<Dim>>]) -> (Vec<Stage>, Vec<Option<usize>>) {
     let mut out: Vec<Stage> = Vec::new();
-    let mut of_block = Vec::with_capacity(blocks.len());
+    let mut of_block = Vec::with_capacity(keys.len());
     let mut previous_known = false;
-    for (i, b) in blocks.iter().enumerate() {
-        let key = stage_key(g, b.output);
-        match key {
+    for (i, key) in keys.iter().enumerate() {
+        match key.clone() {
             Some(shape) => {
                 match out.last_mut() {
-                    Some(s) if previous_known && s.shape == shape => s.blocks.push(i),
+                    Some(s) if previous_known && same_stage(&s.shape, &shape) => s.blocks.push(i),
                     _ => out.push(Stage { shape, blocks: vec![i] }),
                 }
                 of_block.push(Some(out.len() - 1));
@@ -40,6 +56,22 @@ pub fn stages(g: &Graph, blocks: &[Block]) -> (Vec<Stage>, Vec<Option<usize>>) {
         }
     }
     (out, of_block)
+}
+
+/// Whether two output shapes (past the batch axis) belong to one stage.
+fn same_stage(a: &[Dim], b: &[Dim]) -> bool {
+    if a == b {
+        return true;
+    }
+    let known = |s: &[Dim]| -> Option<Vec<u64>> {
+        s.iter().map(|d| if let Dim::Known(k) = d { Some(*k) } else { None }).collect()
+    };
+    let (Some(a), Some(b)) = (known(a), known(b)) else { return false };
+    let product = |s: &[u64]| s.iter().try_fold(1u64, |acc, &d| acc.checked_mul(d));
+    let ends = |s: &[u64]| [s.first().copied(), s.last().copied()];
+    product(&a).is_some()
+        && product(&a) == product(&b)
+        && ends(&a).iter().flatten().any(|w| ends(&b).contains(&Some(*w)))
 }
 
 fn stage_key(g: &Graph, v: ValueId) -> Option<Vec<Dim>> {

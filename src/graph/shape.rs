@@ -424,6 +424,30 @@ fn shape_value(g: &Graph, v: ValueId, depth: usize) -> Option<Vec<Elem>> {
             )
         }
         "Cast" | "Identity" | "Unsqueeze" | "Squeeze" => shape_value(g, input(0)?, depth + 1),
+        // `H * W` of a flattened map: numbers only, a symbol stops it.
+        "Mul" | "Div" | "Add" | "Sub" => {
+            let a = shape_value(g, input(0)?, depth + 1)?;
+            let b = shape_value(g, input(1)?, depth + 1)?;
+            let int = |e: &Elem| if let Elem::Int(k) = e { Some(i128::from(*k)) } else { None };
+            let len = a.len().max(b.len());
+            if !(a.len() == len || a.len() == 1) || !(b.len() == len || b.len() == 1) {
+                return None;
+            }
+            (0..len)
+                .map(|i| {
+                    let x = int(a.get(i).or(a.first())?)?;
+                    let y = int(b.get(i).or(b.first())?)?;
+                    let v = match node.op.as_str() {
+                        "Mul" => x * y,
+                        "Add" => x + y,
+                        "Sub" => x - y,
+                        _ if y != 0 => x / y, // ONNX integer Div truncates
+                        _ => return None,
+                    };
+                    i64::try_from(v).ok().map(Elem::Int)
+                })
+                .collect()
+        }
         "Concat" => {
             let mut out = Vec::new();
             for v in node.inputs.iter().flatten() {

@@ -35,6 +35,10 @@ pub struct Expect {
     pub not_blocks: Vec<(&'static str, usize)>,
     /// Concatenative skips.
     pub concat_skips: usize,
+    /// Empty: the census is a scan's. Otherwise the arguments of the
+    /// `audit` whose measured shapes give the stages (static shape
+    /// inference stops in this model).
+    pub audit_args: Vec<&'static str>,
 }
 
 impl Expect {
@@ -74,6 +78,7 @@ pub fn all() -> Vec<Case> {
                 stages: vec![2, 2, 2, 2],
                 not_blocks: Vec::new(),
                 concat_skips: 0,
+                audit_args: Vec::new(),
             },
             source: "R1 R2 R3",
         },
@@ -87,6 +92,7 @@ pub fn all() -> Vec<Case> {
                 stages: vec![1, 1],
                 not_blocks: vec![("sum-of-heads", 2)],
                 concat_skips: 0,
+                audit_args: Vec::new(),
             },
             source: "FCN skip architecture (Long et al., arXiv:1411.4038, Fig. 3), recalled from memory; torchvision's FCN upsamples by interpolation",
         },
@@ -100,6 +106,7 @@ pub fn all() -> Vec<Case> {
                 stages: vec![1, 1],
                 not_blocks: vec![("no-learned-layer", 1), ("sum-of-heads", 1)],
                 concat_skips: 0,
+                audit_args: Vec::new(),
             },
             source: "CenterNet (Objects as Points, arXiv:1904.07850) offset and size heads, recalled from memory",
         },
@@ -116,6 +123,7 @@ pub fn all() -> Vec<Case> {
                 // class token computed from them: a Concat of a tensor and a
                 // path from it with learned layers, as in DenseNet.
                 concat_skips: 1,
+                audit_args: Vec::new(),
             },
             source: "K1 (CaiT: class-attention layers update only the class token, pre-norm, LayerScale)",
         },
@@ -129,6 +137,7 @@ pub fn all() -> Vec<Case> {
                 stages: vec![4, 4, 12, 4],
                 not_blocks: Vec::new(),
                 concat_skips: 0,
+                audit_args: Vec::new(),
             },
             source: "F1 (PoolFormer-S12: stages of 2, 2, 6, 2 blocks, two pre-norm residual sub-layers each)",
         },
@@ -142,6 +151,7 @@ pub fn all() -> Vec<Case> {
                 stages: vec![3],
                 not_blocks: Vec::new(),
                 concat_skips: 0,
+                audit_args: Vec::new(),
             },
             source: "N1 (recalled from memory: x + alpha * f(x / beta), the activation first in f)",
         },
@@ -155,6 +165,7 @@ pub fn all() -> Vec<Case> {
                 stages: vec![6],
                 not_blocks: Vec::new(),
                 concat_skips: 0,
+                audit_args: Vec::new(),
             },
             source: "ConvMixer (Patches Are All You Need?, arXiv:2201.09792), recalled from memory",
         },
@@ -168,6 +179,7 @@ pub fn all() -> Vec<Case> {
                 stages: vec![5],
                 not_blocks: Vec::new(),
                 concat_skips: 0,
+                audit_args: Vec::new(),
             },
             source: "ConvMixer (arXiv:2201.09792), recalled from memory; one shortcut removed",
         },
@@ -181,10 +193,188 @@ pub fn all() -> Vec<Case> {
                 stages: vec![2],
                 not_blocks: Vec::new(),
                 concat_skips: 0,
+                audit_args: Vec::new(),
             },
             source: "hand-built (a streaming audio model's inputs as the issue describes them); R3 for the blocks",
         },
+        Case {
+            path: "structure/swin_like.onnx",
+            model: swin_like(),
+            isolates: "item 3: Swin-T layout, the residual stream [B, H, W, C] at the attention merges and [B, H*W, C] at the MLP merges, Reshape targets computed from Shape; no value_info",
+            expect: Expect {
+                shortcuts: vec![("identity", 24)],
+                placements: vec![("pre-norm", 24)],
+                stages: vec![4, 4, 12, 4],
+                // The Concat of patch merging joins four slices of one map:
+                // no learned layer between its fork and it, not a skip.
+                not_blocks: vec![("no-learned-layer", 3)],
+                concat_skips: 0,
+                audit_args: Vec::new(),
+            },
+            source: "W1 (recalled from memory: Swin-T stages of 2, 2, 6, 2 blocks, two pre-norm sub-layers each, patch merging between stages)",
+        },
+        Case {
+            path: "structure/resnet18_dynamic_size.onnx",
+            model: dynamic_size(zoo::resnet(&r18)),
+            isolates: "item 3: fixtures/resnet18_b.onnx with a symbolic input height and width and no value_info: static shapes stop at the first strided conv; stages from the shapes the audit measures",
+            expect: Expect {
+                shortcuts: vec![("identity", 5), ("projection", 3)],
+                placements: vec![("post-activation", 8)],
+                stages: vec![2, 2, 2, 2],
+                not_blocks: Vec::new(),
+                concat_skips: 0,
+                audit_args: vec!["--dim", "height=32", "--dim", "width=32", "--batch", "2"],
+            },
+            source: "R1 R2 R3",
+        },
     ]
+}
+
+/// `model` with its image input's height and width made symbolic (`height`,
+/// `width`) and its `value_info` dropped, as an export with dynamic spatial
+/// axes leaves it.
+pub fn dynamic_size(mut model: ModelProto) -> ModelProto {
+    use shunt::proto::tensor_shape_proto::dimension::Value;
+    let graph = model.graph.as_mut().expect("a built model has a graph");
+    graph.value_info.clear();
+    let shape = graph.input[0]
+        .r#type
+        .as_mut()
+        .and_then(|t| match t.value.as_mut()? {
+            shunt::proto::type_proto::Value::TensorType(t) => t.shape.as_mut(),
+            _ => None,
+        })
+        .expect("the image input has a shape");
+    for (axis, name) in [(2, "height"), (3, "width")] {
+        shape.dim[axis].value = Some(Value::DimParam(name.to_owned()));
+    }
+    model
+}
+
+/// A Reshape of `x` whose target PyTorch computes at run time: the batch
+/// from `Shape(of)`, then `rest` (a number, or the product of two axes of
+/// `of` read from its shape, as `view(B, H * W, C)` exports). The builder is
+/// told the output shape `dims`.
+fn reshape_computed(
+    b: &mut ModelBuilder,
+    name: &str,
+    x: &str,
+    of: &str,
+    rest: &[Part],
+    dims: &[Dim],
+) -> String {
+    let shape = b.node("Shape", &format!("{name}.shape"), &[of], &[]);
+    let axis = |b: &mut ModelBuilder, k: i64| {
+        let index = b.init_i64(&format!("{name}.index{k}"), &[], vec![k]);
+        b.node("Gather", &format!("{name}.dim{k}"), &[&shape, &index], &[])
+    };
+    let batch = axis(b, 0);
+    let mut parts = vec![b.unsqueeze(&format!("{name}.batch"), &batch, &[0])];
+    for (i, part) in rest.iter().enumerate() {
+        parts.push(match part {
+            Part::Fixed(v) => b.init_i64(&format!("{name}.fixed{i}"), &[1], vec![*v]),
+            Part::Product(p, q) => {
+                let (p, q) = (axis(b, *p), axis(b, *q));
+                let product = b.mul(&format!("{name}.product{i}"), &p, &q);
+                b.unsqueeze(&format!("{name}.part{i}"), &product, &[0])
+            }
+        });
+    }
+    let parts: Vec<&str> = parts.iter().map(String::as_str).collect();
+    let target = b.concat(&format!("{name}.target"), &parts, 0);
+    let out = b.node("Reshape", name, &[x, &target], &[]);
+    b.declare_shape(&out, dims);
+    out
+}
+
+/// One entry of a computed Reshape target.
+enum Part {
+    /// A constant size.
+    Fixed(i64),
+    /// The product of two axes of the reshaped tensor.
+    Product(i64, i64),
+}
+
+/// Item 3: a Swin-T-like network ([W1], recalled from memory): a 4x4
+/// stride-4 patch embedding (8x8 tokens at width 4, Swin-T's 96 divided by
+/// 24) and LayerNorm, stages of 2, 2, 6, 2 blocks joined by patch merging
+/// (four strided slices concatenated, LayerNorm, a linear layer to twice the
+/// width). A block keeps its stream as `[B, H, W, C]` for window attention
+/// (`x = x + WA(LN(x))`, windows of 2x2 tokens, one head, no shift) and as
+/// `[B, H·W, C]` for the MLP (`t = t + MLP(LN(t))`), with the Reshapes
+/// between the two computed from `Shape` as PyTorch exports `view`. No
+/// `value_info`, so every stage shape comes from shape inference.
+pub fn swin_like() -> ModelProto {
+    let image = ImageSpec { value_info: false, ..ImageSpec::rgb(32) };
+    let (mut b, x) = zoo::image_model("swin_like", 17, &image);
+    let n = || Dim::batch();
+    let patches = b.conv("patch_embed", &x, &Conv::new(4, 4).stride(4).pad(0).with_bias());
+    let x = b.transpose("patch_embed.nhwc", &patches, &[0, 2, 3, 1]);
+    let mut x = b.layer_norm("patch_embed.norm", &x, Form::Fused);
+    let (mut size, mut width) = (8i64, 4i64);
+    for (stage, &depth) in [2usize, 2, 6, 2].iter().enumerate() {
+        if stage > 0 {
+            let p = format!("merge{stage}");
+            let picks = [(0, 0), (1, 0), (0, 1), (1, 1)];
+            let parts: Vec<String> = picks
+                .iter()
+                .map(|&(r, c)| {
+                    let name = format!("{p}.x{r}{c}");
+                    b.slice(&name, &x, &[r, c], &[i64::MAX, i64::MAX], &[1, 2], &[2, 2])
+                })
+                .collect();
+            let parts: Vec<&str> = parts.iter().map(String::as_str).collect();
+            let joined = b.concat(&format!("{p}.concat"), &parts, -1);
+            let joined = b.layer_norm(&format!("{p}.norm"), &joined, Form::Fused);
+            width *= 2;
+            size /= 2;
+            x = b.linear(&format!("{p}.reduction"), &joined, width, &Init::HeNormal, false);
+        }
+        let ws = size.min(2);
+        for j in 0..depth {
+            let p = format!("stage{}.{j}", stage + 1);
+            let nx = b.layer_norm(&format!("{p}.norm1"), &x, Form::Fused);
+            let grid = [size / ws, ws, size / ws, ws, width].map(Part::Fixed);
+            let grid_dims =
+                [n(), (size / ws).into(), ws.into(), (size / ws).into(), ws.into(), width.into()];
+            let split =
+                reshape_computed(&mut b, &format!("{p}.window.split"), &nx, &nx, &grid, &grid_dims);
+            let split = b.transpose(&format!("{p}.window.order"), &split, &[0, 1, 3, 2, 4, 5]);
+            let tokens = b.reshape(&format!("{p}.window.tokens"), &split, &[-1, ws * ws, width]);
+            b.declare_shape(
+                &tokens,
+                &[Dim::Sym("windows".to_owned()), (ws * ws).into(), width.into()],
+            );
+            let spec = Attention { heads: 1, mask: None, rotary: None };
+            let a = b.attention(&format!("{p}.attn"), &tokens, &spec);
+            let back = [size / ws, size / ws, ws, ws, width].map(Part::Fixed);
+            let back_dims =
+                [n(), (size / ws).into(), (size / ws).into(), ws.into(), ws.into(), width.into()];
+            let a =
+                reshape_computed(&mut b, &format!("{p}.window.merge"), &a, &x, &back, &back_dims);
+            let a = b.transpose(&format!("{p}.window.unorder"), &a, &[0, 1, 3, 2, 4, 5]);
+            let map = [size, size, width].map(Part::Fixed);
+            let map_dims = [n(), size.into(), size.into(), width.into()];
+            let a = reshape_computed(&mut b, &format!("{p}.window.map"), &a, &x, &map, &map_dims);
+            x = b.add(&format!("{p}.add1"), &x, &a);
+            let flat = [Part::Product(1, 2), Part::Fixed(width)];
+            let flat_dims = [n(), (size * size).into(), width.into()];
+            let t = reshape_computed(&mut b, &format!("{p}.tokens"), &x, &x, &flat, &flat_dims);
+            let nt = b.layer_norm(&format!("{p}.norm2"), &t, Form::Fused);
+            let h = b.linear(&format!("{p}.mlp.fc1"), &nt, 4 * width, &Init::HeNormal, true);
+            let h = b.gelu(&format!("{p}.mlp.act"), &h, Form::Decomposed);
+            let h = b.linear(&format!("{p}.mlp.fc2"), &h, width, &Init::HeNormal, true);
+            let t = b.add(&format!("{p}.add2"), &t, &h);
+            let map = [size, size, width].map(Part::Fixed);
+            x = reshape_computed(&mut b, &format!("{p}.map"), &t, &t, &map, &map_dims);
+        }
+    }
+    let x = b.layer_norm("norm", &x, Form::Fused);
+    let pooled = b.reduce_mean("pool", &x, &[1, 2]);
+    let flat = b.reshape("head.flatten", &pooled, &[0, width]);
+    let logits = b.gemm("head.fc", &flat, image.classes, &Init::HeNormal);
+    b.output(&logits);
+    b.finish()
 }
 
 /// Item 2: a streaming audio model's inputs: `input [batch, samples]`
@@ -549,13 +739,18 @@ pub fn manifest(cases: &[Case]) -> String {
         let stages: Vec<String> = e.stages.iter().map(usize::to_string).collect();
         let _ = writeln!(
             out,
-            "{} | {} | blocks={} ({}; {}) stages=[{}] not-blocks=({}) concat={} | {}",
+            "{} | {} | blocks={} ({}; {}) stages=[{}]{} not-blocks=({}) concat={} | {}",
             case.path,
             case.isolates,
             e.blocks(),
             list(&e.shortcuts),
             list(&e.placements),
             stages.join(","),
+            if e.audit_args.is_empty() {
+                String::new()
+            } else {
+                format!(" (measured: audit {})", e.audit_args.join(" "))
+            },
             list(&e.not_blocks),
             e.concat_skips,
             case.source,

@@ -33,6 +33,7 @@ def main():
     np.save(os.path.join(OUT, "poolformer_s12_like.npy"), images(10, 3))
     np.save(os.path.join(OUT, "nf_scaled_preact.npy"), images(11, 3, 16))
     np.save(os.path.join(OUT, "convmixer_like.npy"), images(12, 3, 16))
+    np.save(os.path.join(OUT, "swin_like.npy"), images(14, 3))
     # fixtures/structure/streaming_state.onnx: input [N, 64], state [2, N, 16]
     # (samples on axis 1), sr a 0-d int64 sample rate.
     rng = np.random.default_rng(13)
