@@ -33,9 +33,9 @@ use prost::Message;
 use serde_json::{Value, json};
 use shunt::audit::{self, AuditConfig};
 use shunt::load::ExternalData;
+use shunt::open::OpenConfig;
 use shunt::probe::Progress;
 use shunt::probe::inputs::{self, InputConfig, Values};
-use shunt::scan::{self, ScanConfig};
 use shunt_testkit::zoo::{self, ImageSpec, ResNetConfig};
 use tract_onnx::prelude::*;
 use tract_onnx::tract_core::plan::{SimpleState, eval};
@@ -59,9 +59,9 @@ fn bench_dir() -> PathBuf {
 /// The audit's configuration as the command line builds it by default.
 fn audit_config() -> AuditConfig {
     AuditConfig {
-        scan: ScanConfig::standard(),
+        open: OpenConfig::standard(),
         inputs: InputConfig::standard(BATCH),
-        findings: scan::standard_findings(),
+        findings: shunt::findings::FindingConfig::STANDARD,
         influence: None,
     }
 }
@@ -145,11 +145,11 @@ fn recipe_plan(path: &Path, names: &[String]) -> TractResult<(Plan, HashSet<(usi
 
 /// Names of every watched tensor of the model, as the audit picks them.
 fn watched_names(path: &Path) -> Vec<String> {
-    let cfg = ScanConfig::standard();
+    let cfg = OpenConfig::standard();
     let loaded = shunt::load::load(path, &cfg.load).expect("load");
-    let analysis = scan::analyse(loaded.model, loaded.external, &cfg).expect("analyse");
+    let analysis = shunt::open::analyse(loaded.model, loaded.external, &cfg).expect("analyse");
     let mut names: Vec<String> = Vec::new();
-    for w in audit::watches(&analysis) {
+    for w in shunt::measure::watches(&analysis) {
         names.push(w.fork);
         names.push(w.shortcut);
         names.extend(w.branch);
@@ -373,7 +373,7 @@ fn prepare_files() -> PathBuf {
 
     let config = audit_config();
     let analysis =
-        scan::analyse(model, ExternalData::none(), &config.scan).expect("analyse the model");
+        shunt::open::analyse(model, ExternalData::none(), &config.open).expect("analyse the model");
     let specs = inputs::input_specs(&analysis.graph);
     let feeding = inputs::plan(&specs, &config.inputs).expect("a feeding plan");
     assert_eq!((feeding.passes, feeding.pass_batch), (1, BATCH), "one pass of the whole batch");

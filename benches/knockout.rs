@@ -24,7 +24,8 @@ use std::time::Instant;
 
 use prost::Message;
 use serde_json::{Value, json};
-use shunt::audit::{self, AuditConfig, InfluenceConfig};
+use shunt::audit::{self, AuditConfig};
+use shunt::measure::InfluenceConfig;
 use shunt::probe::Progress;
 use shunt_testkit::zoo::{self, ImageSpec, ResNetConfig};
 use tract_onnx::prelude::*;

@@ -21,10 +21,11 @@ use std::time::{Duration, Instant};
 use prost::Message;
 use shunt::classify;
 use shunt::graph::{self, Dominance};
+use shunt::open::OpenConfig;
 use shunt::proto::ModelProto;
 use shunt::proto::tensor_proto::DataType;
 use shunt::residual;
-use shunt::scan::{self, ScanConfig};
+use shunt::scan;
 use shunt_testkit::large::{self, DecoderConfig};
 use shunt_testkit::zoo::{self, ImageSpec, PreActConfig, ResNetConfig};
 
@@ -84,7 +85,7 @@ fn measure(dir: &Path, name: &str, model: &ModelProto) -> Row {
     let path = dir.join(format!("{file}.onnx"));
     let bytes = model.encode_to_vec();
     std::fs::write(&path, &bytes).expect("write the model");
-    let config = ScanConfig::standard();
+    let config = OpenConfig::standard();
     let report = scan::scan_file(&path, &config).expect("scan");
     let decode = time(RUNS, || shunt::load::load(&path, &config.load).expect("load"));
     let scan = time(RUNS, || scan::scan_file(&path, &config).expect("scan"));
@@ -101,7 +102,7 @@ fn measure(dir: &Path, name: &str, model: &ModelProto) -> Row {
 /// Wall time of each step of one scan, minimum over `RUNS` runs (after a
 /// warm-up), so a step whose cost grows faster than the graph shows.
 fn phases(path: &Path) -> Vec<(&'static str, Duration)> {
-    let config = ScanConfig::standard();
+    let config = OpenConfig::standard();
     let mut samples: Vec<Vec<(&'static str, Duration)>> = Vec::new();
     for _ in 0..=RUNS {
         let mut row = Vec::new();
@@ -257,7 +258,7 @@ fn main() {
 /// model turned into a contrib `QuickGelu` (not the same function; only the
 /// rewrite's cost is timed), so every block gets rewritten nodes.
 fn lowering_every_activation(dir: &Path) {
-    let config = ScanConfig::standard();
+    let config = OpenConfig::standard();
     let loaded = shunt::load::load(&dir.join("preact-4001.onnx"), &config.load).expect("load");
     let mut model = loaded.model;
     let mut rewritten = 0;
@@ -330,7 +331,7 @@ fn decoder_7b() {
 /// `VmHWM` (MiB) and the number of blocks found.
 fn child_scan(path: &Path) {
     let start = Instant::now();
-    let report = scan::scan_file(path, &ScanConfig::standard()).expect("scan");
+    let report = scan::scan_file(path, &OpenConfig::standard()).expect("scan");
     let wall = start.elapsed().as_secs_f64();
     let status = std::fs::read_to_string("/proc/self/status").unwrap_or_default();
     let hwm_kb: f64 = status

@@ -15,8 +15,8 @@ use std::path::Path;
 use ndarray::{ArrayD, IxDyn};
 use prost::Message;
 use shunt::load::ExternalData;
+use shunt::open::OpenConfig;
 use shunt::probe::inputs::{self, InputConfig, Values};
-use shunt::scan::{self, ScanConfig};
 use shunt_testkit::zoo::{self, ImageSpec, ResNetConfig};
 use tract_onnx::prelude::*;
 
@@ -30,7 +30,7 @@ fn write(dir: &Path) {
     std::fs::write(dir.join("resnet50.onnx"), model.encode_to_vec()).expect("write the model");
     // The inputs exactly as the audit makes them by default.
     let config = InputConfig::standard(8);
-    let analysis = scan::analyse(model, ExternalData::none(), &ScanConfig::standard())
+    let analysis = shunt::open::analyse(model, ExternalData::none(), &OpenConfig::standard())
         .expect("analyse the model");
     let feeding = inputs::plan(&inputs::input_specs(&analysis.graph), &config).expect("a plan");
     let values = inputs::values(&feeding, 0);

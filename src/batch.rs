@@ -198,7 +198,7 @@ mod tests {
         assert_eq!(count.load(Ordering::Relaxed), 9);
         let paths: Vec<&str> = entries.iter().map(|e| e.path.as_str()).collect();
         assert_eq!(paths, (0..9).map(|i| format!("m{i}.onnx")).collect::<Vec<_>>());
-        assert!(entries.iter().all(|e| e.status == "error"));
+        assert!(entries.iter().all(|e| e.status == crate::vocab::EntryStatus::Error));
         assert!(entries[4].error.as_deref().unwrap().contains("internal error: boom"));
         assert!(entries[3].error.as_deref().unwrap().contains("m3.onnx: no such file"));
     }

@@ -10,6 +10,7 @@ use std::path::Path;
 
 use crate::audit::{self, AuditConfig};
 use crate::error::{Error, ErrorKind, Result};
+use crate::open;
 
 use crate::probe::Progress;
 use crate::probe::inputs::Feeding;
@@ -21,6 +22,7 @@ use crate::report::text::plural;
 use crate::scan;
 use crate::stats;
 use crate::structure::{BlockKey, Step, align};
+use crate::vocab::PairStatus;
 
 /// What a comparison does.
 #[derive(Debug, Clone)]
@@ -92,21 +94,22 @@ pub fn compare_files(
     progress: &dyn Progress,
 ) -> Result<Comparison> {
     if !config.run {
-        let a = scan::scan_file(a_path, &config.audit.scan)?;
-        let b = scan::scan_file(b_path, &config.audit.scan)?;
+        let a = scan::scan_file(a_path, &config.audit.open)?;
+        let b = scan::scan_file(b_path, &config.audit.open)?;
         return Ok(comparison(&a, &b, None, None));
     }
     // Each model is opened once; both plans are checked before either runs.
-    let oa = audit::open_file(a_path, &config.audit)?;
-    let ob = audit::open_file(b_path, &config.audit)?;
+    let purpose = open::Purpose::Run;
+    let oa = open::open_file(a_path, &config.audit.open, purpose)?;
+    let ob = open::open_file(b_path, &config.audit.open, purpose)?;
     let fa = oa.plan(&config.audit.inputs).map_err(|e| e.at(a_path))?;
     let fb = ob.plan(&config.audit.inputs).map_err(|e| e.at(b_path))?;
     same_feeding(&fa, &fb, b_path)?;
-    let a = audit::measure(oa, fa, &config.audit, progress)?;
+    let a = audit::measured(oa, &fa, &config.audit, progress).map_err(|e| e.at(a_path))?;
     if let Some(e) = a.run_error {
         return Err(e.at(a_path));
     }
-    let b = audit::measure(ob, fb, &config.audit, progress)?;
+    let b = audit::measured(ob, &fb, &config.audit, progress).map_err(|e| e.at(b_path))?;
     if let Some(e) = b.run_error {
         return Err(e.at(b_path));
     }
@@ -215,10 +218,10 @@ pub fn comparison(
                 _ => Vec::new(),
             };
             let status = match (i, j) {
-                (Some(_), Some(_)) if differences.is_empty() => "same",
-                (Some(_), Some(_)) => "changed",
-                (Some(_), None) => "only-a",
-                _ => "only-b",
+                (Some(_), Some(_)) if differences.is_empty() => PairStatus::Same,
+                (Some(_), Some(_)) => PairStatus::Changed,
+                (Some(_), None) => PairStatus::OnlyA,
+                _ => PairStatus::OnlyB,
             };
             let key = i.map(|i| &ka[i]).or(j.map(|j| &kb[j])).expect("a step has a side");
             let ra = i.and_then(|i| ratio(a, i));
@@ -227,7 +230,7 @@ pub fn comparison(
             BlockPair {
                 a: i.map(|i| i + 1),
                 b: j.map(|j| j + 1),
-                status: status.to_owned(),
+                status,
                 merge_a: i.map(|i| a.blocks[i].merge.name.clone()),
                 merge_b: j.map(|j| b.blocks[j].merge.name.clone()),
                 stage: key.stage,
@@ -240,7 +243,7 @@ pub fn comparison(
             }
         })
         .collect();
-    let structural_differences = blocks.iter().filter(|p| p.status != "same").count();
+    let structural_differences = blocks.iter().filter(|p| p.status != PairStatus::Same).count();
     Comparison {
         schema: COMPARE_SCHEMA.to_owned(),
         schema_version: COMPARE_SCHEMA_VERSION,

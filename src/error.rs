@@ -9,6 +9,8 @@ use std::path::{Path, PathBuf};
 
 use serde::Serialize;
 
+use crate::vocab::Severity;
+
 /// What went wrong, coarsely; the message says the rest.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 #[non_exhaustive]
@@ -86,16 +88,6 @@ impl std::error::Error for Error {}
 /// Shorthand for an [`ErrorKind::Invalid`] error.
 pub(crate) fn invalid(message: impl Into<String>) -> Error {
     Error::new(ErrorKind::Invalid, message)
-}
-
-/// How serious a diagnostic is.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize)]
-#[serde(rename_all = "lowercase")]
-pub enum Severity {
-    /// Worth knowing; the analysis is complete.
-    Note,
-    /// Part of the analysis may be incomplete or less precise.
-    Warning,
 }
 
 /// A problem the analysis worked around.

@@ -10,41 +10,36 @@
 
 use serde::Deserialize;
 
-use crate::findings::Code;
 use crate::report::Report;
 use crate::report::text::plural;
 use crate::report::verify::{Difference, VERIFY_SCHEMA, VERIFY_SCHEMA_VERSION, Verification};
-use crate::structure::PLACEMENTS;
+use crate::vocab::{Against, DifferenceCode, FindingCode, Placement, ShortcutKind};
 
 /// The version of the expectation format this build reads.
 pub const EXPECT_VERSION: u32 = 1;
 
 /// A parsed expectation file.
-#[derive(Debug, Clone, Default, PartialEq, Deserialize)]
-#[serde(deny_unknown_fields)]
+#[derive(Debug, Clone, Default, PartialEq)]
 pub struct Expectation {
     /// Format version; 1 when absent.
     pub version: Option<u32>,
     /// Number of residual blocks in the whole model.
     pub blocks: Option<usize>,
     /// Placement of every block (a stage may override it).
-    pub placement: Option<String>,
+    pub placement: Option<Placement>,
     /// Block numbers (1-based, graph order) that have a projection shortcut;
     /// every other block must have none.
     pub projection: Option<Vec<usize>>,
     /// Deepest nesting of blocks (1 for a plain stack of blocks).
     pub nesting: Option<usize>,
     /// Stages in order; when given, the model must have exactly these.
-    #[serde(default, rename = "stage")]
     pub stages: Vec<StageExpectation>,
     /// Limits on findings.
-    #[serde(default)]
     pub limits: Limits,
 }
 
 /// What one stage should hold.
-#[derive(Debug, Clone, Default, PartialEq, Deserialize)]
-#[serde(deny_unknown_fields)]
+#[derive(Debug, Clone, Default, PartialEq)]
 pub struct StageExpectation {
     /// Number of blocks.
     pub blocks: Option<usize>,
@@ -53,25 +48,83 @@ pub struct StageExpectation {
     /// Positions (1-based, within the stage) of blocks with a projection shortcut.
     pub projection: Option<Vec<usize>>,
     /// Placement of every block of the stage.
-    pub placement: Option<String>,
+    pub placement: Option<Placement>,
 }
 
 /// Limits on findings and measurements.
-#[derive(Debug, Clone, Default, PartialEq, Deserialize)]
-#[serde(deny_unknown_fields)]
+#[derive(Debug, Clone, Default, PartialEq)]
 pub struct Limits {
-    /// Finding codes that must not occur (`"any"` for all).
-    #[serde(default)]
-    pub forbid: Vec<String>,
+    /// Finding codes that must not occur.
+    pub forbid: Vec<Forbidden>,
     /// Smallest allowed mean RMS(branch)/RMS(shortcut) of any block.
     pub ratio_min: Option<f64>,
     /// Largest allowed mean RMS(branch)/RMS(shortcut) of any block.
     pub ratio_max: Option<f64>,
 }
 
+/// A finding an expectation forbids: one code, or `"any"`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Forbidden {
+    /// Every finding.
+    Any,
+    /// This finding.
+    Code(FindingCode),
+}
+
+impl Forbidden {
+    fn covers(self, code: FindingCode) -> bool {
+        match self {
+            Forbidden::Any => true,
+            Forbidden::Code(c) => c == code,
+        }
+    }
+}
+
+/// The file as written: our keys, its words still text until checked
+/// against the vocabulary (so a wrong word gets its own message).
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct ExpectationFile {
+    version: Option<u32>,
+    blocks: Option<usize>,
+    placement: Option<String>,
+    projection: Option<Vec<usize>>,
+    nesting: Option<usize>,
+    #[serde(default, rename = "stage")]
+    stages: Vec<StageFile>,
+    #[serde(default)]
+    limits: LimitsFile,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct StageFile {
+    blocks: Option<usize>,
+    shape: Option<String>,
+    projection: Option<Vec<usize>>,
+    placement: Option<String>,
+}
+
+#[derive(Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct LimitsFile {
+    #[serde(default)]
+    forbid: Vec<String>,
+    ratio_min: Option<f64>,
+    ratio_max: Option<f64>,
+}
+
+fn placement(word: Option<String>) -> Result<Option<Placement>, String> {
+    word.map(|p| {
+        Placement::parse(&p)
+            .ok_or_else(|| format!("unknown placement '{p}' (known: {})", Placement::known()))
+    })
+    .transpose()
+}
+
 /// Parses an expectation file's text; the error says what is wrong.
 pub fn read(text: &str) -> Result<Expectation, String> {
-    let e: Expectation = toml::from_str(text).map_err(|e| {
+    let e: ExpectationFile = toml::from_str(text).map_err(|e| {
         format!("not a valid expectation file: {}", crate::structure::toml_message(text, &e))
     })?;
     if let Some(v) = e.version
@@ -81,22 +134,30 @@ pub fn read(text: &str) -> Result<Expectation, String> {
             "expectation version {v} is not supported (this shunt reads version {EXPECT_VERSION})"
         ));
     }
-    let placements = e.placement.iter().chain(e.stages.iter().filter_map(|s| s.placement.as_ref()));
-    for p in placements {
-        if !PLACEMENTS.contains(&p.as_str()) {
-            return Err(format!("unknown placement '{p}' (known: {})", PLACEMENTS.join(", ")));
-        }
+    let whole = placement(e.placement)?;
+    let mut stages = Vec::with_capacity(e.stages.len());
+    for s in e.stages {
+        stages.push(StageExpectation {
+            blocks: s.blocks,
+            shape: s.shape,
+            projection: s.projection,
+            placement: placement(s.placement)?,
+        });
     }
+    let mut forbid = Vec::with_capacity(e.limits.forbid.len());
     for code in &e.limits.forbid {
-        if code != "any" && Code::parse(code).is_none() {
-            let known: Vec<&str> = Code::ALL.iter().map(|c| c.as_str()).collect();
-            return Err(format!(
-                "limits.forbid: unknown finding '{code}' (known: {}, or any)",
-                known.join(", ")
-            ));
-        }
+        forbid.push(match FindingCode::parse(code) {
+            Some(c) => Forbidden::Code(c),
+            None if code == "any" => Forbidden::Any,
+            None => {
+                return Err(format!(
+                    "limits.forbid: unknown finding '{code}' (known: {}, or any)",
+                    FindingCode::known()
+                ));
+            }
+        });
     }
-    let zero = e.projection.iter().chain(e.stages.iter().filter_map(|s| s.projection.as_ref()));
+    let zero = e.projection.iter().chain(stages.iter().filter_map(|s| s.projection.as_ref()));
     if zero.flatten().any(|&n| n == 0) {
         return Err("projection: block numbers start at 1".to_owned());
     }
@@ -105,7 +166,15 @@ pub fn read(text: &str) -> Result<Expectation, String> {
     {
         return Err(format!("limits: ratio_min {lo} is above ratio_max {hi}"));
     }
-    Ok(e)
+    Ok(Expectation {
+        version: e.version,
+        blocks: e.blocks,
+        placement: whole,
+        projection: e.projection,
+        nesting: e.nesting,
+        stages,
+        limits: Limits { forbid, ratio_min: e.limits.ratio_min, ratio_max: e.limits.ratio_max },
+    })
 }
 
 impl Expectation {
@@ -114,16 +183,20 @@ impl Expectation {
     pub fn needs_run(&self) -> bool {
         self.limits.ratio_min.is_some()
             || self.limits.ratio_max.is_some()
-            || self.limits.forbid.iter().any(|c| {
-                c == "any"
-                    || Code::parse(c)
-                        .is_some_and(|c| !matches!(c, Code::StaticDead | Code::LostShortcut))
+            || self.limits.forbid.iter().any(|f| match f {
+                Forbidden::Any => true,
+                Forbidden::Code(c) => !c.is_structural(),
             })
     }
 }
 
-fn diff(code: &str, stage: Option<usize>, block: Option<usize>, message: String) -> Difference {
-    Difference { code: code.to_owned(), stage, block, pinned: None, message }
+fn diff(
+    code: DifferenceCode,
+    stage: Option<usize>,
+    block: Option<usize>,
+    message: String,
+) -> Difference {
+    Difference { code, stage, block, pinned: None, message }
 }
 
 fn label(r: &Report, id: usize) -> String {
@@ -143,7 +216,7 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
         checks += 1;
         if r.blocks.len() != n {
             d.push(diff(
-                "block-count",
+                DifferenceCode::BlockCount,
                 None,
                 None,
                 format!("the model has {}, expected {n}", plural(r.blocks.len(), "residual block")),
@@ -152,9 +225,9 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
     }
     if let Some(p) = &e.placement {
         checks += 1;
-        for b in r.blocks.iter().filter(|b| &b.placement != p) {
+        for b in r.blocks.iter().filter(|b| b.placement != *p) {
             d.push(diff(
-                "placement",
+                DifferenceCode::Placement,
                 b.stage,
                 Some(b.id),
                 format!("{} is {}, expected {p}", label(r, b.id), b.placement),
@@ -163,11 +236,15 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
     }
     if let Some(list) = &e.projection {
         checks += 1;
-        let have: Vec<usize> =
-            r.blocks.iter().filter(|b| b.shortcut.kind == "projection").map(|b| b.id).collect();
+        let have: Vec<usize> = r
+            .blocks
+            .iter()
+            .filter(|b| b.shortcut.kind == ShortcutKind::Projection)
+            .map(|b| b.id)
+            .collect();
         if &have != list {
             d.push(diff(
-                "projection",
+                DifferenceCode::Projection,
                 None,
                 None,
                 format!(
@@ -183,7 +260,7 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
         let deepest = r.blocks.iter().map(|b| b.depth + 1).max().unwrap_or(0);
         if deepest != n {
             d.push(diff(
-                "nesting",
+                DifferenceCode::Nesting,
                 None,
                 None,
                 format!("blocks nest {deepest} deep, expected {n}"),
@@ -195,7 +272,7 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
         if r.stages.len() != e.stages.len() {
             let counts: Vec<usize> = r.stages.iter().map(|s| s.blocks.len()).collect();
             d.push(diff(
-                "stage-count",
+                DifferenceCode::StageCount,
                 None,
                 None,
                 format!(
@@ -212,7 +289,7 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
                 checks += 1;
                 if have.blocks.len() != n {
                     d.push(diff(
-                        "stage-blocks",
+                        DifferenceCode::StageBlocks,
                         sid,
                         None,
                         format!(
@@ -229,7 +306,7 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
                 let got = have.shape.join("x");
                 if &got != shape {
                     d.push(diff(
-                        "stage-shape",
+                        DifferenceCode::StageShape,
                         sid,
                         None,
                         format!("stage {} has shape {got}, expected {shape}", have.id),
@@ -243,13 +320,15 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
                     .iter()
                     .enumerate()
                     .filter(|(_, id)| {
-                        r.blocks.get(**id - 1).is_some_and(|b| b.shortcut.kind == "projection")
+                        r.blocks
+                            .get(**id - 1)
+                            .is_some_and(|b| b.shortcut.kind == ShortcutKind::Projection)
                     })
                     .map(|(pos, _)| pos + 1)
                     .collect();
                 if &got != list {
                     d.push(diff(
-                        "projection",
+                        DifferenceCode::Projection,
                         sid,
                         None,
                         format!(
@@ -265,9 +344,9 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
                 checks += 1;
                 for &id in &have.blocks {
                     let b = &r.blocks[id - 1];
-                    if &b.placement != p {
+                    if b.placement != *p {
                         d.push(diff(
-                            "placement",
+                            DifferenceCode::Placement,
                             sid,
                             Some(id),
                             format!("{} is {}, expected {p}", label(r, id), b.placement),
@@ -280,11 +359,15 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
     let l = &e.limits;
     if !l.forbid.is_empty() {
         checks += 1;
-        let all = l.forbid.iter().any(|c| c == "any");
-        for f in r.findings.iter().filter(|f| all || l.forbid.contains(&f.code)) {
+        for f in r.findings.iter().filter(|f| l.forbid.iter().any(|x| x.covers(f.code))) {
             let block = f.block;
             let stage = block.and_then(|id| r.blocks.get(id - 1)).and_then(|b| b.stage);
-            d.push(diff("finding", stage, block, format!("{}: {}", f.code, f.message)));
+            d.push(diff(
+                DifferenceCode::Finding,
+                stage,
+                block,
+                format!("{}: {}", f.code, f.message),
+            ));
         }
     }
     if l.ratio_min.is_some() || l.ratio_max.is_some() {
@@ -293,7 +376,7 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
             let ratio = b.stats.as_ref().and_then(|s| s.ratio).map(|s| s.mean);
             let Some(ratio) = ratio else {
                 d.push(diff(
-                    "ratio",
+                    DifferenceCode::Ratio,
                     b.stage,
                     Some(b.id),
                     format!("{}: no ratio was measured", label(r, b.id)),
@@ -304,7 +387,7 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
                 && ratio < lo
             {
                 d.push(diff(
-                    "ratio",
+                    DifferenceCode::Ratio,
                     b.stage,
                     Some(b.id),
                     format!("{}: mean ratio {ratio:.4} is below ratio_min {lo}", label(r, b.id)),
@@ -314,7 +397,7 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
                 && ratio > hi
             {
                 d.push(diff(
-                    "ratio",
+                    DifferenceCode::Ratio,
                     b.stage,
                     Some(b.id),
                     format!("{}: mean ratio {ratio:.4} is above ratio_max {hi}", label(r, b.id)),
@@ -326,7 +409,7 @@ pub fn check(e: &Expectation, r: &Report, file: &str) -> Verification {
         schema: VERIFY_SCHEMA.to_owned(),
         schema_version: VERIFY_SCHEMA_VERSION,
         model: r.model.path.clone(),
-        against: "expect".to_owned(),
+        against: Against::Expect,
         file: file.to_owned(),
         blocks: r.blocks.len(),
         checks,

@@ -1,22 +1,28 @@
 //! shunt audits the residual structure of exported ONNX models.
 //!
-//! The pipeline runs one way: [`load`] decodes the file, [`graph`] builds
-//! the dataflow graph, [`residual`] finds the blocks, [`classify`] says what
-//! kind each is, [`scan`] puts it together into a [`report::Report`], and
-//! [`report`] renders it.
+//! The pipeline runs one way, in stages that each run once per model:
+//! [`open`] decodes ([`load`]), lowers ([`lower`]) and analyses the model
+//! ([`graph`], [`residual`] finds the blocks, [`classify`] says what kind
+//! each is) and plans its inputs; [`measure`] runs it and measures every
+//! block; [`assemble`] builds the [`report::Report`] and its findings; and
+//! [`report`] renders it. [`scan`] and [`audit`] compose the stages;
+//! [`cli::run`] is the whole command line as a function (what the `shunt`
+//! binary calls).
 //!
 //! ```no_run
 //! use std::path::Path;
-//! let config = shunt::scan::ScanConfig::standard();
+//! let config = shunt::open::OpenConfig::standard();
 //! let report = shunt::scan::scan_file(Path::new("model.onnx"), &config)?;
 //! println!("{} residual blocks", report.blocks.len());
 //! # Ok::<(), shunt::Error>(())
 //! ```
 #![deny(missing_docs)]
 
+pub mod assemble;
 pub mod audit;
 pub mod batch;
 pub mod classify;
+pub mod cli;
 pub mod compare;
 pub mod error;
 pub mod expect;
@@ -25,6 +31,8 @@ pub mod gate;
 pub mod graph;
 pub mod load;
 pub mod lower;
+pub mod measure;
+pub mod open;
 pub mod probe;
 pub mod proto;
 pub mod report;
@@ -32,5 +40,7 @@ pub mod residual;
 pub mod scan;
 pub mod stats;
 pub mod structure;
+pub mod vocab;
 
-pub use error::{Diagnostic, Error, ErrorKind, Result, Severity};
+pub use error::{Diagnostic, Error, ErrorKind, Result};
+pub use vocab::Severity;

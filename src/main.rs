@@ -1,8 +1,7 @@
-//! The `shunt` command: argument parsing, output files and exit codes. All
-//! the work happens in the library.
-
-mod cli;
+//! The `shunt` command: the library's command line ([`shunt::cli::run`])
+//! with this process's arguments and exit code. All the work happens in the
+//! library.
 
 fn main() -> std::process::ExitCode {
-    cli::main()
+    std::process::ExitCode::from(shunt::cli::run(std::env::args_os()))
 }

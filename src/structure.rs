@@ -15,9 +15,10 @@ use std::io;
 
 use serde::{Deserialize, Serialize};
 
-use crate::report::text::{plural, terminal_safe};
+use crate::report::text::{ARROW_ASCII, layer_signature, plural, terminal_safe};
 use crate::report::verify::{Difference, VERIFY_SCHEMA, VERIFY_SCHEMA_VERSION, Verification};
-use crate::report::{BlockRow, LayerRow, Report};
+use crate::report::{BlockRow, Report};
+use crate::vocab::{Against, DifferenceCode, Placement, ShortcutKind};
 
 /// Identifies a pin file.
 pub const PIN_SCHEMA: &str = "shunt/pin";
@@ -27,7 +28,7 @@ pub const PIN_SCHEMA_VERSION: u32 = 1;
 /// The residual structure of one model, as written to a pin file.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct Pin {
+pub struct Pin<B = PinBlock> {
     /// Always [`PIN_SCHEMA`].
     pub schema: String,
     /// Always [`PIN_SCHEMA_VERSION`].
@@ -36,8 +37,8 @@ pub struct Pin {
     #[serde(default, rename = "stage")]
     pub stages: Vec<PinStage>,
     /// Blocks in graph order.
-    #[serde(default, rename = "block")]
-    pub blocks: Vec<PinBlock>,
+    #[serde(default = "Vec::new", rename = "block")]
+    pub blocks: Vec<B>,
 }
 
 /// One stage of a pin.
@@ -52,16 +53,17 @@ pub struct PinStage {
     pub blocks: usize,
 }
 
-/// One block of a pin.
+/// One block of a pin; `W` is how its words are held (the vocabulary's
+/// types, or text as read from the file before it is checked).
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct PinBlock {
+pub struct PinBlock<S = ShortcutKind, P = Placement> {
     /// Stage id; absent when the output shape is unknown.
     pub stage: Option<usize>,
     /// `identity`, `projection` or `resampled`.
-    pub shortcut: String,
+    pub shortcut: S,
     /// `post-activation`, `pre-activation`, `pre-norm`, `post-norm` or `unactivated`.
-    pub placement: String,
+    pub placement: P,
     /// The branch's learned layers in order ([`layer_signature`]).
     pub branch: Vec<String>,
     /// How many blocks hold this one (0 for a plain stack).
@@ -69,35 +71,6 @@ pub struct PinBlock {
     pub depth: usize,
     /// 1-based number (in this file) of the innermost block holding this one.
     pub parent: Option<usize>,
-}
-
-/// The signature of a learned layer: kind, kernel, channels, groups, stride.
-/// `conv3x3 16->32 /2`, `dw3x3 96`, `conv1x1 64->64 g4`, `fc 64->256`.
-/// Gemm and MatMul are both `fc` (exporters and optimisers turn one into the
-/// other); fused and quantised forms of a layer sign like the plain one.
-pub fn layer_signature(l: &LayerRow) -> String {
-    let ch = |c: Option<u64>| c.map_or("?".to_owned(), |c| c.to_string());
-    let op = l.node.op_type.as_str();
-    if matches!(op, "LSTM" | "GRU" | "RNN") {
-        return format!("{} {}->{}", op.to_lowercase(), ch(l.in_channels), ch(l.out_channels));
-    }
-    if l.kernel.is_empty() {
-        return format!("fc {}->{}", ch(l.in_channels), ch(l.out_channels));
-    }
-    let stride = l
-        .strides
-        .iter()
-        .copied()
-        .max()
-        .filter(|&s| s > 1)
-        .map_or(String::new(), |s| format!(" /{s}"));
-    let k = l.kernel.iter().map(u64::to_string).collect::<Vec<_>>().join("x");
-    let name = if op == "ConvTranspose" { "deconv" } else { "conv" };
-    if l.groups > 1 && Some(l.groups) == l.in_channels {
-        return format!("dw{k} {}{stride}", ch(l.in_channels));
-    }
-    let groups = if l.groups > 1 { format!(" g{}", l.groups) } else { String::new() };
-    format!("{name}{k} {}->{}{groups}{stride}", ch(l.in_channels), ch(l.out_channels))
 }
 
 /// The pin of a report.
@@ -115,9 +88,9 @@ pub fn pin_of(r: &Report) -> Pin {
             .iter()
             .map(|b| PinBlock {
                 stage: b.stage,
-                shortcut: b.shortcut.kind.clone(),
-                placement: b.placement.clone(),
-                branch: b.branch.layers.iter().map(layer_signature).collect(),
+                shortcut: b.shortcut.kind,
+                placement: b.placement,
+                branch: b.branch.layers.iter().map(|l| layer_signature(l, ARROW_ASCII)).collect(),
                 depth: b.depth,
                 parent: b.parent,
             })
@@ -149,8 +122,8 @@ pub fn write_pin(pin: &Pin, source: &str, out: &mut dyn io::Write) -> io::Result
         if let Some(stage) = b.stage {
             let _ = writeln!(s, "stage = {stage}");
         }
-        let _ = writeln!(s, "shortcut = {}", quoted(&b.shortcut));
-        let _ = writeln!(s, "placement = {}", quoted(&b.placement));
+        let _ = writeln!(s, "shortcut = {}", quoted(b.shortcut.as_str()));
+        let _ = writeln!(s, "placement = {}", quoted(b.placement.as_str()));
         let layers: Vec<String> = b.branch.iter().map(|l| quoted(l)).collect();
         let _ = writeln!(s, "branch = [{}]", layers.join(", "));
         let _ = writeln!(s, "depth = {}", b.depth);
@@ -161,15 +134,11 @@ pub fn write_pin(pin: &Pin, source: &str, out: &mut dyn io::Write) -> io::Result
     out.write_all(s.as_bytes())
 }
 
-/// The shortcut kinds a pin or expectation file may name.
-pub(crate) const SHORTCUTS: [&str; 4] = ["identity", "projection", "resampled", "parameter"];
-/// The placements a pin or expectation file may name.
-pub(crate) const PLACEMENTS: [&str; 5] =
-    ["post-activation", "pre-activation", "pre-norm", "post-norm", "unactivated"];
-
 /// Reads a pin file's text; the error says what is wrong (the caller adds the path).
 pub fn read_pin(text: &str) -> Result<Pin, String> {
-    let pin: Pin =
+    // The words are read as text first, so that an unknown one is refused
+    // with the block it is in.
+    let pin: Pin<PinBlock<String, String>> =
         toml::from_str(text).map_err(|e| format!("not a pin file: {}", toml_message(text, &e)))?;
     if pin.schema != PIN_SCHEMA {
         return Err(format!("schema is '{}', expected '{PIN_SCHEMA}'", pin.schema));
@@ -180,37 +149,47 @@ pub fn read_pin(text: &str) -> Result<Pin, String> {
             pin.schema_version
         ));
     }
-    for (i, b) in pin.blocks.iter().enumerate() {
+    let count = pin.blocks.len();
+    let mut blocks = Vec::with_capacity(count);
+    for (i, b) in pin.blocks.into_iter().enumerate() {
         // A hand-edited pin with an unknown word would only ever report a
         // difference; say what is wrong with the file instead.
-        if !SHORTCUTS.contains(&b.shortcut.as_str()) {
+        let Some(shortcut) = ShortcutKind::parse(&b.shortcut) else {
             return Err(format!(
                 "block {}: shortcut '{}' is not one of {}",
                 i + 1,
                 b.shortcut,
-                SHORTCUTS.join(", ")
+                ShortcutKind::known()
             ));
-        }
-        if !PLACEMENTS.contains(&b.placement.as_str()) {
+        };
+        let Some(placement) = Placement::parse(&b.placement) else {
             return Err(format!(
                 "block {}: placement '{}' is not one of {}",
                 i + 1,
                 b.placement,
-                PLACEMENTS.join(", ")
+                Placement::known()
             ));
-        }
+        };
         if let Some(s) = b.stage
             && !pin.stages.iter().any(|st| st.id == s)
         {
             return Err(format!("block {} names stage {s}, which the file does not list", i + 1));
         }
         if let Some(p) = b.parent
-            && (p == 0 || p > pin.blocks.len())
+            && (p == 0 || p > count)
         {
             return Err(format!("block {} names parent {p}, which is not a block", i + 1));
         }
+        blocks.push(PinBlock {
+            stage: b.stage,
+            shortcut,
+            placement,
+            branch: b.branch,
+            depth: b.depth,
+            parent: b.parent,
+        });
     }
-    Ok(pin)
+    Ok(Pin { schema: pin.schema, schema_version: pin.schema_version, stages: pin.stages, blocks })
 }
 
 /// What identifies a block across exports of one architecture.
@@ -221,9 +200,9 @@ pub struct BlockKey {
     /// Stage id, when known.
     pub stage: Option<usize>,
     /// Shortcut kind.
-    pub shortcut: String,
+    pub shortcut: ShortcutKind,
     /// Placement.
-    pub placement: String,
+    pub placement: Placement,
     /// Signatures of the branch's learned layers.
     pub branch: Vec<String>,
     /// Nesting depth.
@@ -240,9 +219,9 @@ impl BlockKey {
         BlockKey {
             stage_shape,
             stage: b.stage,
-            shortcut: b.shortcut.kind.clone(),
-            placement: b.placement.clone(),
-            branch: b.branch.layers.iter().map(layer_signature).collect(),
+            shortcut: b.shortcut.kind,
+            placement: b.placement,
+            branch: b.branch.layers.iter().map(|l| layer_signature(l, ARROW_ASCII)).collect(),
             depth: b.depth,
         }
     }
@@ -256,8 +235,8 @@ impl BlockKey {
         BlockKey {
             stage_shape,
             stage: b.stage,
-            shortcut: b.shortcut.clone(),
-            placement: b.placement.clone(),
+            shortcut: b.shortcut,
+            placement: b.placement,
             branch: b.branch.clone(),
             depth: b.depth,
         }
@@ -386,7 +365,7 @@ pub fn verify_pin(pin: &Pin, r: &Report, file: &str) -> Verification {
                 swapped[i1] = true;
                 swapped[i2] = true;
                 diffs.push(Difference {
-                    code: "swapped-blocks".to_owned(),
+                    code: DifferenceCode::SwappedBlocks,
                     stage: have[j1].stage,
                     block: Some(j1 + 1),
                     pinned: Some(i1 + 1),
@@ -422,9 +401,9 @@ pub fn verify_pin(pin: &Pin, r: &Report, file: &str) -> Verification {
                 }
                 let (w, h) = (&want[i], &have[j]);
                 let at = merge_label(r, j + 1);
-                let mut d = |code: &str, message: String| {
+                let mut d = |code: DifferenceCode, message: String| {
                     diffs.push(Difference {
-                        code: code.to_owned(),
+                        code,
                         stage: h.stage,
                         block: Some(j + 1),
                         pinned: Some(i + 1),
@@ -433,7 +412,7 @@ pub fn verify_pin(pin: &Pin, r: &Report, file: &str) -> Verification {
                 };
                 if w.shortcut != h.shortcut {
                     d(
-                        "shortcut-changed",
+                        DifferenceCode::ShortcutChanged,
                         format!(
                             "{at}: the shortcut is {}, pinned block {} had {}",
                             h.shortcut,
@@ -444,7 +423,7 @@ pub fn verify_pin(pin: &Pin, r: &Report, file: &str) -> Verification {
                 }
                 if w.placement != h.placement {
                     d(
-                        "placement-changed",
+                        DifferenceCode::PlacementChanged,
                         format!(
                             "{at}: placement is {}, pinned block {} was {}",
                             h.placement,
@@ -455,7 +434,7 @@ pub fn verify_pin(pin: &Pin, r: &Report, file: &str) -> Verification {
                 }
                 if w.branch != h.branch {
                     d(
-                        "branch-changed",
+                        DifferenceCode::BranchChanged,
                         format!(
                             "{at}: the branch holds [{}], pinned block {} held [{}]",
                             h.branch.join(", "),
@@ -472,7 +451,7 @@ pub fn verify_pin(pin: &Pin, r: &Report, file: &str) -> Verification {
                         p.map_or("at the top level".to_owned(), |p| format!("inside block {p}"))
                     };
                     d(
-                        "nesting-changed",
+                        DifferenceCode::NestingChanged,
                         format!(
                             "{at}: is {} (depth {}), pinned block {} was {} of the pin (depth {})",
                             inside(model_parent),
@@ -494,7 +473,7 @@ pub fn verify_pin(pin: &Pin, r: &Report, file: &str) -> Verification {
                     (None, None) => "somewhere in the model".to_owned(),
                 };
                 diffs.push(Difference {
-                    code: "missing-block".to_owned(),
+                    code: DifferenceCode::MissingBlock,
                     stage: want[i].stage,
                     block: None,
                     pinned: Some(i + 1),
@@ -508,7 +487,7 @@ pub fn verify_pin(pin: &Pin, r: &Report, file: &str) -> Verification {
             Step::OnlyB(j) => {
                 last_model = Some(j);
                 diffs.push(Difference {
-                    code: "extra-block".to_owned(),
+                    code: DifferenceCode::ExtraBlock,
                     stage: have[j].stage,
                     block: Some(j + 1),
                     pinned: None,
@@ -526,7 +505,7 @@ pub fn verify_pin(pin: &Pin, r: &Report, file: &str) -> Verification {
         schema: VERIFY_SCHEMA.to_owned(),
         schema_version: VERIFY_SCHEMA_VERSION,
         model: r.model.path.clone(),
-        against: "pin".to_owned(),
+        against: Against::Pin,
         file: file.to_owned(),
         blocks: r.blocks.len(),
         checks: pin.blocks.len() + pin.stages.len(),
@@ -548,7 +527,7 @@ fn stage_differences(pin: &Pin, r: &Report) -> Vec<Difference> {
                 if p.blocks != h.2 {
                     let verb = if h.2 < p.blocks { "lost" } else { "gained" };
                     let mut d = Difference::new(
-                        "stage-blocks",
+                        DifferenceCode::StageBlocks,
                         format!(
                             "stage {} ({}) {verb} {}: it has {}, the pin has {} (pinned stage {})",
                             h.0,
@@ -566,7 +545,7 @@ fn stage_differences(pin: &Pin, r: &Report) -> Vec<Difference> {
             Step::OnlyA(i) => {
                 let p = &pin.stages[i];
                 diffs.push(Difference::new(
-                    "missing-stage",
+                    DifferenceCode::MissingStage,
                     format!(
                         "pinned stage {} ({}, {}) is not in the model",
                         p.id,
@@ -578,7 +557,7 @@ fn stage_differences(pin: &Pin, r: &Report) -> Vec<Difference> {
             Step::OnlyB(j) => {
                 let h = &have[j];
                 let mut d = Difference::new(
-                    "extra-stage",
+                    DifferenceCode::ExtraStage,
                     format!("stage {} ({}, {}) is not in the pin", h.0, h.1, plural(h.2, "block")),
                 );
                 d.stage = Some(h.0);
@@ -604,12 +583,12 @@ pub(crate) fn toml_message(text: &str, e: &toml::de::Error) -> String {
 mod tests {
     use super::*;
 
-    fn key(stage: &str, shortcut: &str, branch: &[&str]) -> BlockKey {
+    fn key(stage: &str, shortcut: ShortcutKind, branch: &[&str]) -> BlockKey {
         BlockKey {
             stage_shape: stage.to_owned(),
             stage: Some(1),
-            shortcut: shortcut.to_owned(),
-            placement: "post-activation".to_owned(),
+            shortcut,
+            placement: Placement::PostActivation,
             branch: branch.iter().map(|s| (*s).to_owned()).collect(),
             depth: 1,
         }
@@ -638,42 +617,12 @@ mod tests {
 
     #[test]
     fn keys_pair_within_a_stage_shape_only() {
-        let a = key("16x8x8", "identity", &["conv3x3 16->16"]);
-        let b = key("32x4x4", "identity", &["conv3x3 16->16"]);
+        let a = key("16x8x8", ShortcutKind::Identity, &["conv3x3 16->16"]);
+        let b = key("32x4x4", ShortcutKind::Identity, &["conv3x3 16->16"]);
         assert_eq!(a.score(&b), None);
-        let c = key("16x8x8", "projection", &["conv3x3 16->16"]);
+        let c = key("16x8x8", ShortcutKind::Projection, &["conv3x3 16->16"]);
         assert_eq!(a.score(&c), Some(5));
         assert_eq!(a.score(&a), Some(6));
-    }
-
-    #[test]
-    fn signatures_name_kernel_channels_groups_and_stride() {
-        let node = |op: &str| crate::report::NodeRef {
-            name: "n".to_owned(),
-            index: 0,
-            op_type: op.to_owned(),
-            lowered_from: None,
-        };
-        let l = |op: &str, kernel: Vec<u64>, i: u64, o: u64, s: Vec<i64>, g: u64| LayerRow {
-            node: node(op),
-            kernel,
-            in_channels: Some(i),
-            out_channels: Some(o),
-            strides: s,
-            groups: g,
-        };
-        assert_eq!(
-            layer_signature(&l("Conv", vec![3, 3], 16, 32, vec![2, 2], 1)),
-            "conv3x3 16->32 /2"
-        );
-        assert_eq!(
-            layer_signature(&l("QLinearConv", vec![3, 3], 16, 32, vec![2, 2], 1)),
-            "conv3x3 16->32 /2"
-        );
-        assert_eq!(layer_signature(&l("Conv", vec![3, 3], 96, 96, vec![1, 1], 96)), "dw3x3 96");
-        assert_eq!(layer_signature(&l("Conv", vec![1, 1], 64, 64, vec![], 4)), "conv1x1 64->64 g4");
-        assert_eq!(layer_signature(&l("Gemm", vec![], 64, 256, vec![], 1)), "fc 64->256");
-        assert_eq!(layer_signature(&l("MatMul", vec![], 64, 256, vec![], 1)), "fc 64->256");
     }
 
     #[test]
@@ -685,16 +634,16 @@ mod tests {
             blocks: vec![
                 PinBlock {
                     stage: Some(1),
-                    shortcut: "identity".to_owned(),
-                    placement: "pre-norm".to_owned(),
+                    shortcut: ShortcutKind::Identity,
+                    placement: Placement::PreNorm,
                     branch: vec!["fc 8->\"8\"".to_owned()],
                     depth: 1,
                     parent: None,
                 },
                 PinBlock {
                     stage: None,
-                    shortcut: "projection".to_owned(),
-                    placement: "unactivated".to_owned(),
+                    shortcut: ShortcutKind::Projection,
+                    placement: Placement::Unactivated,
                     branch: vec![],
                     depth: 2,
                     parent: Some(1),
@@ -716,5 +665,11 @@ mod tests {
         assert!(read_pin("[[block]]\nshortcut = 1\n").is_err());
         let bad = text.replace("parent = 1", "parent = 7");
         assert!(read_pin(&bad).unwrap_err().contains("parent 7"));
+        let bad = text.replace("\"pre-norm\"", "\"pre-normal\"");
+        assert!(
+            read_pin(&bad)
+                .unwrap_err()
+                .starts_with("block 1: placement 'pre-normal' is not one of post-activation, ")
+        );
     }
 }

@@ -144,13 +144,13 @@ fn layer_scale_branches_are_flagged_dead() {
         // About 1e-6 times the branch before the scale, which is of order 1.
         assert!(q > 1e-8 && q < 1e-4, "block {}: ratio {q} [C1]", b.id);
         assert!(
-            r.findings.iter().any(|f| f.block == Some(b.id) && f.code == "dead"),
+            r.findings.iter().any(|f| f.block == Some(b.id) && f.code.as_str() == "dead"),
             "block {} dead [C1]",
             b.id
         );
     }
     // Tiny magnitudes do not make the whole signal vanish: it is the shortcut.
-    assert!(!r.findings.iter().any(|f| f.code == "vanishing-signal"));
+    assert!(!r.findings.iter().any(|f| f.code.as_str() == "vanishing-signal"));
 }
 
 // [Z1] ReZero is All You Need, arXiv:2003.04887: alpha = 0 makes every branch
@@ -187,7 +187,7 @@ fn demo_shows_its_planted_defects() {
     let found = |code: &str| -> Vec<String> {
         r.findings
             .iter()
-            .filter(|f| f.code == code)
+            .filter(|f| f.code.as_str() == code)
             .filter_map(|f| f.node.as_ref().map(|n| n.name.clone()))
             .collect()
     };
@@ -197,7 +197,7 @@ fn demo_shows_its_planted_defects() {
     assert_eq!(found("static-dead"), vec!["stage2.2.add"]);
     assert_eq!(found("dominant"), vec!["stage3.1.add"]);
     let lost: Vec<&shunt::report::FindingRow> =
-        r.findings.iter().filter(|f| f.code == "lost-shortcut").collect();
+        r.findings.iter().filter(|f| f.code.as_str() == "lost-shortcut").collect();
     assert_eq!(lost.len(), 1);
     assert!(lost[0].message.contains("stage1.1.conv1"), "{}", lost[0].message);
     // The dead branch measures exactly zero; the scaled one about 40x its peers.
@@ -384,7 +384,7 @@ fn non_finite_values_are_findings_not_crashes() {
     let s = r.blocks[0].stats.as_ref().unwrap();
     assert!(s.nan > 0, "NaN counted");
     assert!(
-        r.findings.iter().any(|f| f.code == "non-finite" && f.block == Some(1)),
+        r.findings.iter().any(|f| f.code.as_str() == "non-finite" && f.block == Some(1)),
         "{:?}",
         r.findings
     );
@@ -431,7 +431,7 @@ fn subgraphs_are_reported() {
         ],
         ..Default::default()
     });
-    let r = shunt::scan::scan_model(model, "if", &shunt::scan::ScanConfig::standard()).unwrap();
+    let r = shunt::scan::scan_model(model, "if", &shunt::open::OpenConfig::standard()).unwrap();
     assert_eq!(r.subgraphs.len(), 1);
     assert_eq!((r.subgraphs[0].node.name.as_str(), r.subgraphs[0].subgraphs), ("branchy", 2));
     assert!(r.diagnostics.iter().any(|d| d.message.contains("not searched")));

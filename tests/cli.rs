@@ -283,3 +283,64 @@ fn declared_sizes_are_checked_before_reading() {
     let p = write(dir.path(), "dtype.onnx", &m);
     assert_clean_error(&shunt(&["scan", &p]), &p, "unknown element type 99");
 }
+
+/// The library entry `shunt::cli::run` (what a Python binding calls) is the
+/// program: the same document and the same exit codes as the binary.
+#[test]
+fn the_library_entry_is_the_command_line() {
+    let dir = tempdir();
+    let model = crate::util::fixture("resnet18_a.onnx");
+    let out = dir.path().join("r.json");
+    let argv = |args: &[&str]| -> Vec<std::ffi::OsString> {
+        std::iter::once("shunt").chain(args.iter().copied()).map(Into::into).collect()
+    };
+    let model = model.to_str().unwrap();
+    let code =
+        shunt::cli::run(argv(&["scan", model, "--format", "json", "-o", out.to_str().unwrap()]));
+    assert_eq!(code, 0);
+    let binary = shunt(&["scan", model, "--format", "json"]);
+    assert_eq!(binary.code, 0);
+    assert_eq!(fs::read_to_string(&out).unwrap(), binary.stdout);
+    // An error is exit code 2, a usage error too; --help succeeds.
+    assert_eq!(shunt::cli::run(argv(&["scan", "no-such-model.onnx", "-q"])), 2);
+    assert_eq!(shunt::cli::run(argv(&["scan", model, "--format", "yaml"])), 2);
+    assert_eq!(shunt::cli::run(argv(&["verify", model, "--pin", model, "--format", "html"])), 2);
+    // A --fail-on finding is exit code 1 (zero_branch has a static-dead block).
+    let zero = crate::util::fixture("zero_branch.onnx");
+    let quiet = dir.path().join("z.json");
+    let args =
+        ["scan", zero.to_str().unwrap(), "--fail-on", "static-dead", "-o", quiet.to_str().unwrap()];
+    assert_eq!(shunt::cli::run(argv(&args)), 1);
+}
+
+/// `shunt::cli::run_quietly` (what the Python package calls) returns the
+/// one-line error the program prints after `shunt: error: `, and prints
+/// nothing itself.
+#[test]
+fn the_quiet_entry_returns_the_programs_error() {
+    let argv = |args: &[&str]| -> Vec<std::ffi::OsString> {
+        std::iter::once("shunt").chain(args.iter().copied()).map(Into::into).collect()
+    };
+    let missing = "no-such-model.onnx";
+    let outcome = shunt::cli::run_quietly(argv(&["scan", missing]));
+    assert_eq!((outcome.code, outcome.internal), (2, false));
+    let message = outcome.error.expect("an error for a missing file");
+    let binary = shunt(&["scan", missing]);
+    assert_eq!(binary.code, 2);
+    assert_eq!(binary.stderr.trim_end(), format!("shunt: error: {message}"));
+    // A usage error: clap's first line, without its `error: ` prefix.
+    let usage = shunt::cli::run_quietly(argv(&["scan", missing, "--no-such-option"]));
+    assert_eq!(usage.code, 2);
+    let line = usage.error.expect("a usage error");
+    assert!(line.contains("--no-such-option") && !line.starts_with("error:"), "{line}");
+    // Success and a --fail-on gate carry no error.
+    let zero = crate::util::fixture("zero_branch.onnx");
+    let dir = tempdir();
+    let out = dir.path().join("z.json");
+    let args =
+        ["scan", zero.to_str().unwrap(), "--fail-on", "static-dead", "-o", out.to_str().unwrap()];
+    assert_eq!(
+        shunt::cli::run_quietly(argv(&args)),
+        shunt::cli::Outcome { code: 1, error: None, internal: false }
+    );
+}

@@ -2,8 +2,10 @@
 //! published layouts give the counts their papers state, and the result does
 //! not depend on names, `value_info` or node order.
 
+use shunt::open::OpenConfig;
 use shunt::report::Report;
-use shunt::scan::{self, ScanConfig};
+use shunt::report::text::{ARROW, layer_signature};
+use shunt::scan;
 use shunt_testkit::builder::{self, Form};
 use shunt_testkit::fixtures::{self, Census};
 use shunt_testkit::zoo;
@@ -11,7 +13,7 @@ use shunt_testkit::zoo;
 use crate::util::{fixture, shunt};
 
 fn scan_in_memory(model: shunt::proto::ModelProto) -> Report {
-    scan::scan_model(model, "in-memory", &ScanConfig::standard()).expect("the scan succeeds")
+    scan::scan_model(model, "in-memory", &OpenConfig::standard()).expect("the scan succeeds")
 }
 
 fn count(r: &Report, key: &str) -> u32 {
@@ -120,7 +122,7 @@ fn imagenet_resnets_match_table_1() {
             let projected: Vec<usize> = s
                 .blocks
                 .iter()
-                .filter(|&&id| r.blocks[id - 1].shortcut.kind == "projection")
+                .filter(|&&id| r.blocks[id - 1].shortcut.kind.as_str() == "projection")
                 .copied()
                 .collect();
             assert!(
@@ -156,7 +158,10 @@ fn shortcut_options_a_and_c() {
     }));
     assert_eq!(count(&d, "resampled"), 3, "[Z2] pooled projections in stages 2-4");
     assert!(
-        d.blocks.iter().filter(|b| b.shortcut.kind == "resampled").all(|b| b.shortcut.projected)
+        d.blocks
+            .iter()
+            .filter(|b| b.shortcut.kind.as_str() == "resampled")
+            .all(|b| b.shortcut.projected)
     );
 }
 
@@ -299,7 +304,7 @@ fn signature(r: &Report) -> (Vec<String>, usize, usize, Vec<Vec<String>>) {
         .map(|b| {
             // Graph order of independent layers may change with the node order.
             let mut layers: Vec<String> =
-                b.branch.layers.iter().map(shunt::report::table::layer_label).collect();
+                b.branch.layers.iter().map(|l| layer_signature(l, ARROW)).collect();
             layers.sort();
             format!(
                 "{} {} [{}] stage={:?} depth={}",

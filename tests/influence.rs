@@ -5,8 +5,9 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::StandardNormal;
 
-use shunt::audit::{self, AuditConfig, InfluenceConfig};
+use shunt::audit::{self, AuditConfig};
 use shunt::load::ExternalData;
+use shunt::measure::InfluenceConfig;
 use shunt::probe::Silent;
 use shunt::probe::inputs::{self, Values};
 use shunt::proto::ModelProto;
@@ -94,7 +95,7 @@ fn knockout_of_a_zero_branch_changes_nothing() {
             assert_eq!(k.top1, Some(1.0));
             assert!(row.low_impact);
         }
-        let low = a.report.findings.iter().filter(|f| f.code == "low-impact").count();
+        let low = a.report.findings.iter().filter(|f| f.code.as_str() == "low-impact").count();
         assert_eq!(low, 3, "{name}");
     }
 }
@@ -159,7 +160,7 @@ fn analytic_gains(
     step_size: f32,
 ) -> (Vec<f64>, Vec<f64>) {
     let analysis =
-        shunt::scan::analyse(model.clone(), ExternalData::none(), &c.scan).expect("analyses");
+        shunt::open::analyse(model.clone(), ExternalData::none(), &c.open).expect("analyses");
     let feeding = inputs::plan(&inputs::input_specs(&analysis.graph), &c.inputs).unwrap();
     let width = (weights[0].len() as f64).sqrt() as usize;
     let (mut per_block, mut to_here) = (vec![0.0; weights.len()], vec![0.0; weights.len()]);
@@ -211,7 +212,7 @@ fn gain_of_a_linear_stack_is_its_jacobian_norm_along_the_direction() {
     let c = config(8, ic);
     let a = audit_with(model.clone(), &c);
     let (per_block, to_here) = measured_gains(&a.report);
-    let (want_block, want_here) = analytic_gains(&model, &weights, &c, audit::GAIN_STEP);
+    let (want_block, want_here) = analytic_gains(&model, &weights, &c, shunt::measure::GAIN_STEP);
     assert!(
         worst_relative_error(&per_block, &want_block) < 1e-3,
         "{per_block:?} vs {want_block:?}"
@@ -221,7 +222,7 @@ fn gain_of_a_linear_stack_is_its_jacobian_norm_along_the_direction() {
     assert!((e2e - want_here[5]).abs() < 1e-3 * want_here[5]);
 }
 
-// The step-size reasoning of `audit::GAIN_STEP`, shown on the same linear
+// The step-size reasoning of `shunt::measure::GAIN_STEP`, shown on the same linear
 // stack where the exact answer is known: the error is about c·u/step, so at
 // the default step it is far below 1e-3, while a step of 1e-7 (about one
 // float32 spacing of the inputs) lets rounding dominate the measurement.
@@ -238,7 +239,7 @@ fn gain_step_keeps_float32_rounding_small() {
         let (want, _) = analytic_gains(&model, &weights, &c, step_size);
         worst_relative_error(&per_block, &want)
     };
-    let good = error_at(audit::GAIN_STEP);
+    let good = error_at(shunt::measure::GAIN_STEP);
     let tiny = error_at(1e-7);
     assert!(good < 1e-3, "default step: {good}");
     assert!(tiny > 1e-2, "step 1e-7 should be dominated by rounding: {tiny}");

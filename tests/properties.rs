@@ -7,6 +7,7 @@ use std::collections::HashMap;
 
 use proptest::prelude::*;
 use prost::Message;
+use shunt::open::OpenConfig;
 use shunt::proto::{
     AttributeProto, GraphProto, ModelProto, NodeProto, OperatorSetIdProto, TensorProto,
     TensorShapeProto, TypeProto, ValueInfoProto, attribute_proto::AttributeType,
@@ -14,7 +15,7 @@ use shunt::proto::{
     type_proto,
 };
 use shunt::report::Report;
-use shunt::scan::{ScanConfig, scan_model};
+use shunt::scan::scan_model;
 use shunt_testkit::builder::{reorder_nodes, strip_node_names};
 
 /// One node of a random graph: an op and picks among the tensors made so far.
@@ -183,7 +184,7 @@ fn census(r: &Report) -> (Vec<String>, [usize; 5]) {
 }
 
 fn scan(model: ModelProto) -> Report {
-    scan_model(model, "random.onnx", &ScanConfig::standard()).expect("a valid DAG scans")
+    scan_model(model, "random.onnx", &OpenConfig::standard()).expect("a valid DAG scans")
 }
 
 proptest! {
@@ -278,7 +279,7 @@ proptest! {
             mutate(&mut bytes, m);
         }
         if let Ok(model) = shunt::load::decode(bytes::Bytes::from(bytes)) {
-            let _ = scan_model(model, "mutated.onnx", &ScanConfig::standard());
+            let _ = scan_model(model, "mutated.onnx", &OpenConfig::standard());
         }
     }
 }

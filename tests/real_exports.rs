@@ -7,8 +7,9 @@
 
 use std::path::PathBuf;
 
+use shunt::open::OpenConfig;
 use shunt::report::{BlockRow, Report};
-use shunt::scan::{ScanConfig, scan_file};
+use shunt::scan::scan_file;
 
 fn torch_fixture(name: &str) -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("fixtures").join("torch").join(name)
@@ -17,8 +18,9 @@ fn torch_fixture(name: &str) -> PathBuf {
 fn scan(name: &str) -> Report {
     let path = torch_fixture(name);
     let report =
-        scan_file(&path, &ScanConfig::standard()).unwrap_or_else(|e| panic!("scan {name}: {e}"));
-    let warnings: Vec<_> = report.diagnostics.iter().filter(|d| d.severity == "warning").collect();
+        scan_file(&path, &OpenConfig::standard()).unwrap_or_else(|e| panic!("scan {name}: {e}"));
+    let warnings: Vec<_> =
+        report.diagnostics.iter().filter(|d| d.severity.as_str() == "warning").collect();
     assert!(warnings.is_empty(), "{name}: warnings {warnings:?}");
     // export.py: in these modules every Add of two input-dependent operands is a
     // shortcut merge (no mask, no positional Add): nothing is rejected (decoys=0).
@@ -35,7 +37,7 @@ fn census(report: &Report) -> Vec<(String, String, usize)> {
     report
         .blocks
         .iter()
-        .map(|b| (b.shortcut.kind.clone(), b.placement.clone(), b.branch.layers.len()))
+        .map(|b| (b.shortcut.kind.to_string(), b.placement.to_string(), b.branch.layers.len()))
         .collect()
 }
 
@@ -129,16 +131,25 @@ fn check_cifar_resnet(r: &Report) {
     assert_eq!(count(&r.summary.by_shortcut, "identity"), 4, "{:?}", r.summary.by_shortcut);
     for b in &r.blocks {
         assert_eq!(
-            b.shortcut.kind == "projection",
+            b.shortcut.kind.as_str() == "projection",
             changes_shape(b),
             "block {}: {:?}",
             b.id,
             b.shortcut
         );
-        assert_eq!(b.shortcut.projected, b.shortcut.kind == "projection", "block {}", b.id);
+        assert_eq!(
+            b.shortcut.projected,
+            b.shortcut.kind.as_str() == "projection",
+            "block {}",
+            b.id
+        );
     }
-    let projections: Vec<usize> =
-        r.blocks.iter().filter(|b| b.shortcut.kind == "projection").map(|b| b.id).collect();
+    let projections: Vec<usize> = r
+        .blocks
+        .iter()
+        .filter(|b| b.shortcut.kind.as_str() == "projection")
+        .map(|b| b.id)
+        .collect();
     assert_eq!(projections, vec![3, 5]);
     assert_eq!(r.summary.concat_skips, 0);
 }
@@ -157,7 +168,7 @@ fn cifar_resnet_with_bn_folded_into_conv() {
     check_cifar_resnet(&r);
     // [R2] option B: the projection is a 1x1 convolution (BN folded into it).
     let projections: Vec<&BlockRow> =
-        r.blocks.iter().filter(|b| b.shortcut.kind == "projection").collect();
+        r.blocks.iter().filter(|b| b.shortcut.kind.as_str() == "projection").collect();
     // fixtures/torch/MANIFEST.txt: projection=2.
     assert_eq!(projections.len(), 2);
     for b in projections {
@@ -172,7 +183,7 @@ fn cifar_resnet_with_batchnorm_nodes_kept() {
     check_cifar_resnet(&r);
     // [R2] option B projection: 1x1 convolution, here followed by its BatchNormalization.
     let projections: Vec<&BlockRow> =
-        r.blocks.iter().filter(|b| b.shortcut.kind == "projection").collect();
+        r.blocks.iter().filter(|b| b.shortcut.kind.as_str() == "projection").collect();
     // fixtures/torch/MANIFEST.txt: projection=2.
     assert_eq!(projections.len(), 2);
     for b in projections {
@@ -202,14 +213,14 @@ fn cifar_resnet_quantised_qdq_keeps_the_float_blocks() {
     check_cifar_resnet(&q);
     // Quantisation inserts Q/DQ pairs but adds no merge and removes none [R2][R3].
     let kind_place = |r: &Report| -> Vec<(String, String)> {
-        r.blocks.iter().map(|b| (b.shortcut.kind.clone(), b.placement.clone())).collect()
+        r.blocks.iter().map(|b| (b.shortcut.kind.to_string(), b.placement.to_string())).collect()
     };
     assert_eq!(kind_place(&q), kind_place(&float));
     assert_eq!(census(&q), census(&float));
     assert_eq!(merge_names(&q), merge_names(&float));
     for b in &q.blocks {
         let ops: Vec<&str> = b.shortcut.ops.iter().map(|o| o.op_type.as_str()).collect();
-        if b.shortcut.kind == "identity" {
+        if b.shortcut.kind.as_str() == "identity" {
             // A dedicated Q/DQ pair on the shortcut is still an identity shortcut.
             assert_eq!(ops, vec!["QuantizeLinear", "DequantizeLinear"], "block {}", b.id);
         } else {

@@ -3,7 +3,8 @@
 
 use std::fs;
 
-use shunt::scan::{self, ScanConfig};
+use shunt::open::OpenConfig;
+use shunt::scan;
 use shunt_testkit::large::{self, DecoderConfig};
 
 use crate::util;
@@ -39,7 +40,7 @@ fn seven_billion_parameter_decoder_is_scanned_without_reading_its_weights() {
     // In this thread: the scan reads the model file and nothing of the
     // 27 GB weight file (a few KB of slack for the folder and metadata).
     let before = bytes_read_by_this_thread();
-    let report = scan::scan_file(&model, &ScanConfig::standard()).unwrap();
+    let report = scan::scan_file(&model, &OpenConfig::standard()).unwrap();
     let read = bytes_read_by_this_thread() - before;
     assert_eq!(report.blocks.len(), 2 * cfg.layers);
     assert!(

@@ -2,7 +2,8 @@
 //! set of arrows between top-level modules that the code has.
 //!
 //! A file's module is its first component under `src/` (`src/report/table.rs`
-//! is `report`); `src/main.rs` and `src/cli/` are the binary, `cli`. A use of
+//! is `report`); `src/main.rs`, the binary, counts as `cli`, the command line
+//! it runs. A use of
 //! module `B` is any path through the crate root in code, in `use` lines or
 //! inline (`crate::lower::Origin`), with groups expanded: `crate::B` in the
 //! library and `shunt::B` in the binary, and the root's re-exports
@@ -80,13 +81,13 @@ fn checker_finds_planted_faults() {
     let file = |path: &str, text: &str| (path.to_owned(), text.to_owned());
     let files = vec![
         file("lib.rs", "pub mod app;\npub use model::{Thing as T, Error};\n"),
-        file("main.rs", "mod cli;\nfn main() { cli::main() }\n"),
-        // The binary reaches the library as `shunt::`, its own modules as `crate::`.
+        // The binary reaches the library as `shunt::`; its own `crate::` is not the library.
         file(
-            "cli/mod.rs",
-            "use shunt::{app, model::{Thing, Other}};\nuse crate::cli::x;\n\
-             fn main() { shunt::Error::new(); }\n",
+            "main.rs",
+            "use shunt::{app, model::{Thing, Other}};\nuse crate::x;\n\
+             fn main() { shunt::Error::new(); shunt::cli::run() }\n",
         ),
+        file("cli/mod.rs", "use crate::cli::x;\n"),
         file(
             "app.rs",
             "use crate::model::{Thing, Hidden};\n\
@@ -107,7 +108,7 @@ fn checker_finds_planted_faults() {
     let problems = check(&table, &files);
     let expected = [
         // The binary: `shunt::Error` resolves through lib.rs to `model`.
-        "cli → model (Error): the table allows only (Gone, Other, Thing) [src/cli/mod.rs:3]",
+        "cli → model (Error): the table allows only (Gone, Other, Thing) [src/main.rs:3]",
         // Grouped use: the item outside the detail.
         "app → model (Hidden): the table allows only (Thing) [src/app.rs:1]",
         // An extern crate outside its home.
@@ -231,7 +232,7 @@ fn check(table: &Table, files: &[(String, String)]) -> Vec<String> {
                 }
             }
         }
-        for found in uses(&from, path, &tokens, &modules, &reexports, &mut problems) {
+        for found in uses(path, &tokens, &modules, &reexports, &mut problems) {
             if found.to == from {
                 continue;
             }
@@ -278,14 +279,13 @@ fn check(table: &Table, files: &[(String, String)]) -> Vec<String> {
 
 /// The uses of other modules in one file's tokens.
 fn uses(
-    from: &str,
     path: &str,
     tokens: &[(String, usize)],
     modules: &BTreeSet<String>,
     reexports: &BTreeMap<String, String>,
     problems: &mut Vec<String>,
 ) -> Vec<Use> {
-    let bin = from == "cli";
+    let bin = path == "main.rs";
     let mut found = Vec::new();
     for (i, (token, line)) in tokens.iter().enumerate() {
         let root = token == "crate" || (bin && token == "shunt");
@@ -396,7 +396,7 @@ fn rename_aliases(tokens: &[(String, usize)]) -> Vec<(String, usize)> {
 }
 
 /// `src/scan.rs` → `scan`, `src/report/table.rs` → `report`, `src/main.rs`
-/// and `src/cli/…` → `cli`; `src/lib.rs` (the root) → none.
+/// (the binary) and `src/cli/…` → `cli`; `src/lib.rs` (the root) → none.
 fn module_of(path: &str) -> Option<String> {
     let first = path.split('/').next()?;
     match first.trim_end_matches(".rs") {

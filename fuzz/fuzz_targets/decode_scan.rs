@@ -11,6 +11,6 @@ fuzz_target!(|data: &[u8]| {
     if shunt::load::check_payloads(&model, &external).is_err() {
         return;
     }
-    let config = shunt::scan::ScanConfig::standard();
+    let config = shunt::open::OpenConfig::standard();
     let _ = shunt::scan::scan_model(model, "fuzz.onnx", &config);
 });

@@ -14,6 +14,7 @@ use crate::graph::op::{self, Family};
 use crate::graph::{Graph, NodeId, ValueId};
 use crate::load::attr;
 use crate::residual::Block;
+use crate::vocab::{DeadReason, Placement};
 
 pub use stage::{BareRun, BareRuns, RegularRun, Stage, bare_runs, group, stage_keys, stages};
 
@@ -22,35 +23,6 @@ pub use stage::{BareRun, BareRuns, RegularRun, Stage, bare_runs, group, stage_ke
 pub struct ClassifyConfig {
     /// Weight tensors larger than this are not read to check for all zeros.
     pub max_inspect_bytes: u64,
-}
-
-/// Where normalisation and activation sit relative to the merge.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
-pub enum Placement {
-    /// An activation consumes the merge output: `relu(F(x) + x)` ([R3]).
-    PostActivation,
-    /// The branch opens with a normalisation or activation (or both branch
-    /// and shortcut start after one) and the merge output is not activated ([P1]).
-    PreActivation,
-    /// The branch opens with a layer normalisation: `x + F(LN(x))` ([T2]).
-    PreNorm,
-    /// A normalisation consumes the merge output: `LN(x + F(x))` ([T1]).
-    PostNorm,
-    /// Neither: `x + F(x)` with a linear end and nothing after ([M1]).
-    Unactivated,
-}
-
-impl Placement {
-    /// The report's name for it.
-    pub fn as_str(self) -> &'static str {
-        match self {
-            Placement::PostActivation => "post-activation",
-            Placement::PreActivation => "pre-activation",
-            Placement::PreNorm => "pre-norm",
-            Placement::PostNorm => "post-norm",
-            Placement::Unactivated => "unactivated",
-        }
-    }
 }
 
 /// A learned layer of a branch.
@@ -110,13 +82,12 @@ impl ValueSummary {
 
 /// Why a branch is dead by construction: its output cannot depend on its input.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum StaticDead {
-    /// The branch ends in a constant scale that is all zeros ([Z1]).
-    ZeroScale(NodeId),
-    /// The last normalisation's scale is all zeros.
-    ZeroNormScale(NodeId),
-    /// The last learned layer's weights are all zeros.
-    ZeroWeights(NodeId),
+pub struct StaticDead {
+    /// Which constant is all zeros: the end scale ([Z1]), the last
+    /// normalisation's scale, or the last learned layer's weights.
+    pub reason: DeadReason,
+    /// The node holding it.
+    pub node: NodeId,
 }
 
 /// The classification of one block.
@@ -592,7 +563,7 @@ fn static_dead(
         && s.min == 0.0
         && s.max == 0.0
     {
-        return Some(StaticDead::ZeroScale(*node));
+        return Some(StaticDead { reason: DeadReason::ZeroScale, node: *node });
     }
     // Walk back from each branch input to the last learned layer; every branch
     // input must be dead for the branch to be.
@@ -609,20 +580,20 @@ fn static_dead(
                     let konst =
                         node.inputs.iter().flatten().copied().find(|&i| g.value(i).is_static);
                     if node.op == "Mul" && all_zero(g, konst, config) {
-                        found = Some(StaticDead::ZeroScale(p));
+                        found = Some(StaticDead { reason: DeadReason::ZeroScale, node: p });
                         break;
                     }
                 }
                 Family::Norm => {
                     if all_zero(g, g.input(p, 1), config) {
-                        found = Some(StaticDead::ZeroNormScale(p));
+                        found = Some(StaticDead { reason: DeadReason::ZeroNormScale, node: p });
                         break;
                     }
                 }
                 Family::Linear => {
                     let w = op::weight_slot(g, p).and_then(|s| g.input(p, s));
                     if all_zero(g, w, config) {
-                        found = Some(StaticDead::ZeroWeights(p));
+                        found = Some(StaticDead { reason: DeadReason::ZeroWeights, node: p });
                     }
                     break;
                 }

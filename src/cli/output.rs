@@ -9,7 +9,7 @@ use anyhow::{Context, bail};
 
 /// Renders into `path` (or standard output when `None`), refusing to
 /// overwrite any of `inputs`.
-pub fn write(
+pub(super) fn write(
     path: Option<&Path>,
     inputs: &[&Path],
     render: impl FnOnce(&mut dyn Write) -> io::Result<()>,

@@ -6,12 +6,12 @@ use std::io::IsTerminal;
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 
 /// The probe's progress, drawn with indicatif.
-pub struct Bar {
+pub(super) struct Bar {
     bar: ProgressBar,
 }
 
 impl Bar {
-    pub fn new(quiet: bool) -> Bar {
+    pub(super) fn new(quiet: bool) -> Bar {
         let bar = ProgressBar::with_draw_target(None, ProgressDrawTarget::stderr());
         if quiet || !std::io::stderr().is_terminal() {
             bar.set_draw_target(ProgressDrawTarget::hidden());
@@ -24,12 +24,12 @@ impl Bar {
         Bar { bar }
     }
 
-    pub fn clear(&self) {
+    pub(super) fn clear(&self) {
         self.bar.finish_and_clear();
     }
 }
 
-impl shunt::probe::Progress for Bar {
+impl crate::probe::Progress for Bar {
     fn step(&self, message: &str, total: u64) {
         self.bar.set_message(message.to_owned());
         self.bar.set_length(total);

@@ -6,7 +6,7 @@
 //! **Invariant:** findings are a pure function of the per-block summaries and
 //! the configuration; they never look at tensors or graphs.
 
-use std::fmt;
+use crate::vocab::FindingCode;
 
 /// Thresholds, all relative.
 #[derive(Debug, Clone)]
@@ -23,76 +23,16 @@ pub struct FindingConfig {
     pub depth_factor: f64,
 }
 
-/// What kind of finding.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
-pub enum Code {
-    /// The branch is negligible next to its shortcut.
-    Dead,
-    /// The branch dominates its shortcut.
-    Dominant,
-    /// Many channels of the branch are negligible next to the shortcut's.
-    DeadChannels,
-    /// NaN or infinite values in a block.
-    NonFinite,
-    /// The branch cannot depend on its input (all-zero constants).
-    StaticDead,
-    /// Learned layers inside a stage that no shortcut spans.
-    LostShortcut,
-    /// The signal grows by more than the depth factor across the blocks.
-    ExplodingSignal,
-    /// The signal shrinks by more than the depth factor across the blocks.
-    VanishingSignal,
-    /// Knocking out the branch changes the outputs by almost nothing.
-    LowImpact,
-    /// A small input change grows by more than the gain factor along the blocks.
-    ExplodingGain,
-    /// A small input change shrinks by more than the gain factor along the blocks.
-    VanishingGain,
-}
-
-impl Code {
-    /// Every code, in report order.
-    pub const ALL: [Code; 11] = [
-        Code::StaticDead,
-        Code::LostShortcut,
-        Code::Dead,
-        Code::Dominant,
-        Code::DeadChannels,
-        Code::NonFinite,
-        Code::ExplodingSignal,
-        Code::VanishingSignal,
-        Code::LowImpact,
-        Code::ExplodingGain,
-        Code::VanishingGain,
-    ];
-
-    /// The name used in reports and on the command line.
-    pub fn as_str(self) -> &'static str {
-        match self {
-            Code::Dead => "dead",
-            Code::Dominant => "dominant",
-            Code::DeadChannels => "dead-channels",
-            Code::NonFinite => "non-finite",
-            Code::StaticDead => "static-dead",
-            Code::LostShortcut => "lost-shortcut",
-            Code::ExplodingSignal => "exploding-signal",
-            Code::VanishingSignal => "vanishing-signal",
-            Code::LowImpact => "low-impact",
-            Code::ExplodingGain => "exploding-gain",
-            Code::VanishingGain => "vanishing-gain",
-        }
-    }
-
-    /// Parses a name from [`Code::as_str`].
-    pub fn parse(s: &str) -> Option<Code> {
-        Code::ALL.into_iter().find(|c| c.as_str() == s)
-    }
-}
-
-impl fmt::Display for Code {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str(self.as_str())
-    }
+impl FindingConfig {
+    /// The documented defaults (docs/statistics.md), the only place they are
+    /// written: `dead` below 0.01, `dominant` above 10, `dead-channels` above
+    /// half the channels, a depth factor of 100.
+    pub const STANDARD: FindingConfig = FindingConfig {
+        dead_below: 0.01,
+        dominant_above: 10.0,
+        dead_channels_above: 0.5,
+        depth_factor: 100.0,
+    };
 }
 
 /// What findings need to know of one block (block ids are 1-based).
@@ -118,7 +58,7 @@ pub struct BlockFacts {
 #[derive(Debug, Clone, PartialEq)]
 pub struct Finding {
     /// What kind.
-    pub code: Code,
+    pub code: FindingCode,
     /// The block it is about (1-based), if any.
     pub block: Option<usize>,
     /// What was seen, with the numbers.
@@ -141,7 +81,7 @@ pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> 
     let mut out = Vec::new();
     for r in runs {
         out.push(Finding {
-            code: Code::LostShortcut,
+            code: FindingCode::LostShortcut,
             block: Some(r.before),
             message: format!(
                 "{} learned layer(s) between blocks #{} and #{} of one stage are spanned by no shortcut ({})",
@@ -156,7 +96,7 @@ pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> 
         let id = i + 1;
         if let Some(reason) = &b.static_dead {
             out.push(Finding {
-                code: Code::StaticDead,
+                code: FindingCode::StaticDead,
                 block: Some(id),
                 message: format!("the branch cannot depend on its input: {reason}"),
             });
@@ -164,7 +104,7 @@ pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> 
         if let Some(r) = b.ratio {
             if r < config.dead_below {
                 out.push(Finding {
-                    code: Code::Dead,
+                    code: FindingCode::Dead,
                     block: Some(id),
                     message: format!(
                         "branch/shortcut RMS ratio {r:.3e} is below {}",
@@ -173,7 +113,7 @@ pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> 
                 });
             } else if r > config.dominant_above {
                 out.push(Finding {
-                    code: Code::Dominant,
+                    code: FindingCode::Dominant,
                     block: Some(id),
                     message: format!(
                         "branch/shortcut RMS ratio {r:.3e} is above {}",
@@ -186,7 +126,7 @@ pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> 
             let already_dead = b.ratio.is_some_and(|r| r < config.dead_below);
             if f > config.dead_channels_above && !already_dead {
                 out.push(Finding {
-                    code: Code::DeadChannels,
+                    code: FindingCode::DeadChannels,
                     block: Some(id),
                     message: format!(
                         "{:.0}% of {c} channels have a branch below {} of the shortcut",
@@ -198,7 +138,7 @@ pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> 
         }
         if b.non_finite > 0 {
             out.push(Finding {
-                code: Code::NonFinite,
+                code: FindingCode::NonFinite,
                 block: Some(id),
                 message: format!("{} NaN or infinite values in the block's tensors", b.non_finite),
             });
@@ -216,7 +156,7 @@ pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> 
         let growth = last / first;
         if growth > config.depth_factor {
             out.push(Finding {
-                    code: Code::ExplodingSignal,
+                    code: FindingCode::ExplodingSignal,
                     block: None,
                     message: format!(
                         "output RMS grows {growth:.3e}-fold from block #{first_id} to block #{last_id} (limit {})",
@@ -225,7 +165,7 @@ pub fn findings(blocks: &[BlockFacts], runs: &[Run], config: &FindingConfig) -> 
                 });
         } else if growth < 1.0 / config.depth_factor {
             out.push(Finding {
-                    code: Code::VanishingSignal,
+                    code: FindingCode::VanishingSignal,
                     block: None,
                     message: format!(
                         "output RMS shrinks to {growth:.3e} of its value from block #{first_id} to block #{last_id} (limit 1/{})",
@@ -248,6 +188,13 @@ pub struct InfluenceThresholds {
     pub gain_factor: f64,
 }
 
+impl InfluenceThresholds {
+    /// The documented defaults (docs/statistics.md): `low-impact` below 0.01,
+    /// a gain factor of 100.
+    pub const STANDARD: InfluenceThresholds =
+        InfluenceThresholds { low_impact_below: 0.01, gain_factor: 100.0 };
+}
+
 /// What the knockout and gain findings need to know of one block.
 #[derive(Debug, Clone, Default)]
 pub struct InfluenceFacts {
@@ -267,7 +214,7 @@ pub fn influence(blocks: &[InfluenceFacts], t: &InfluenceThresholds) -> Vec<Find
             && k < t.low_impact_below
         {
             out.push(Finding {
-                code: Code::LowImpact,
+                code: FindingCode::LowImpact,
                 block: Some(i + 1),
                 message: format!(
                     "knocking out the branch changes the outputs by {k:.3e} relative (below {}): a candidate for pruning",
@@ -284,7 +231,7 @@ pub fn influence(blocks: &[InfluenceFacts], t: &InfluenceThresholds) -> Vec<Find
     let last = gains.last().map(|&(_, g)| g);
     if let Some(&(id, g)) = gains.iter().find(|(_, g)| *g > t.gain_factor) {
         out.push(Finding {
-            code: Code::ExplodingGain,
+            code: FindingCode::ExplodingGain,
             block: Some(id),
             message: format!(
                 "a small input change grows {g:.3e}-fold from the first block to this one (limit {}); {:.3e}-fold at the last block",
@@ -294,7 +241,7 @@ pub fn influence(blocks: &[InfluenceFacts], t: &InfluenceThresholds) -> Vec<Find
         });
     } else if let Some(&(id, g)) = gains.iter().find(|(_, g)| *g < 1.0 / t.gain_factor) {
         out.push(Finding {
-            code: Code::VanishingGain,
+            code: FindingCode::VanishingGain,
             block: Some(id),
             message: format!(
                 "a small input change shrinks to {g:.3e} of its size from the first block to this one (limit 1/{}); {:.3e} at the last block",
@@ -327,9 +274,10 @@ mod tests {
             BlockFacts { ratio: Some(40.0), output_rms: Some(1e-9), ..Default::default() },
         ];
         let f = findings(&blocks, &[], &config());
-        let codes: Vec<(Code, Option<usize>)> = f.iter().map(|f| (f.code, f.block)).collect();
+        let codes: Vec<(FindingCode, Option<usize>)> =
+            f.iter().map(|f| (f.code, f.block)).collect();
         // Tiny absolute magnitudes decide nothing; only the ratios do.
-        assert_eq!(codes, vec![(Code::Dead, Some(1)), (Code::Dominant, Some(3))]);
+        assert_eq!(codes, vec![(FindingCode::Dead, Some(1)), (FindingCode::Dominant, Some(3))]);
     }
 
     #[test]
@@ -342,10 +290,16 @@ mod tests {
             })
             .collect();
         let f = findings(&blocks, &[], &config());
-        assert_eq!(f.iter().map(|f| f.code).collect::<Vec<_>>(), vec![Code::ExplodingSignal]);
+        assert_eq!(
+            f.iter().map(|f| f.code).collect::<Vec<_>>(),
+            vec![FindingCode::ExplodingSignal]
+        );
         blocks.reverse();
         let f = findings(&blocks, &[], &config());
-        assert_eq!(f.iter().map(|f| f.code).collect::<Vec<_>>(), vec![Code::VanishingSignal]);
+        assert_eq!(
+            f.iter().map(|f| f.code).collect::<Vec<_>>(),
+            vec![FindingCode::VanishingSignal]
+        );
     }
 
     #[test]
@@ -357,9 +311,13 @@ mod tests {
             InfluenceFacts { knockout: None, gain_to_here: Some(400.0) },
         ];
         let f = influence(&facts, &t);
-        let codes: Vec<(Code, Option<usize>)> = f.iter().map(|f| (f.code, f.block)).collect();
+        let codes: Vec<(FindingCode, Option<usize>)> =
+            f.iter().map(|f| (f.code, f.block)).collect();
         // Strict: 0.01 is not below 0.01; the explosion is placed where it first crosses.
-        assert_eq!(codes, vec![(Code::LowImpact, Some(1)), (Code::ExplodingGain, Some(2))]);
+        assert_eq!(
+            codes,
+            vec![(FindingCode::LowImpact, Some(1)), (FindingCode::ExplodingGain, Some(2))]
+        );
         let facts = [
             InfluenceFacts { knockout: None, gain_to_here: Some(0.5) },
             InfluenceFacts { knockout: None, gain_to_here: Some(1e-3) },
@@ -367,15 +325,7 @@ mod tests {
         let f = influence(&facts, &t);
         assert_eq!(
             f.iter().map(|f| (f.code, f.block)).collect::<Vec<_>>(),
-            vec![(Code::VanishingGain, Some(2))]
+            vec![(FindingCode::VanishingGain, Some(2))]
         );
-    }
-
-    #[test]
-    fn codes_round_trip() {
-        for c in Code::ALL {
-            assert_eq!(Code::parse(c.as_str()), Some(c));
-        }
-        assert_eq!(Code::parse("nope"), None);
     }
 }

@@ -179,6 +179,13 @@ impl Graph {
         self.initializers.get(&id)
     }
 
+    /// Lets go of the initializers' payloads (the decoded weights), once
+    /// nothing more is to be read from them: names, shapes, facts and
+    /// structure stay, but constants read as unknown from then on.
+    pub fn release_payloads(&mut self) {
+        self.initializers = HashMap::new();
+    }
+
     /// The tensor a static value takes, when it is an initializer or the
     /// output of a Constant node, possibly behind shape-only ops (Reshape,
     /// Unsqueeze, Squeeze, Flatten, Identity, Cast).

@@ -62,8 +62,11 @@ pub struct LowerConfig {
 impl LowerConfig {
     /// Nothing given: NCHWc models whose shapes fit both block sizes are
     /// read with this machine's ([`machine_nchwc_block`]).
+    pub const STANDARD: LowerConfig = LowerConfig { nchwc_block: None };
+
+    /// [`LowerConfig::STANDARD`].
     pub fn standard() -> LowerConfig {
-        LowerConfig { nchwc_block: None }
+        LowerConfig::STANDARD
     }
 }
 

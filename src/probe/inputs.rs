@@ -78,22 +78,27 @@ pub struct InputConfig {
 pub const MAX_INPUT_ELEMENTS: u64 = 1 << 28;
 
 impl InputConfig {
-    /// The documented defaults for `samples` samples: standard normal inputs
-    /// with seed 0, all at once, nothing overridden, the default size limit.
+    /// The documented defaults, the only place they are written (the
+    /// command line's defaults read them): 8 samples of standard normal
+    /// inputs with seed 0, all at once, nothing overridden, the default size
+    /// limit.
+    pub const STANDARD: InputConfig = InputConfig {
+        samples: 8,
+        max_pass: None,
+        seed: 0,
+        dist: Dist::Normal,
+        scale: 1.0,
+        dims: BTreeMap::new(),
+        shapes: BTreeMap::new(),
+        fills: BTreeMap::new(),
+        batch_axes: BTreeMap::new(),
+        feed: None,
+        max_input_elements: MAX_INPUT_ELEMENTS,
+    };
+
+    /// [`InputConfig::STANDARD`] with `samples` samples.
     pub fn standard(samples: usize) -> InputConfig {
-        InputConfig {
-            samples,
-            max_pass: None,
-            seed: 0,
-            dist: Dist::Normal,
-            scale: 1.0,
-            dims: BTreeMap::new(),
-            shapes: BTreeMap::new(),
-            fills: BTreeMap::new(),
-            batch_axes: BTreeMap::new(),
-            feed: None,
-            max_input_elements: MAX_INPUT_ELEMENTS,
-        }
+        InputConfig { samples, ..InputConfig::STANDARD }
     }
 }
 

@@ -31,6 +31,9 @@ use crate::error::{Error, ErrorKind, Result};
 use crate::stats;
 use inputs::{Feeding, Values};
 
+/// The inference engine and its version, as reports name it.
+pub const ENGINE: &str = "tract-onnx 0.23.9";
+
 /// What to watch for one block, by ONNX tensor name.
 #[derive(Debug, Clone)]
 pub struct Watch {

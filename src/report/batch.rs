@@ -10,6 +10,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::report::Report;
 use crate::report::text::terminal_safe;
+use crate::vocab::{Command, EntryStatus};
 
 /// Identifies the JSON document of a batch.
 pub const BATCH_SCHEMA: &str = "shunt/batch";
@@ -26,7 +27,7 @@ pub struct BatchReport {
     /// Always [`BATCH_SCHEMA_VERSION`].
     pub schema_version: u32,
     /// `scan` or `audit`.
-    pub command: String,
+    pub command: Command,
     /// One entry per model file, sorted by path.
     pub models: Vec<BatchEntry>,
     /// Counts over all entries.
@@ -40,7 +41,7 @@ pub struct BatchEntry {
     /// The model file, as found.
     pub path: String,
     /// `ok` (no finding), `findings` (at least one finding) or `error`.
-    pub status: String,
+    pub status: EntryStatus,
     /// Why the model could not be analysed or run.
     pub error: Option<String>,
     /// The model's report; absent when nothing could be analysed, present
@@ -68,7 +69,7 @@ pub struct BatchSummary {
 
 impl BatchReport {
     /// A batch of `command` from its entries (kept in the order given).
-    pub fn new(command: &str, models: Vec<BatchEntry>) -> BatchReport {
+    pub fn new(command: Command, models: Vec<BatchEntry>) -> BatchReport {
         let mut summary = BatchSummary {
             models: models.len(),
             ok: 0,
@@ -78,22 +79,22 @@ impl BatchReport {
             findings: BTreeMap::new(),
         };
         for m in &models {
-            match m.status.as_str() {
-                "error" => summary.errors += 1,
-                "findings" => summary.with_findings += 1,
-                _ => summary.ok += 1,
+            match m.status {
+                EntryStatus::Error => summary.errors += 1,
+                EntryStatus::Findings => summary.with_findings += 1,
+                EntryStatus::Ok => summary.ok += 1,
             }
             if let Some(r) = &m.report {
                 summary.blocks += r.blocks.len();
                 for f in &r.findings {
-                    *summary.findings.entry(f.code.clone()).or_default() += 1;
+                    *summary.findings.entry(f.code.as_str().to_owned()).or_default() += 1;
                 }
             }
         }
         BatchReport {
             schema: BATCH_SCHEMA.to_owned(),
             schema_version: BATCH_SCHEMA_VERSION,
-            command: command.to_owned(),
+            command,
             models,
             summary,
         }
@@ -105,11 +106,11 @@ impl BatchEntry {
     /// error; the status follows from both.
     pub fn new(path: String, report: Option<Report>, error: Option<String>) -> BatchEntry {
         let status = match (&report, &error) {
-            (_, Some(_)) | (None, None) => "error",
-            (Some(r), None) if !r.findings.is_empty() => "findings",
-            (Some(_), None) => "ok",
+            (_, Some(_)) | (None, None) => EntryStatus::Error,
+            (Some(r), None) if !r.findings.is_empty() => EntryStatus::Findings,
+            (Some(_), None) => EntryStatus::Ok,
         };
-        BatchEntry { path, status: status.to_owned(), error, report }
+        BatchEntry { path, status, error, report }
     }
 }
 
@@ -147,7 +148,7 @@ pub fn render_table(b: &BatchReport, out: &mut dyn io::Write) -> io::Result<()> 
         t.add_row([
             (i + 1).to_string(),
             terminal_safe(&m.path),
-            m.status.clone(),
+            m.status.to_string(),
             blocks,
             shortcuts,
             terminal_safe(&detail),

@@ -8,6 +8,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::report::FedRow;
 use crate::report::text::{plural, terminal_safe};
+use crate::vocab::PairStatus;
 
 /// Identifies the JSON document of a comparison.
 pub const COMPARE_SCHEMA: &str = "shunt/compare";
@@ -80,7 +81,7 @@ pub struct BlockPair {
     /// Block id in B, or `null` when only A has the block.
     pub b: Option<usize>,
     /// `same`, `changed`, `only-a` or `only-b`.
-    pub status: String,
+    pub status: PairStatus,
     /// The merge node's name in A and in B.
     pub merge_a: Option<String>,
     /// See `merge_a`.
@@ -177,11 +178,11 @@ pub fn render(c: &Comparison, out: &mut dyn io::Write) -> io::Result<()> {
     }
     t.set_header(header);
     for p in &c.blocks {
-        let structure = match p.status.as_str() {
-            "same" => "same".to_owned(),
-            "changed" => p.differences.join("; "),
-            "only-a" => format!("only in A: {}", p.structure),
-            _ => format!("only in B: {}", p.structure),
+        let structure = match p.status {
+            PairStatus::Same => "same".to_owned(),
+            PairStatus::Changed => p.differences.join("; "),
+            PairStatus::OnlyA => format!("only in A: {}", p.structure),
+            PairStatus::OnlyB => format!("only in B: {}", p.structure),
         };
         let merge = p.merge_a.clone().or_else(|| p.merge_b.clone().map(|m| format!("(B) {m}")));
         let mut row = vec![

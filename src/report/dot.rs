@@ -6,8 +6,8 @@
 
 use std::io;
 
-use crate::report::table::layer_label;
 use crate::report::text::terminal_safe;
+use crate::report::text::{ARROW, layer_signature};
 use crate::report::{BlockRow, Report};
 
 /// A DOT quoted string: control characters made visible, then `\` and `"`
@@ -72,7 +72,7 @@ pub fn render(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
     for b in &r.blocks {
         let codes = codes_of(r, b);
         let mut label = vec![format!("#{} branch", b.id)];
-        label.extend(b.branch.layers.iter().map(layer_label));
+        label.extend(b.branch.layers.iter().map(|l| layer_signature(l, ARROW)));
         if b.children > 0 {
             label.push(format!("holds {} block(s)", b.children));
         }
@@ -96,7 +96,7 @@ pub fn render(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
         writeln!(out, "  \"branch {0}\" -> \"merge {0}\";", b.id)?;
         let ops: Vec<&str> = b.shortcut.ops.iter().map(|o| o.op_type.as_str()).collect();
         let kind = if ops.is_empty() {
-            b.shortcut.kind.clone()
+            b.shortcut.kind.to_string()
         } else {
             format!("{} ({})", b.shortcut.kind, ops.join("→"))
         };

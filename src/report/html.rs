@@ -15,9 +15,9 @@ use askama::Template;
 
 use crate::report::marks::{self, Mark};
 use crate::report::plot::{self, Plot, PlotSpec, StageSpan, Threshold};
-use crate::report::table::layer_label;
-use crate::report::text::{num, terminal_safe};
+use crate::report::text::{ARROW, layer_signature, num, terminal_safe};
 use crate::report::{BlockRow, FindingRow, Report};
+use crate::vocab::FindingCode;
 
 /// What the page needs besides the report.
 #[derive(Debug, Clone)]
@@ -145,18 +145,22 @@ struct RowView {
     codes: String,
 }
 
-fn codes_of(r: &Report, id: usize) -> Vec<&str> {
-    r.findings.iter().filter(|f| f.block == Some(id)).map(|f| f.code.as_str()).collect()
+fn codes_of(r: &Report, id: usize) -> Vec<FindingCode> {
+    r.findings.iter().filter(|f| f.block == Some(id)).map(|f| f.code).collect()
+}
+
+fn words(codes: &[FindingCode]) -> String {
+    codes.iter().map(|c| c.as_str()).collect::<Vec<_>>().join(", ")
 }
 
 fn mark_of(r: &Report, id: usize) -> Mark {
     marks::for_codes(codes_of(r, id))
 }
 
-fn mark_for_code(code: &str) -> Mark {
+fn mark_for_code(code: FindingCode) -> Mark {
     match code {
-        "exploding-signal" => marks::EXPLODING,
-        "vanishing-signal" => marks::VANISHING,
+        FindingCode::ExplodingSignal => marks::EXPLODING,
+        FindingCode::VanishingSignal => marks::VANISHING,
         _ => marks::for_codes([code]),
     }
 }
@@ -189,16 +193,21 @@ impl Page {
                 "bad",
             ),
         };
-        let mut counts: BTreeMap<&str, usize> = BTreeMap::new();
+        // Chips in the order of their words.
+        let mut counts: BTreeMap<&str, (FindingCode, usize)> = BTreeMap::new();
         for f in &r.findings {
-            *counts.entry(f.code.as_str()).or_default() += 1;
+            counts.entry(f.code.as_str()).or_insert((f.code, 0)).1 += 1;
         }
         let chips = counts
-            .into_iter()
-            .map(|(code, count)| Chip { code: t(code), count, mark: mark_for_code(code) })
+            .into_values()
+            .map(|(code, count)| Chip {
+                code: code.as_str().to_owned(),
+                count,
+                mark: mark_for_code(code),
+            })
             .collect();
         Ok(Page {
-            title: format!("shunt {} · {}", t(&r.command), t(&model_name)),
+            title: format!("shunt {} · {}", r.command.as_str(), t(&model_name)),
             model_name: t(&model_name),
             verdict,
             verdict_class,
@@ -278,14 +287,14 @@ impl Page {
             not_blocks: r
                 .not_blocks
                 .iter()
-                .map(|n| (t(&n.node.name), format!("{}: {}", t(&n.reason), t(&n.detail))))
+                .map(|n| (t(&n.node.name), format!("{}: {}", n.reason.as_str(), t(&n.detail))))
                 .collect(),
             diagnostics: r
                 .diagnostics
                 .iter()
                 .map(|d| {
                     let node = d.node.as_deref().map_or(String::new(), |n| format!(" [{}]", t(n)));
-                    (t(&d.severity), format!("{}{node}", t(&d.message)))
+                    (d.severity.as_str().to_owned(), format!("{}{node}", t(&d.message)))
                 })
                 .collect(),
             command: command_line(&ctx.argv),
@@ -298,7 +307,7 @@ fn model_findings(r: &Report) -> Vec<(Mark, String)> {
     r.findings
         .iter()
         .filter(|f| f.block.is_none())
-        .map(|f| (mark_for_code(&f.code), format!("{}: {}", t(&f.code), t(&f.message))))
+        .map(|f| (mark_for_code(f.code), format!("{}: {}", f.code, t(&f.message))))
         .collect()
 }
 
@@ -369,7 +378,7 @@ fn stage_spans(r: &Report) -> Vec<(Option<usize>, usize, usize)> {
     spans
 }
 
-fn block_title(b: &BlockRow, codes: &[&str], extra: &str) -> String {
+fn block_title(b: &BlockRow, codes: &[FindingCode], extra: &str) -> String {
     let mut s =
         format!("#{} {} ({}) → {}", b.id, t(&b.merge.name), t(&b.merge.op_type), t(&b.output));
     if !extra.is_empty() {
@@ -378,7 +387,7 @@ fn block_title(b: &BlockRow, codes: &[&str], extra: &str) -> String {
     }
     if !codes.is_empty() {
         s.push_str("\nfindings: ");
-        s.push_str(&codes.join(", "));
+        s.push_str(&words(codes));
     }
     s
 }
@@ -412,7 +421,7 @@ fn plots(r: &Report) -> io::Result<Vec<PlotView>> {
                     String::new()
                 } else {
                     let zero = if v == Some(0.0) { " (0)" } else { "" };
-                    format!("#{} {}{zero}", b.id, codes.join(", "))
+                    format!("#{} {}{zero}", b.id, words(&codes))
                 };
                 plot::Point {
                     block: b.id,
@@ -507,14 +516,14 @@ fn stage_views(r: &Report) -> Vec<StageView> {
             let codes = codes_of(r, b.id);
             let ratio = b.stats.as_ref().and_then(|s| s.ratio).map(|s| s.mean);
             let value = ratio.map_or(String::new(), |v| format!("ratio {}", num(v)));
-            let kind = format!("{} · {}", t(&b.shortcut.kind), t(&b.placement));
+            let kind = format!("{} · {}", b.shortcut.kind, b.placement);
             items.push(TileView::Block {
                 id: b.id,
                 mark: mark_of(r, b.id),
                 name: t(&b.merge.name),
                 kind: kind.clone(),
                 value: value.clone(),
-                codes: codes.join(", "),
+                codes: words(&codes),
                 title: block_title(b, &codes, &kind),
             });
         }
@@ -603,8 +612,8 @@ fn influence_view(inf: &crate::report::InfluenceReport) -> InfluenceView {
 fn finding_view(r: &Report, f: &FindingRow) -> FindingView {
     let block = f.block.and_then(|id| r.blocks.iter().find(|b| b.id == id));
     FindingView {
-        code: t(&f.code),
-        mark: mark_for_code(&f.code),
+        code: f.code.as_str().to_owned(),
+        mark: mark_for_code(f.code),
         place: f.block.map_or("model".to_owned(), |id| format!("block #{id}")),
         node: f.node.as_ref().map_or(String::new(), |n| t(&n.name)),
         op: f
@@ -622,19 +631,20 @@ fn row_view(r: &Report, b: &BlockRow) -> RowView {
     let s = b.stats.as_ref();
     let spread = |v: Option<crate::report::Spread>| v.map_or("–".to_owned(), |v| num(v.mean));
     let shortcut = if b.shortcut.ops.is_empty() {
-        t(&b.shortcut.kind)
+        b.shortcut.kind.to_string()
     } else {
         let ops: Vec<String> = b.shortcut.ops.iter().map(|o| t(&o.op_type)).collect();
-        format!("{} ({})", t(&b.shortcut.kind), ops.join("→"))
+        format!("{} ({})", b.shortcut.kind, ops.join("→"))
     };
-    let layers: Vec<String> = b.branch.layers.iter().map(|l| t(&layer_label(l))).collect();
+    let layers: Vec<String> =
+        b.branch.layers.iter().map(|l| t(&layer_signature(l, ARROW))).collect();
     let mut cells = vec![
         b.stage.map_or("?".to_owned(), |s| s.to_string()),
         t(&b.merge.name),
         t(&b.output),
         t(&b.fork),
         shortcut,
-        t(&b.placement),
+        b.placement.to_string(),
         layers.join(", "),
     ];
     if r.run.is_some() {
@@ -651,7 +661,7 @@ fn row_view(r: &Report, b: &BlockRow) -> RowView {
             s.map_or("–".to_owned(), |s| format!("{}/{}", s.nan, s.inf)),
         ]);
     }
-    RowView { id: b.id, mark: mark_of(r, b.id), cells, codes: codes.join(", ") }
+    RowView { id: b.id, mark: mark_of(r, b.id), cells, codes: words(&codes) }
 }
 
 #[cfg(test)]

@@ -125,7 +125,7 @@ fn render_string(r: &Report, config: &MarkdownConfig) -> io::Result<String> {
         .findings
         .iter()
         .map(|f| FindingLine {
-            code: f.code.clone(),
+            code: f.code.to_string(),
             place: f.block.map_or("model".to_owned(), |b| format!("block {b}")),
             node: f.node.as_ref().map_or(String::new(), |n| short(&n.name)),
             message: short_message(&f.message),
@@ -224,7 +224,7 @@ fn head(r: &Report) -> Head {
             .collect()
     });
     Head {
-        command: r.command.clone(),
+        command: r.command.to_string(),
         model: short(&model),
         verdict,
         facts,
@@ -242,8 +242,8 @@ fn row(r: &Report, b: &BlockRow) -> Row {
         id: b.id,
         stage: b.stage.map_or("?".to_owned(), |s| s.to_string()),
         merge: short(&b.merge.name),
-        shortcut: b.shortcut.kind.clone(),
-        placement: b.placement.clone(),
+        shortcut: b.shortcut.kind.to_string(),
+        placement: b.placement.to_string(),
         ratio: s
             .and_then(|s| s.ratio)
             .map_or("–".to_owned(), |v| format!("{} ± {}", num(v.mean), num(v.std))),

@@ -6,6 +6,8 @@
 //! blindness; every shape is also different, and flagged marks carry a text
 //! label, so colour is never the only cue.
 
+use crate::vocab::FindingCode;
+
 /// The look of one kind of mark.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct Mark {
@@ -110,20 +112,21 @@ pub const ALL: [Mark; 10] = [
 
 /// The mark of a block from its finding codes: the most severe one decides
 /// (non-finite, then a dead branch, dominant, a growing or shrinking input
-/// change, dead channels, lost shortcut, low impact).
-pub fn for_codes<'a>(codes: impl IntoIterator<Item = &'a str>) -> Mark {
+/// change, dead channels, lost shortcut, low impact). The signal's growth
+/// across depth is a finding of the whole model and marks no block.
+pub fn for_codes(codes: impl IntoIterator<Item = FindingCode>) -> Mark {
     let mut best: Option<(u8, Mark)> = None;
     for code in codes {
         let candidate = match code {
-            "non-finite" => (0, NON_FINITE),
-            "dead" | "static-dead" => (1, DEAD),
-            "dominant" => (2, DOMINANT),
-            "exploding-gain" => (3, EXPLODING),
-            "vanishing-gain" => (3, VANISHING),
-            "dead-channels" => (4, DEAD_CHANNELS),
-            "lost-shortcut" => (5, LOST_SHORTCUT),
-            "low-impact" => (6, LOW_IMPACT),
-            _ => continue,
+            FindingCode::NonFinite => (0, NON_FINITE),
+            FindingCode::Dead | FindingCode::StaticDead => (1, DEAD),
+            FindingCode::Dominant => (2, DOMINANT),
+            FindingCode::ExplodingGain => (3, EXPLODING),
+            FindingCode::VanishingGain => (3, VANISHING),
+            FindingCode::DeadChannels => (4, DEAD_CHANNELS),
+            FindingCode::LostShortcut => (5, LOST_SHORTCUT),
+            FindingCode::LowImpact => (6, LOW_IMPACT),
+            FindingCode::ExplodingSignal | FindingCode::VanishingSignal => continue,
         };
         if best.is_none_or(|(rank, _)| candidate.0 < rank) {
             best = Some(candidate);
@@ -138,12 +141,13 @@ mod tests {
 
     #[test]
     fn the_most_severe_finding_decides() {
+        use FindingCode as C;
         assert_eq!(for_codes([]), OK);
-        assert_eq!(for_codes(["static-dead", "dead"]), DEAD);
-        assert_eq!(for_codes(["lost-shortcut", "dominant"]), DOMINANT);
-        assert_eq!(for_codes(["dead-channels", "non-finite"]), NON_FINITE);
-        assert_eq!(for_codes(["exploding-signal"]), OK);
-        assert_eq!(for_codes(["low-impact", "exploding-gain"]), EXPLODING);
+        assert_eq!(for_codes([C::StaticDead, C::Dead]), DEAD);
+        assert_eq!(for_codes([C::LostShortcut, C::Dominant]), DOMINANT);
+        assert_eq!(for_codes([C::DeadChannels, C::NonFinite]), NON_FINITE);
+        assert_eq!(for_codes([C::ExplodingSignal]), OK);
+        assert_eq!(for_codes([C::LowImpact, C::ExplodingGain]), EXPLODING);
     }
 
     #[test]

@@ -2,7 +2,7 @@
 //! library. Renderers in this module's children turn it into text or JSON.
 //!
 //! **Invariant:** nothing here knows about graphs, protobuf or tract; every
-//! field is filled by the stage that builds reports (`scan`), and every ONNX
+//! field is filled by the stage that builds reports (`assemble`), and every ONNX
 //! node or tensor the report mentions is named so a user can find it.
 
 pub mod batch;
@@ -20,6 +20,10 @@ pub mod verify;
 use std::collections::BTreeMap;
 
 use serde::{Deserialize, Serialize};
+
+use crate::vocab::{
+    Command, DeadReason, FindingCode, NotBlockReason, Placement, Severity, ShortcutKind,
+};
 
 /// Identifies the JSON document of a report.
 pub const REPORT_SCHEMA: &str = "shunt/report";
@@ -40,7 +44,7 @@ pub struct Report {
     /// Always [`REPORT_SCHEMA_VERSION`].
     pub schema_version: u32,
     /// `scan` (structure only) or `audit` (structure and measurements).
-    pub command: String,
+    pub command: Command,
     /// The model file and its graph.
     pub model: ModelInfo,
     /// Operators rewritten into standard ONNX operators before the analysis
@@ -226,7 +230,7 @@ pub struct BlockRow {
     /// The residual branch.
     pub branch: BranchRow,
     /// `post-activation`, `pre-activation`, `pre-norm`, `post-norm` or `unactivated`.
-    pub placement: String,
+    pub placement: Placement,
     /// The node that decided the placement (the activation after the merge,
     /// the normalisation opening the branch), if any.
     pub placement_node: Option<NodeRef>,
@@ -358,9 +362,8 @@ pub struct ThresholdsRow {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct FindingRow {
-    /// `static-dead`, `lost-shortcut`, `dead`, `dominant`, `dead-channels`,
-    /// `non-finite`, `exploding-signal` or `vanishing-signal`.
-    pub code: String,
+    /// The finding's code (`static-dead`, `dead`, … : [`FindingCode`]).
+    pub code: FindingCode,
     /// The block it is about, if any.
     pub block: Option<usize>,
     /// The merge node of that block.
@@ -374,7 +377,7 @@ pub struct FindingRow {
 #[serde(deny_unknown_fields)]
 pub struct ShortcutRow {
     /// `identity`, `projection` or `resampled`.
-    pub kind: String,
+    pub kind: ShortcutKind,
     /// Whether a learned linear layer is on the path.
     pub projected: bool,
     /// The merge input tensor it arrives at.
@@ -454,7 +457,7 @@ pub struct EndScaleRow {
 #[serde(deny_unknown_fields)]
 pub struct DeadRow {
     /// `zero-scale`, `zero-norm-scale` or `zero-weights`.
-    pub reason: String,
+    pub reason: DeadReason,
     /// The node whose constant is all zeros.
     pub node: NodeRef,
 }
@@ -502,7 +505,7 @@ pub struct NotBlockRow {
     /// The node.
     pub node: NodeRef,
     /// `independent-inputs`, `no-shortcut`, `no-learned-layer` or `sum-of-heads`.
-    pub reason: String,
+    pub reason: NotBlockReason,
     /// The reason in words.
     pub detail: String,
 }
@@ -522,7 +525,7 @@ pub struct SubgraphRow {
 #[serde(deny_unknown_fields)]
 pub struct DiagnosticRow {
     /// `note` or `warning`.
-    pub severity: String,
+    pub severity: Severity,
     /// The node it is about, if any.
     pub node: Option<String>,
     /// What happened.

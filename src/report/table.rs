@@ -4,34 +4,14 @@ use std::io;
 
 use comfy_table::{ContentArrangement, Table, TableComponent, presets};
 
-use crate::report::text::terminal_safe;
-use crate::report::{BlockRow, LayerRow, Report};
-
-/// A compact label for a learned layer: `conv3x3 8→16 /2`, `dw3x3 96`, `fc 64→256`.
-pub fn layer_label(l: &LayerRow) -> String {
-    let ch = |c: Option<u64>| c.map_or("?".to_owned(), |c| c.to_string());
-    let stride = l
-        .strides
-        .iter()
-        .copied()
-        .max()
-        .filter(|&s| s > 1)
-        .map_or(String::new(), |s| format!(" /{s}"));
-    if l.kernel.is_empty() {
-        return format!("fc {}→{}", ch(l.in_channels), ch(l.out_channels));
-    }
-    let k = l.kernel.iter().map(u64::to_string).collect::<Vec<_>>().join("x");
-    if l.groups > 1 && Some(l.groups) == l.in_channels {
-        return format!("dw{k} {}{stride}", ch(l.in_channels));
-    }
-    let groups = if l.groups > 1 { format!(" g{}", l.groups) } else { String::new() };
-    format!("conv{k} {}→{}{groups}{stride}", ch(l.in_channels), ch(l.out_channels))
-}
+use crate::report::text::{ARROW, layer_signature, terminal_safe};
+use crate::report::{BlockRow, Report};
+use crate::vocab::Placement;
 
 fn shortcut_cell(b: &BlockRow) -> String {
     let ops: Vec<&str> = b.shortcut.ops.iter().map(|o| o.op_type.as_str()).collect();
     if ops.is_empty() {
-        b.shortcut.kind.clone()
+        b.shortcut.kind.to_string()
     } else {
         format!("{} ({})", b.shortcut.kind, ops.join("→"))
     }
@@ -62,7 +42,7 @@ fn notes_cell(b: &BlockRow) -> String {
             _ => notes.push("end scale (unread)".to_owned()),
         }
     }
-    if b.placement == "post-activation"
+    if b.placement == Placement::PostActivation
         && let Some(n) = b.placement_node.as_ref().filter(|n| n.op_type == "QuantizeLinear")
     {
         notes.push(format!("activation implicit in quantisation at {}", terminal_safe(&n.name)));
@@ -173,13 +153,14 @@ fn structure_table(r: &Report) -> Table {
         let mut t = new_table(&["#", "stage", "merge", "shortcut", "placement", "branch", "notes"]);
         for b in &r.blocks {
             let stage = stage_cell(b);
-            let layers: Vec<String> = b.branch.layers.iter().map(layer_label).collect();
+            let layers: Vec<String> =
+                b.branch.layers.iter().map(|l| layer_signature(l, ARROW)).collect();
             t.add_row(vec![
                 b.id.to_string(),
                 stage,
                 merge_cell(b),
                 terminal_safe(&shortcut_cell(b)),
-                b.placement.clone(),
+                b.placement.to_string(),
                 layers.join(", "),
                 notes_cell(b),
             ]);
@@ -218,8 +199,8 @@ fn measurement_table(r: &Report) -> Table {
             b.id.to_string(),
             stage_cell(b),
             merge_cell(b),
-            b.shortcut.kind.clone(),
-            b.placement.clone(),
+            b.shortcut.kind.to_string(),
+            b.placement.to_string(),
             num(s.and_then(|s| s.shortcut_rms).map(|x| x.mean)),
             num(s.and_then(|s| s.branch_rms).map(|x| x.mean)),
             ratio,

@@ -6,6 +6,7 @@ use std::io;
 use serde::{Deserialize, Serialize};
 
 use crate::report::text::{plural, terminal_safe};
+use crate::vocab::{Against, DifferenceCode};
 
 /// Identifies the JSON document of `shunt verify`.
 pub const VERIFY_SCHEMA: &str = "shunt/verify";
@@ -23,7 +24,7 @@ pub struct Verification {
     /// The model as given.
     pub model: String,
     /// `pin` or `expect`.
-    pub against: String,
+    pub against: Against,
     /// The pin or expectation file as given.
     pub file: String,
     /// Blocks in the model.
@@ -39,7 +40,7 @@ pub struct Verification {
 #[serde(deny_unknown_fields)]
 pub struct Difference {
     /// What kind of difference (listed in docs/checking.md).
-    pub code: String,
+    pub code: DifferenceCode,
     /// The stage it is about, if any.
     pub stage: Option<usize>,
     /// The model's block (1-based, graph order), if any.
@@ -51,8 +52,8 @@ pub struct Difference {
 }
 
 impl Difference {
-    pub(crate) fn new(code: &str, message: String) -> Difference {
-        Difference { code: code.to_owned(), stage: None, block: None, pinned: None, message }
+    pub(crate) fn new(code: DifferenceCode, message: String) -> Difference {
+        Difference { code, stage: None, block: None, pinned: None, message }
     }
 }
 

@@ -14,24 +14,7 @@ use std::collections::{HashMap, HashSet};
 
 use crate::graph::op::{self, Family};
 use crate::graph::{Dominance, Graph, NodeId, ValueId};
-
-/// How the shortcut reaches the merge.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
-pub enum ShortcutKind {
-    /// The fork tensor itself, through at most reshapes, casts,
-    /// quantize/dequantize pairs or a normalisation.
-    Identity,
-    /// One learned linear layer (1x1 convolution, fully connected),
-    /// optionally with a normalisation or a folded scale and shift.
-    Projection,
-    /// Pooling, strided slicing, padding or resizing, with or without one
-    /// projection.
-    Resampled,
-    /// A learned constant (an initializer or Constant node, possibly
-    /// reshaped or expanded to the batch) that the branch reads too: the
-    /// class token of a class-attention layer.
-    Parameter,
-}
+use crate::vocab::{NotBlockReason, ShortcutKind};
 
 /// The shortcut path of a block.
 #[derive(Debug, Clone)]
@@ -98,37 +81,7 @@ pub struct Rejected {
     /// The Add, Sum or Concat node.
     pub node: NodeId,
     /// Why it is not a block.
-    pub reason: Reason,
-}
-
-/// Why a merge with several signal inputs is not a block.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Reason {
-    /// Its inputs come from independent signals (separate graph inputs).
-    Independent,
-    /// No input reaches it from the fork as a shortcut.
-    NoShortcut,
-    /// No path from the fork holds a layer with weights: elementwise arithmetic.
-    NoLearnedLayer,
-    /// The sum of two heads on a common map: the would-be shortcut ends in a
-    /// learned layer of the fork, and no learned layer follows the sum (it is
-    /// a prediction, not a residual stream that later layers read).
-    HeadSum,
-}
-
-impl Reason {
-    /// A short explanation.
-    pub fn describe(self) -> &'static str {
-        match self {
-            Reason::Independent => "its inputs come from independent signals",
-            Reason::NoShortcut => "no input reaches it from the fork as a shortcut",
-            Reason::NoLearnedLayer => "no path from the fork holds a layer with weights",
-            Reason::HeadSum => {
-                "it adds two heads computed from one map: one input is a learned layer of the \
-                 fork, not its identity, and no learned layer reads the sum"
-            }
-        }
-    }
+    pub reason: NotBlockReason,
 }
 
 /// Everything detection found.
@@ -172,17 +125,17 @@ pub fn find_blocks(g: &Graph, dom: &Dominance) -> Detection {
         }
         let outcome = match dom.fork(output) {
             Some(fork) => join(g, fork, &signals, is_merge).map(|j| (fork, j)),
-            None => Err(Reason::Independent),
+            None => Err(NotBlockReason::Independent),
         };
         // The branch reads the shortcut and a side signal that came from
         // before it (a decoder's or a class-attention layer's stream that
         // attends to a memory it was computed from): the dominator is then
         // the memory, above the shortcut. The shortcut input itself is the fork.
         let outcome = match outcome {
-            Err(Reason::NoShortcut) if is_merge => signals
+            Err(NotBlockReason::NoShortcut) if is_merge => signals
                 .iter()
                 .find_map(|&(_, a)| join(g, a, &signals, true).ok().map(|j| (a, j)))
-                .ok_or(Reason::NoShortcut),
+                .ok_or(NotBlockReason::NoShortcut),
             other => other,
         };
         // A projected shortcut into a sum that no learned layer reads: two
@@ -195,7 +148,7 @@ pub fn find_blocks(g: &Graph, dom: &Dominance) -> Detection {
                     && !learned_after.get_or_insert_with(|| learned_downstream(g))
                         [n.0 as usize] =>
             {
-                Err(Reason::HeadSum)
+                Err(NotBlockReason::HeadSum)
             }
             other => other,
         };
@@ -410,7 +363,7 @@ fn join(
     fork: ValueId,
     signals: &[(usize, ValueId)],
     is_merge: bool,
-) -> Result<(Shortcut, Vec<ValueId>, Vec<NodeId>), Reason> {
+) -> Result<(Shortcut, Vec<ValueId>, Vec<NodeId>), NotBlockReason> {
     let paths: Vec<Option<Vec<NodeId>>> =
         signals.iter().map(|&(_, v)| path_from(g, fork, v)).collect();
     // The shortcut is the simplest eligible path; ties go to the fewest ops,
@@ -428,7 +381,11 @@ fn join(
     }
     let Some((chosen, shortcut)) = best else {
         let any_learned = paths.iter().flatten().flatten().any(|&n| op::is_parametrised(g, n));
-        return Err(if any_learned { Reason::NoShortcut } else { Reason::NoLearnedLayer });
+        return Err(if any_learned {
+            NotBlockReason::NoShortcut
+        } else {
+            NotBlockReason::NoLearnedLayer
+        });
     };
     let mut branch_set: HashSet<NodeId> = HashSet::new();
     let mut branch_inputs = Vec::new();
@@ -447,10 +404,10 @@ fn join(
         .iter()
         .any(|&n| op::is_parametrised(g, n) || (is_merge && op::family(g, n) == Family::Norm));
     if !learned {
-        return Err(Reason::NoLearnedLayer);
+        return Err(NotBlockReason::NoLearnedLayer);
     }
     if shortcut.ops.iter().any(|n| branch_set.contains(n)) {
-        return Err(Reason::NoShortcut);
+        return Err(NotBlockReason::NoShortcut);
     }
     let mut branch: Vec<NodeId> = branch_set.into_iter().collect();
     branch.sort_by_key(|n| g.rank[n.0 as usize]);

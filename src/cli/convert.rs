@@ -1,0 +1,159 @@
+//! From parsed arguments to the library's configurations: every check of a
+//! flag's value that clap cannot make, and nothing else. Each group of
+//! flags has one conversion, shared by every command that takes the group.
+
+use std::collections::BTreeMap;
+
+use anyhow::{Context, bail};
+
+use super::args::{DistArg, InfluenceArgs, InputArgs, Limits, ThresholdArgs};
+use crate::findings::{FindingConfig, InfluenceThresholds};
+use crate::measure::InfluenceConfig;
+use crate::open::OpenConfig;
+use crate::probe::inputs::{Dist, InputConfig};
+use crate::vocab::FindingCode;
+
+impl Limits {
+    pub(super) fn config(&self) -> OpenConfig {
+        let mut c = OpenConfig::STANDARD;
+        c.load.max_file_bytes = self.max_file_bytes;
+        c.build.max_nodes = self.max_nodes;
+        c.classify.max_inspect_bytes = self.max_inspect_bytes;
+        c.lower.nchwc_block = self.nchwc_block.as_deref().and_then(|b| b.parse().ok());
+        c
+    }
+}
+
+impl InputArgs {
+    pub(super) fn config(&self) -> anyhow::Result<InputConfig> {
+        Ok(InputConfig {
+            samples: self.samples,
+            max_pass: self.pass_batch,
+            seed: self.seed,
+            dist: match self.dist {
+                DistArg::Normal => Dist::Normal,
+                DistArg::Uniform => Dist::Uniform,
+            },
+            scale: self.scale,
+            dims: parse_pairs(&self.dims, "--dim", |v| v.parse::<u64>().ok())?,
+            shapes: parse_pairs(&self.shapes, "--input", parse_shape)?,
+            fills: parse_pairs(&self.fills, "--fill", |v| v.parse::<f64>().ok())?,
+            batch_axes: parse_pairs(&self.batch_axes, "--batch-axis", parse_axis)?,
+            feed: self.feed.clone(),
+            max_input_elements: self.max_input_elements,
+        })
+    }
+}
+
+impl ThresholdArgs {
+    pub(super) fn config(&self) -> FindingConfig {
+        FindingConfig {
+            dead_below: self.dead_below,
+            dominant_above: self.dominant_above,
+            dead_channels_above: self.dead_channels_above,
+            depth_factor: self.depth_factor,
+        }
+    }
+}
+
+impl InfluenceArgs {
+    /// `None` when neither a knockout nor the gain is asked for.
+    pub(super) fn config(&self) -> anyhow::Result<Option<InfluenceConfig>> {
+        let knockout = self.knockout || self.knockout_shortcuts;
+        if self.blocks.is_some() && !knockout {
+            bail!("--blocks selects blocks to knock out: add --knockout");
+        }
+        if !knockout && !self.gain {
+            return Ok(None);
+        }
+        if !(self.gain_step.is_finite() && self.gain_step > 0.0 && self.gain_step < 1.0) {
+            bail!("--gain-step {}: expected a number between 0 and 1", self.gain_step);
+        }
+        let blocks = self.blocks.as_deref().map(parse_blocks).transpose()?;
+        Ok(Some(InfluenceConfig {
+            knockout,
+            shortcuts: self.knockout_shortcuts,
+            blocks,
+            gain_step: Some(self.gain_step),
+            thresholds: InfluenceThresholds {
+                low_impact_below: self.low_impact_below,
+                gain_factor: self.gain_factor,
+            },
+        }))
+    }
+}
+
+/// `1,4,6-9` → [1, 4, 6, 7, 8, 9].
+fn parse_blocks(list: &str) -> anyhow::Result<Vec<usize>> {
+    let mut out = Vec::new();
+    for item in list.split(',').map(str::trim).filter(|s| !s.is_empty()) {
+        let bad = || anyhow::anyhow!("--blocks: '{item}' is not a block id or a range like 3-7");
+        match item.split_once('-') {
+            Some((a, b)) => {
+                let a: usize = a.trim().parse().map_err(|_| bad())?;
+                let b: usize = b.trim().parse().map_err(|_| bad())?;
+                if a == 0 || b < a {
+                    return Err(bad());
+                }
+                out.extend(a..=b);
+            }
+            None => {
+                let id: usize = item.parse().map_err(|_| bad())?;
+                if id == 0 {
+                    return Err(bad());
+                }
+                out.push(id);
+            }
+        }
+    }
+    if out.is_empty() {
+        bail!("--blocks: no block ids in '{list}'");
+    }
+    Ok(out)
+}
+
+/// `--fail-on`: a comma-separated list of finding codes, or `any`.
+pub(super) fn fail_on(list: Option<&str>) -> anyhow::Result<Vec<FindingCode>> {
+    let Some(list) = list else { return Ok(Vec::new()) };
+    let mut codes = Vec::new();
+    for item in list.split(',').map(str::trim).filter(|s| !s.is_empty()) {
+        if item == "any" {
+            return Ok(FindingCode::ALL.to_vec());
+        }
+        match FindingCode::parse(item) {
+            Some(c) => codes.push(c),
+            None => {
+                bail!(
+                    "--fail-on: unknown finding '{item}' (known: {}, or any)",
+                    FindingCode::known()
+                )
+            }
+        }
+    }
+    Ok(codes)
+}
+
+fn parse_pairs<T>(
+    items: &[String],
+    flag: &str,
+    value: impl Fn(&str) -> Option<T>,
+) -> anyhow::Result<BTreeMap<String, T>> {
+    let mut out = BTreeMap::new();
+    for item in items {
+        let (name, v) =
+            item.split_once('=').with_context(|| format!("{flag} {item}: expected NAME=VALUE"))?;
+        let parsed = value(v.trim())
+            .with_context(|| format!("{flag} {item}: '{v}' is not a valid value"))?;
+        out.insert(name.trim().to_owned(), parsed);
+    }
+    Ok(out)
+}
+
+/// A sample axis: a number, or `none` for an input without samples.
+fn parse_axis(s: &str) -> Option<Option<usize>> {
+    if s.eq_ignore_ascii_case("none") { Some(None) } else { s.parse::<usize>().ok().map(Some) }
+}
+
+fn parse_shape(s: &str) -> Option<Vec<u64>> {
+    s.split(['x', 'X', ',']).map(|d| d.trim().parse::<u64>().ok().filter(|&d| d > 0)).collect()
+}
