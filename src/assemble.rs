@@ -48,9 +48,16 @@ pub fn report(
         let mut row = run_row(run.input_plan, thresholds);
         row.precision = run.measurement.ran_as.as_ref().map(precision_row);
         report.run = Some(row);
+        // What the input plan had to guess, where a reader of the report sees it.
+        report.diagnostics.extend(run.input_plan.warnings.iter().map(|w| DiagnosticRow {
+            severity: crate::vocab::Severity::Warning,
+            node: None,
+            message: w.clone(),
+        }));
         match &run.measurement.outcome {
             Ok(m) => {
                 fill_stats(&mut report, &mut facts, &m.intact.blocks, thresholds.dead_below);
+                measured_stages(&mut report, analysis, &m.intact.blocks);
                 measured = Some(m);
             }
             Err(e) => report.run_error = Some(e.message().to_owned()),
@@ -63,6 +70,52 @@ pub fn report(
         influence(&mut report, analysis, m, inf, ic);
     }
     report
+}
+
+/// Stages from the shapes the run measured where static shape inference
+/// stopped (Reshape targets computed at run time, dynamic spatial sizes): a
+/// block whose output shape is unknown statically takes the shape tract
+/// produced, past the batch axis, and the blocks are grouped into stages
+/// again. Bare runs are those of the static stages.
+fn measured_stages(report: &mut Report, a: &Analysis, blocks: &[BlockSamples]) {
+    let keys = crate::classify::stage_keys(&a.graph, &a.detection.blocks);
+    if keys.len() != report.blocks.len() || keys.iter().all(Option::is_some) {
+        return;
+    }
+    let keys: Vec<Option<Vec<Dim>>> = keys
+        .into_iter()
+        .zip(blocks)
+        .map(|(k, b)| {
+            k.or_else(|| {
+                let measured = b.output_shape.get(1..).filter(|_| b.output_shape.len() >= 2)?;
+                Some(measured.iter().map(|&d| Dim::Known(d as u64)).collect())
+            })
+        })
+        .collect();
+    let (stages, of_block) = crate::classify::group(&keys);
+    report.stages = stages
+        .iter()
+        .enumerate()
+        .map(|(i, s)| StageRow {
+            id: i + 1,
+            shape: dims(&s.shape),
+            blocks: s.blocks.iter().map(|b| b + 1).collect(),
+        })
+        .collect();
+    for ((row, stage), b) in report.blocks.iter_mut().zip(of_block).zip(blocks) {
+        row.stage = stage.map(|s| s + 1);
+        // Where the static shape has unknown dims, show the measured ones
+        // (the batch axis as declared).
+        let unknown = row.output_shape.as_ref().is_none_or(|s| s.iter().any(|d| d == "?"));
+        if unknown && b.output_shape.len() >= 2 {
+            let batch = row.output_shape.as_ref().and_then(|s| s.first().cloned());
+            let mut shape: Vec<String> = b.output_shape.iter().map(ToString::to_string).collect();
+            if let Some(batch) = batch.filter(|d| d != "?") {
+                shape[0] = batch;
+            }
+            row.output_shape = Some(shape);
+        }
+    }
 }
 
 /// The report's description of the model file.

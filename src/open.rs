@@ -167,7 +167,11 @@ fn analyse_lowered(
     let classifications: Vec<Classification> =
         classify::classify_all(&graph, &detection.blocks, &config.classify);
     let (stages, stage_of) = classify::stages(&graph, &detection.blocks);
-    let bare_runs = classify::bare_runs(&graph, &detection.blocks, &stage_of);
+    let runs = classify::bare_runs(&graph, &detection.blocks, &stage_of);
+    for pattern in &runs.regular {
+        diagnostics.push(regular_pattern_note(&graph, pattern));
+    }
+    let bare_runs = runs.anomalies;
     for n in &graph.nodes {
         if n.subgraphs > 0 {
             diagnostics.push(Diagnostic::note(
@@ -189,6 +193,23 @@ fn analyse_lowered(
         diagnostics,
         lowered: summary,
     })
+}
+
+/// The note that reports a stage's regular unspanned layers once.
+fn regular_pattern_note(g: &Graph, pattern: &classify::RegularRun) -> Diagnostic {
+    let first = &pattern.runs[0];
+    let layers: Vec<&str> = first.layers.iter().map(|&n| g.node(n).name.as_str()).collect();
+    Diagnostic::note(
+        None,
+        format!(
+            "stage {}: {} of its gaps between blocks hold the same {} learned layer(s) that no \
+             shortcut spans (first: {}); read as the architecture's pattern, not as lost shortcuts",
+            pattern.stage + 1,
+            pattern.runs.len(),
+            first.layers.len(),
+            layers.join(", ")
+        ),
+    )
 }
 
 /// What the model is opened for.

@@ -116,6 +116,10 @@ words! {
         /// Pooling, strided slicing, padding or resizing, with or without one
         /// projection.
         Resampled = "resampled",
+        /// A learned constant (an initializer or Constant node, possibly
+        /// reshaped or expanded to the batch) that the branch reads too: the
+        /// class token of a class-attention layer ([K1]).
+        Parameter = "parameter",
     }
 }
 
@@ -140,6 +144,10 @@ words! {
         NoShortcut = "no-shortcut",
         /// No path from the fork holds a layer with weights: elementwise arithmetic.
         NoLearnedLayer = "no-learned-layer",
+        /// The sum of two heads on a common map: the would-be shortcut ends in
+        /// a learned layer of the fork, and no learned layer follows the sum
+        /// (a prediction, not a residual stream that later layers read).
+        HeadSum = "sum-of-heads",
     }
 }
 
@@ -150,6 +158,10 @@ impl NotBlockReason {
             NotBlockReason::Independent => "its inputs come from independent signals",
             NotBlockReason::NoShortcut => "no input reaches it from the fork as a shortcut",
             NotBlockReason::NoLearnedLayer => "no path from the fork holds a layer with weights",
+            NotBlockReason::HeadSum => {
+                "it adds two heads computed from one map: one input is a learned layer of the \
+                 fork, not its identity, and no learned layer reads the sum"
+            }
         }
     }
 }

@@ -63,6 +63,17 @@ impl Case {
     }
 }
 
+/// Options of `stats.py` beyond the model, inputs and output: the
+/// ReferenceEvaluator cross-check for resnet18_b, and the sample axis of the
+/// streaming case's state.
+fn stats_args(case: &Case) -> &'static [&'static str] {
+    match case.name {
+        "resnet18_b" => &["--check-reference"],
+        "streaming_state" => &["--batch-axis", "state=1", "--check-reference"],
+        _ => &[],
+    }
+}
+
 fn refresh_hint(case: &Case) -> String {
     format!(
         "to refresh after an intended change (new fixture, new inputs, new pins): \
@@ -71,7 +82,7 @@ fn refresh_hint(case: &Case) -> String {
         case.model_rel(),
         case.inputs_rel(),
         case.name,
-        if case.name == "resnet18_b" { " --check-reference" } else { "" },
+        stats_args(case).iter().map(|a| format!(" {a}")).collect::<String>(),
     )
 }
 
@@ -140,8 +151,7 @@ fn differences(path: &str, a: &Value, b: &Value, tol: f64, out: &mut Vec<String>
 
 /// Check 1: the committed values are what the pinned libraries compute today.
 fn check_drift(case: &Case, committed: &Value) {
-    let extra: &[&str] = if case.name == "resnet18_b" { &["--check-reference"] } else { &[] };
-    let fresh = run_stats(&case.model_rel(), &case.inputs_rel(), extra);
+    let fresh = run_stats(&case.model_rel(), &case.inputs_rel(), stats_args(case));
     let mut diffs = Vec::new();
     // The interpreter's patch version is recorded but is not pinned.
     for key in ["model", "inputs", "samples", "tensors", "adds"] {

@@ -16,7 +16,7 @@ use crate::load::attr;
 use crate::residual::Block;
 use crate::vocab::{DeadReason, Placement, ShortcutKind};
 
-pub use stage::{BareRun, Stage, bare_runs, stages};
+pub use stage::{BareRun, BareRuns, RegularRun, Stage, bare_runs, group, stage_keys, stages};
 
 /// Limits for reading weights while classifying.
 #[derive(Debug, Clone)]
@@ -160,6 +160,9 @@ pub fn classify(
     for &n in &block.branch {
         let node = g.node(n);
         match op::family(g, n) {
+            Family::Norm if node.op == "InstanceNormalization" && spelled_group_norm(g, n) => {
+                norms.push((n, "GroupNormalization (spelled out)".to_owned()))
+            }
             Family::Norm => norms.push((n, node.op.clone())),
             Family::Activation => activations.push((n, node.op.clone())),
             _ => {}
@@ -249,6 +252,13 @@ fn placement(
     // 1-2: what the branch opens with.
     let entries = openings(g, block.fork, branch);
     if let Some(&n) = entries.iter().find(|&&n| op::is_layer_norm_op(&g.node(n).op)) {
+        return (Placement::PreNorm, Some(n));
+    }
+    // A group normalisation (one op, or spelled out around an instance
+    // normalisation) that no activation follows normalises the input of a
+    // token mixer or an MLP, as a layer norm would ([F1]); followed by an
+    // activation it is the pre-activation of rule 2.
+    if let Some(&n) = entries.iter().find(|&&n| is_group_norm(g, n) && !activated(g, n)) {
         return (Placement::PreNorm, Some(n));
     }
     if let Some(n) = decomposed_layer_norm(g, block.fork, Some(branch)) {
@@ -376,6 +386,55 @@ fn decomposed_norm_output(g: &Graph, open: NodeId) -> Option<ValueId> {
     }
 }
 
+/// A group normalisation: the `GroupNormalization` op, or the form
+/// exporters write below opset 18, `Reshape` to `[N, G, -1]` then
+/// `InstanceNormalization` (then a `Reshape` back and a per-channel scale
+/// and shift).
+fn is_group_norm(g: &Graph, n: NodeId) -> bool {
+    match g.node(n).op.as_str() {
+        "GroupNormalization" => true,
+        "InstanceNormalization" => spelled_group_norm(g, n),
+        _ => false,
+    }
+}
+
+/// Whether an `InstanceNormalization` normalises a reshaped tensor of rank 3
+/// (`[N, G, -1]`): a group normalisation spelled out.
+fn spelled_group_norm(g: &Graph, n: NodeId) -> bool {
+    let Some(x) = g.input(n, 0) else { return false };
+    g.producer(x).is_some_and(|p| g.node(p).op == "Reshape")
+        && g.shape(x).is_none_or(|s| s.len() == 3)
+}
+
+/// Whether the first op after `n` that is neither pass-through nor a
+/// folded scale or shift is an activation.
+fn activated(g: &Graph, n: NodeId) -> bool {
+    let mut v = g.node(n).outputs[0];
+    loop {
+        let consumers: Vec<NodeId> = g.consumers(v).collect();
+        let [c] = consumers.as_slice() else {
+            return consumers.iter().any(|&c| op::family(g, c) == Family::Activation);
+        };
+        match op::family(g, *c) {
+            Family::PassThrough | Family::Affine => v = g.node(*c).outputs[0],
+            Family::Activation => return true,
+            _ => return false,
+        }
+    }
+}
+
+/// A `Mul` or `Div` by a static scalar: the `x / β` that scales a
+/// normaliser-free block's input before its first activation ([N1]).
+fn scalar_scale(g: &Graph, n: NodeId) -> bool {
+    let node = g.node(n);
+    matches!(node.op.as_str(), "Mul" | "Div")
+        && op::family(g, n) == Family::Affine
+        && node.inputs.iter().flatten().any(|&v| {
+            g.value(v).is_static
+                && g.shape(v).is_some_and(|s| s.iter().all(|d| *d == crate::graph::Dim::Known(1)))
+        })
+}
+
 /// The first branch ops that are not pass-through, reached from the fork.
 fn openings(g: &Graph, fork: ValueId, branch: &HashSet<NodeId>) -> Vec<NodeId> {
     let mut out = Vec::new();
@@ -386,7 +445,15 @@ fn openings(g: &Graph, fork: ValueId, branch: &HashSet<NodeId>) -> Vec<NodeId> {
             if !branch.contains(&c) || !seen.insert(c) {
                 continue;
             }
-            if op::family(g, c) == Family::PassThrough {
+            // A Concat joins the fork with other tokens (the class token
+            // with the patches of a class-attention layer, [K1]): what opens
+            // the branch is what reads the joined tensor.
+            // A scalar scale before the first activation does not change
+            // what opens the branch (scaled pre-activation blocks, [N1]).
+            if op::family(g, c) == Family::PassThrough
+                || op::is_concat(&g.node(c).op)
+                || scalar_scale(g, c)
+            {
                 stack.extend(g.node(c).outputs.iter().copied());
             } else {
                 out.push(c);

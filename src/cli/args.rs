@@ -141,17 +141,23 @@ pub(super) struct InputArgs {
     /// Scale of the distribution (standard deviation, or half-width for uniform).
     #[arg(long, value_name = "X", default_value_t = InputConfig::STANDARD.scale)]
     pub scale: f32,
-    /// Value of a symbolic dimension other than the batch, e.g. `--dim seq=128` (repeatable).
+    /// Value of a symbolic dimension, e.g. `--dim seq=128` (repeatable); a
+    /// value of the batch symbol fixes the samples per pass.
     #[arg(long = "dim", value_name = "NAME=VALUE")]
     pub dims: Vec<String>,
-    /// Whole shape of an input, e.g. `--input pixels=1x3x224x224` (repeatable).
+    /// Whole shape of an input, fed as given, e.g. `--input pixels=1x3x224x224` (repeatable).
     #[arg(long = "input", value_name = "NAME=D1xD2x...")]
     pub shapes: Vec<String>,
-    /// Fill an input with one value, e.g. `--fill attention_mask=1` (repeatable).
+    /// Fill an input with one value, e.g. `--fill attention_mask=1` or
+    /// `--fill sr=16000` for a scalar that is not an index (repeatable).
     #[arg(long = "fill", value_name = "NAME=VALUE")]
     pub fills: Vec<String>,
+    /// The sample axis of an input where the inferred one is wrong, e.g.
+    /// `--batch-axis state=1`, or `none` for an input without samples (repeatable).
+    #[arg(long = "batch-axis", value_name = "NAME=AXIS")]
+    pub batch_axes: Vec<String>,
     /// Feed real inputs from a .npy file (one-input models) or a .npz file
-    /// (one entry per input name); the first axis is the sample axis.
+    /// (one entry per input name); samples lie along each input's sample axis.
     #[arg(long, value_name = "FILE")]
     pub feed: Option<PathBuf>,
 }

@@ -38,6 +38,7 @@ impl InputArgs {
             dims: parse_pairs(&self.dims, "--dim", |v| v.parse::<u64>().ok())?,
             shapes: parse_pairs(&self.shapes, "--input", parse_shape)?,
             fills: parse_pairs(&self.fills, "--fill", |v| v.parse::<f64>().ok())?,
+            batch_axes: parse_pairs(&self.batch_axes, "--batch-axis", parse_axis)?,
             feed: self.feed.clone(),
             max_input_elements: self.max_input_elements,
         })
@@ -146,6 +147,11 @@ fn parse_pairs<T>(
         out.insert(name.trim().to_owned(), parsed);
     }
     Ok(out)
+}
+
+/// A sample axis: a number, or `none` for an input without samples.
+fn parse_axis(s: &str) -> Option<Option<usize>> {
+    if s.eq_ignore_ascii_case("none") { Some(None) } else { s.parse::<usize>().ok().map(Some) }
 }
 
 fn parse_shape(s: &str) -> Option<Vec<u64>> {

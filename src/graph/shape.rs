@@ -19,6 +19,7 @@ pub(crate) fn infer(g: &mut Graph) {
             let dtype = match g.node(n).op.as_str() {
                 "Cast" => attr::int(&g.node(n).attrs, "to").unwrap_or(0) as i32,
                 "Constant" => constant_fact(g, n).map_or(0, |(dtype, _)| dtype),
+                "Shape" => 7, // int64
                 _ => g.input(n, 0).map_or(0, |v| g.value(v).fact.dtype),
             };
             let fact = &mut g.values[first.0 as usize].fact;
@@ -187,8 +188,31 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
         }
         "Reshape" => {
             let x = shape_of(g, n, 0)?;
-            let target = g.input(n, 1).and_then(|v| g.constant_i64(v))?;
-            reshape(&x, &target, attr::int(attrs, "allowzero") == Some(1))
+            let allow_zero = attr::int(attrs, "allowzero") == Some(1);
+            if let Some(target) = g.input(n, 1).and_then(|v| g.constant_i64(v)) {
+                return reshape(&x, &target, allow_zero);
+            }
+            // A target computed at run time from shape metadata.
+            let target = g.input(n, 1).and_then(|v| shape_value(g, v, 0))?;
+            reshape_symbolic(&x, &target, allow_zero)
+        }
+        "Expand" => {
+            let x = shape_of(g, n, 0)?;
+            let target = g.input(n, 1).and_then(|v| shape_value(g, v, 0))?;
+            let target: Vec<Dim> = target
+                .into_iter()
+                .map(|e| match e {
+                    Elem::Int(k) if k >= 0 => Dim::Known(k as u64),
+                    Elem::Int(_) => Dim::Unknown,
+                    Elem::Dim(d) => d,
+                })
+                .collect();
+            broadcast(&[x, target])
+        }
+        "Shape" => {
+            let x = shape_of(g, n, 0)?;
+            let (start, end) = shape_range(attrs, x.len());
+            Some(vec![Dim::Known(end.saturating_sub(start) as u64)])
         }
         "Transpose" => {
             let x = shape_of(g, n, 0)?;
@@ -350,6 +374,171 @@ fn infer_node(g: &Graph, n: NodeId) -> Option<Vec<Dim>> {
     }
 }
 
+/// One element of a small integer tensor computed from shape metadata: a
+/// number, or a dimension of some tensor (possibly symbolic).
+#[derive(Debug, Clone, PartialEq)]
+enum Elem {
+    Int(i64),
+    Dim(Dim),
+}
+
+/// The `[start, end)` range of axes a `Shape` node returns (opset 15 adds
+/// `start` and `end`; negative values count from the end, clamped).
+fn shape_range(attrs: &[crate::proto::AttributeProto], rank: usize) -> (usize, usize) {
+    let clamp = |a: i64| {
+        let a = if a < 0 { a + rank as i64 } else { a };
+        a.clamp(0, rank as i64) as usize
+    };
+    let start = clamp(attr::int(attrs, "start").unwrap_or(0));
+    let end = clamp(attr::int(attrs, "end").unwrap_or(rank as i64));
+    (start, end.max(start))
+}
+
+/// The value of a 0-D or 1-D integer tensor computed from constants and
+/// shape metadata (`Shape` of a tensor whose shape is known, then `Slice`,
+/// `Gather`, `Concat`, `Unsqueeze`, `Squeeze`, `Cast`, `Identity`), as
+/// PyTorch's exporter spells a Reshape or Expand target that keeps the
+/// batch. Never guesses: any other producer gives `None`.
+fn shape_value(g: &Graph, v: ValueId, depth: usize) -> Option<Vec<Elem>> {
+    if depth > 16 {
+        return None;
+    }
+    if let Some(k) = g.constant_i64(v) {
+        return Some(k.into_iter().map(Elem::Int).collect());
+    }
+    let n = g.producer(v)?;
+    let node = g.node(n);
+    let input = |slot: usize| g.input(n, slot);
+    match node.op.as_str() {
+        "Shape" => {
+            let x = g.shape(input(0)?)?;
+            let (start, end) = shape_range(&node.attrs, x.len());
+            Some(
+                x[start..end]
+                    .iter()
+                    .map(|d| match d {
+                        Dim::Known(k) => Elem::Int(i64::try_from(*k).ok().unwrap_or(-1)),
+                        other => Elem::Dim(other.clone()),
+                    })
+                    .collect(),
+            )
+        }
+        "Cast" | "Identity" | "Unsqueeze" | "Squeeze" => shape_value(g, input(0)?, depth + 1),
+        // `H * W` of a flattened map: numbers only, a symbol stops it.
+        "Mul" | "Div" | "Add" | "Sub" => {
+            let a = shape_value(g, input(0)?, depth + 1)?;
+            let b = shape_value(g, input(1)?, depth + 1)?;
+            let int = |e: &Elem| if let Elem::Int(k) = e { Some(i128::from(*k)) } else { None };
+            let len = a.len().max(b.len());
+            if !(a.len() == len || a.len() == 1) || !(b.len() == len || b.len() == 1) {
+                return None;
+            }
+            (0..len)
+                .map(|i| {
+                    let x = int(a.get(i).or(a.first())?)?;
+                    let y = int(b.get(i).or(b.first())?)?;
+                    let v = match node.op.as_str() {
+                        "Mul" => x * y,
+                        "Add" => x + y,
+                        "Sub" => x - y,
+                        _ if y != 0 => x / y, // ONNX integer Div truncates
+                        _ => return None,
+                    };
+                    i64::try_from(v).ok().map(Elem::Int)
+                })
+                .collect()
+        }
+        "Concat" => {
+            let mut out = Vec::new();
+            for v in node.inputs.iter().flatten() {
+                out.extend(shape_value(g, *v, depth + 1)?);
+            }
+            Some(out)
+        }
+        "Gather" => {
+            let data = shape_value(g, input(0)?, depth + 1)?;
+            let idx = g.constant_i64(input(1)?)?;
+            idx.iter()
+                .map(|&i| {
+                    let i = if i < 0 { i + data.len() as i64 } else { i };
+                    usize::try_from(i).ok().and_then(|i| data.get(i).cloned())
+                })
+                .collect()
+        }
+        "Slice" => {
+            let data = shape_value(g, input(0)?, depth + 1)?;
+            let starts = ints_attr_or_input(g, n, "starts", 1)?;
+            let ends = ints_attr_or_input(g, n, "ends", 2)?;
+            let steps = input(4).and_then(|v| g.constant_i64(v)).unwrap_or_else(|| vec![1]);
+            let (&start, &end, &step) = (starts.first()?, ends.first()?, steps.first()?);
+            if starts.len() != 1 || step != 1 {
+                return None;
+            }
+            let len = data.len() as i64;
+            let clamp = |a: i64| (if a < 0 { a + len } else { a }).clamp(0, len) as usize;
+            let (s, e) = (clamp(start), clamp(end));
+            Some(data.get(s..e.max(s))?.to_vec())
+        }
+        _ => None,
+    }
+}
+
+/// [`reshape`] with a target computed from shape metadata: a dim copied from
+/// a tensor's shape is taken as it is, and `-1` is solved when the dims it
+/// must absorb are known once the copied symbols cancel.
+fn reshape_symbolic(x: &[Dim], target: &[Elem], allow_zero: bool) -> Option<Vec<Dim>> {
+    if let Some(ints) = target
+        .iter()
+        .map(|e| match e {
+            Elem::Int(k) => Some(*k),
+            Elem::Dim(_) => None,
+        })
+        .collect::<Option<Vec<i64>>>()
+    {
+        return reshape(x, &ints, allow_zero);
+    }
+    let mut out = Vec::with_capacity(target.len());
+    let mut infer_at = None;
+    for (i, e) in target.iter().enumerate() {
+        out.push(match e {
+            Elem::Int(0) if !allow_zero => x.get(i)?.clone(),
+            Elem::Int(-1) => {
+                infer_at = Some(i);
+                Dim::Unknown
+            }
+            Elem::Int(k) if *k >= 0 => Dim::Known(*k as u64),
+            Elem::Int(_) => return None,
+            Elem::Dim(d) => d.clone(),
+        });
+    }
+    if let Some(i) = infer_at {
+        // Cancel the symbols the output copies from the input.
+        let mut rest: Vec<&Dim> = x.iter().collect();
+        let mut known_out = 1u64;
+        for (j, d) in out.iter().enumerate() {
+            if j == i {
+                continue;
+            }
+            match d {
+                Dim::Known(k) => known_out = known_out.checked_mul(*k)?,
+                Dim::Symbol(_) => {
+                    let at = rest.iter().position(|r| *r == d)?;
+                    rest.remove(at);
+                }
+                Dim::Unknown => return Some(out),
+            }
+        }
+        let total: Option<u64> = rest.iter().map(|d| known(d)).product();
+        if let Some(total) = total
+            && known_out > 0
+            && total % known_out == 0
+        {
+            out[i] = Dim::Known(total / known_out);
+        }
+    }
+    Some(out)
+}
+
 /// Output length of a Slice along one axis (ONNX Slice semantics), in `i128`
 /// so that no start, end or step a file declares can overflow.
 fn slice_len(len: i64, start: i64, end: i64, step: i64) -> Option<u64> {
@@ -396,7 +585,17 @@ fn spatial(
     let mut out = vec![x[0].clone(), Dim::Known(channels)];
     for i in 0..rank {
         let (Some(input), Some(k)) = (known(&x[i + 2]), known(&kernel[i])) else {
-            out.push(Dim::Unknown);
+            // Stride 1 with "same" padding keeps any size, symbolic included.
+            let same = known(&kernel[i]).is_some_and(|k| {
+                let stride = strides.get(i).copied().unwrap_or(1);
+                let dilation = dilations.get(i).copied().unwrap_or(1);
+                let pad = i128::from(pads.get(i).copied().unwrap_or(0))
+                    + i128::from(pads.get(i + rank).copied().unwrap_or(0));
+                stride == 1
+                    && auto_pad == "NOTSET"
+                    && pad == i128::from(dilation) * (i128::from(k) - 1)
+            });
+            out.push(if same { x[i + 2].clone() } else { Dim::Unknown });
             continue;
         };
         // i128: no dim, pad, stride or dilation a file declares can overflow.

@@ -62,6 +62,10 @@ pub struct InputConfig {
     pub shapes: BTreeMap<String, Vec<u64>>,
     /// Inputs filled with one constant value, by name.
     pub fills: BTreeMap<String, f64>,
+    /// The sample (batch) axis of an input, by name, where the one shunt
+    /// infers is wrong; `None` says the input has no sample axis (it is fed
+    /// whole to every pass).
+    pub batch_axes: BTreeMap<String, Option<usize>>,
     /// A `.npy` (single-input models) or `.npz` (entries named after inputs) file.
     pub feed: Option<PathBuf>,
     /// Most elements one input may hold in one pass; checked before anything
@@ -87,6 +91,7 @@ impl InputConfig {
         dims: BTreeMap::new(),
         shapes: BTreeMap::new(),
         fills: BTreeMap::new(),
+        batch_axes: BTreeMap::new(),
         feed: None,
         max_input_elements: MAX_INPUT_ELEMENTS,
     };
@@ -162,8 +167,11 @@ pub struct PlannedInput {
     pub name: String,
     /// ONNX element type.
     pub dtype: i32,
-    /// Shape of one pass, the batch axis first.
+    /// Shape of one pass.
     pub pass_shape: Vec<u64>,
+    /// The axis that holds the samples (`None`: the input is fed whole to
+    /// every pass, as a scalar or a recurrent state without samples).
+    pub batch_axis: Option<usize>,
     /// What values it gets, in words (`normal(0, 1)`, `token ids uniform in [0, 50)`).
     pub how: String,
     source: Fill,
@@ -187,7 +195,14 @@ impl PlannedInput {
         if self.dtype != other.dtype && !(is_float(self.dtype) && is_float(other.dtype)) {
             return Err(Mismatch::ElementType(self.dtype, other.dtype));
         }
-        let tail = |f: &PlannedInput| f.pass_shape.iter().skip(1).copied().collect::<Vec<u64>>();
+        let tail = |f: &PlannedInput| -> Vec<u64> {
+            let axis = f.batch_axis;
+            let dims = f.pass_shape.iter().enumerate();
+            dims.filter(|(k, _)| Some(*k) != axis).map(|(_, &d)| d).collect()
+        };
+        if self.batch_axis != other.batch_axis {
+            return Err(Mismatch::SampleAxis(self.batch_axis, other.batch_axis));
+        }
         if tail(self) != tail(other) {
             return Err(Mismatch::SampleShape(tail(self), tail(other)));
         }
@@ -203,6 +218,8 @@ impl PlannedInput {
 pub enum Mismatch {
     /// Element types that are not both float types.
     ElementType(i32, i32),
+    /// Sample (batch) axes.
+    SampleAxis(Option<usize>, Option<usize>),
     /// Shapes past the batch axis.
     SampleShape(Vec<u64>, Vec<u64>),
     /// Value sources, described.
@@ -216,6 +233,7 @@ impl std::fmt::Display for Mismatch {
             Mismatch::ElementType(a, b) => {
                 write!(f, "element type {} in A, {} in B", dtype_name(*a), dtype_name(*b))
             }
+            Mismatch::SampleAxis(a, b) => write!(f, "sample axis {a:?} in A, {b:?} in B"),
             Mismatch::SampleShape(a, b) => write!(f, "sample shape {a:?} in A, {b:?} in B"),
             Mismatch::Values(a, b) => write!(f, "values '{a}' in A, '{b}' in B"),
         }
@@ -261,20 +279,27 @@ pub struct InputPlan {
     pub seed: u64,
     /// The feed file and its SHA-256 digest, when one was given.
     pub feed: Option<(PathBuf, String)>,
+    /// What the plan had to guess and the user should check (a scalar
+    /// integer fed 1), one sentence each.
+    pub warnings: Vec<String>,
 }
 
 /// Decides shapes, batching and values of every input.
+///
+/// The sample (batch) axis of each input: the one the user names
+/// (`batch_axes`); else the axis of the model's batch symbol, the symbolic
+/// dimension shared by the most inputs (ties: the one at the lowest axis,
+/// then the earliest input), wherever it sits; an input without that symbol
+/// has no sample axis unless its first axis is unknown. A model without
+/// symbolic dimensions has a fixed batch: the first axis of its first input,
+/// and the first axis of every input that declares the same size there.
+/// Scalars never have a sample axis. An explicit whole shape (`shapes`) is
+/// fed as it is, never rewritten.
 pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<InputPlan> {
     if config.samples == 0 {
         return Err(usage("--batch must be at least 1"));
     }
-    let mut arrays: BTreeMap<String, (ArrayD<f64>, NpyType)> = BTreeMap::new();
-    let mut feed = None;
-    if let Some(path) = &config.feed {
-        arrays = read_feed(path, specs)?;
-        feed = Some((path.clone(), sha256_of(path)?));
-    }
-    for name in config.shapes.keys().chain(config.fills.keys()) {
+    for name in config.shapes.keys().chain(config.fills.keys()).chain(config.batch_axes.keys()) {
         if !specs.iter().any(|s| &s.name == name) {
             let names: Vec<&str> = specs.iter().map(|s| s.name.as_str()).collect();
             return Err(usage(format!(
@@ -283,23 +308,73 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<InputPlan> {
             )));
         }
     }
-    // The batch of one pass: fixed when an input declares a concrete
-    // leading dimension, otherwise all samples at once.
-    let fixed_batch = specs.iter().find_map(|s| match s.shape.as_ref()?.first()? {
-        Dim::Known(k) if !config.shapes.contains_key(&s.name) => Some(*k as usize),
-        _ => None,
-    });
-    let fed_batch = arrays.values().next().and_then(|(a, _)| a.shape().first().copied());
+    let (axes, batch_symbol) = batch_axes(specs, config)?;
+    let mut arrays: BTreeMap<String, (ArrayD<f64>, NpyType)> = BTreeMap::new();
+    let mut feed = None;
+    if let Some(path) = &config.feed {
+        arrays = read_feed(path, specs)?;
+        feed = Some((path.clone(), sha256_of(path)?));
+    }
+    // Samples per pass fixed by the model, the user's value of the batch
+    // symbol, or an explicit shape; checked to agree.
+    let mut fixed: Option<(usize, String)> = None;
+    let mut fix = |k: usize, why: String| -> Result<()> {
+        match &fixed {
+            Some((f, first)) if *f != k => {
+                Err(usage(format!("{why} gives {k} samples per pass, but {first} gives {f}")))
+            }
+            Some(_) => Ok(()),
+            None => {
+                fixed = Some((k, why));
+                Ok(())
+            }
+        }
+    };
+    if let Some(v) = batch_symbol.as_ref().and_then(|b| config.dims.get(b)) {
+        fix(*v as usize, format!("--dim {}={v}", batch_symbol.as_deref().unwrap_or_default()))?;
+    }
+    for (s, axis) in specs.iter().zip(&axes) {
+        let Some(axis) = *axis else { continue };
+        if let Some(shape) = config.shapes.get(&s.name) {
+            if let Some(&k) = shape.get(axis) {
+                fix(k as usize, format!("--input {} (axis {axis})", s.name))?;
+            }
+        } else if let Some(Dim::Known(k)) = s.shape.as_ref().and_then(|d| d.get(axis)) {
+            fix(*k as usize, format!("input '{}' (declared, axis {axis})", s.name))?;
+        }
+    }
+    // Samples in the feed, along each input's sample axis.
+    let mut fed_samples: Option<(usize, String)> = None;
+    for (s, axis) in specs.iter().zip(&axes) {
+        let (Some((a, _)), Some(axis)) = (arrays.get(&s.name), axis) else { continue };
+        let Some(&n) = a.shape().get(*axis) else {
+            return Err(usage(format!(
+                "feed entry '{}' has {} axes, but the input's sample axis is {axis}",
+                s.name,
+                a.ndim()
+            ))
+            .at(config.feed.as_deref().unwrap_or(Path::new(""))));
+        };
+        match &fed_samples {
+            Some((m, first)) if *m != n => {
+                return Err(usage(format!(
+                    "its arrays disagree on the number of samples: '{first}' has {m}, '{}' has {n} \
+                     along its sample axis {axis}",
+                    s.name
+                ))
+                .at(config.feed.as_deref().unwrap_or(Path::new(""))));
+            }
+            Some(_) => {}
+            None => fed_samples = Some((n, s.name.clone())),
+        }
+    }
+    let fed_batch = fed_samples.map(|(n, _)| n);
+    let fixed_batch = fixed.map(|(k, _)| k);
     let samples = fed_batch.unwrap_or(config.samples);
     let pass_batch = match (fixed_batch, fed_batch) {
         (Some(k), _) if k > 0 => k,
         (_, Some(n)) => n,
-        _ => config
-            .shapes
-            .values()
-            .next()
-            .and_then(|s| s.first().map(|&d| d as usize))
-            .unwrap_or(samples),
+        _ => samples,
     };
     let pass_batch = match (fixed_batch, config.max_pass) {
         (None, Some(m)) if m > 0 => pass_batch.min(m),
@@ -310,11 +385,12 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<InputPlan> {
     }
     let passes = samples.div_ceil(pass_batch);
     let mut inputs = Vec::with_capacity(specs.len());
-    for s in specs {
+    let mut warnings = Vec::new();
+    for (s, &batch_axis) in specs.iter().zip(&axes) {
         let (pass_shape, source, how) = if let Some((a, npy)) = arrays.remove(&s.name) {
             let mut shape: Vec<u64> = a.shape().iter().map(|&d| d as u64).collect();
-            if let Some(first) = shape.first_mut() {
-                *first = pass_batch as u64;
+            if let Some(d) = batch_axis.and_then(|k| shape.get_mut(k)) {
+                *d = pass_batch as u64;
             }
             let mut how = format!(
                 "from {}",
@@ -328,7 +404,7 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<InputPlan> {
             }
             (shape, Fill::Array(a), how)
         } else {
-            let shape = resolve_shape(s, pass_batch, config)?;
+            let shape = resolve_shape(s, batch_axis, batch_symbol.as_deref(), pass_batch, config)?;
             let (source, how) = match config.fills.get(&s.name) {
                 Some(&v) => (Fill::Constant(v), format!("constant {v}")),
                 None if is_float(s.dtype) => {
@@ -346,6 +422,15 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<InputPlan> {
                 }
                 None => match s.vocab {
                     Some(v) if v > 0 => (Fill::Tokens(v), format!("token ids uniform in [0, {v})")),
+                    _ if shape.iter().product::<u64>() == 1 && batch_axis.is_none() => {
+                        warnings.push(format!(
+                            "input '{0}' is a single integer that indexes no table (a sample rate, \
+                             a length, a step?): it is fed 1, which may not be a value the model \
+                             expects; give its value with --fill {0}=VALUE",
+                            s.name
+                        ));
+                        (Fill::Constant(1.0), "1 (a guess: set it with --fill)".to_owned())
+                    }
                     _ => (Fill::Constant(1.0), "ones (mask-like)".to_owned()),
                 },
             };
@@ -363,7 +448,14 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<InputPlan> {
                 config.max_input_elements
             )));
         }
-        inputs.push(PlannedInput { name: s.name.clone(), dtype: s.dtype, pass_shape, how, source });
+        inputs.push(PlannedInput {
+            name: s.name.clone(),
+            dtype: s.dtype,
+            pass_shape,
+            batch_axis,
+            how,
+            source,
+        });
     }
     Ok(InputPlan {
         inputs,
@@ -372,16 +464,86 @@ pub fn plan(specs: &[InputSpec], config: &InputConfig) -> Result<InputPlan> {
         samples: pass_batch * passes,
         seed: config.seed,
         feed,
+        warnings,
     })
 }
 
-fn resolve_shape(s: &InputSpec, pass_batch: usize, config: &InputConfig) -> Result<Vec<u64>> {
-    if let Some(shape) = config.shapes.get(&s.name) {
-        let mut shape = shape.clone();
-        if let Some(first) = shape.first_mut() {
-            *first = pass_batch as u64;
+/// The sample axis of every input (see [`plan`]) and the batch symbol.
+fn batch_axes(
+    specs: &[InputSpec],
+    config: &InputConfig,
+) -> Result<(Vec<Option<usize>>, Option<String>)> {
+    // Symbols: how many inputs hold each, and the first (axis, input) where.
+    let mut symbols: Vec<(String, usize, (usize, usize))> = Vec::new();
+    for (i, s) in specs.iter().enumerate() {
+        let mut seen: Vec<&str> = Vec::new();
+        for (axis, d) in s.shape.iter().flatten().enumerate() {
+            let Dim::Symbol(sym) = d else { continue };
+            if seen.contains(&sym.as_str()) {
+                continue;
+            }
+            seen.push(sym);
+            match symbols.iter_mut().find(|e| &e.0 == sym) {
+                Some(e) => {
+                    e.1 += 1;
+                    e.2 = e.2.min((axis, i));
+                }
+                None => symbols.push((sym.clone(), 1, (axis, i))),
+            }
         }
-        return Ok(shape);
+    }
+    let batch =
+        symbols.iter().max_by(|a, b| a.1.cmp(&b.1).then(b.2.cmp(&a.2))).map(|e| e.0.clone());
+    let first_fixed = specs.first().and_then(|s| match s.shape.as_ref()?.first()? {
+        Dim::Known(k) => Some(*k),
+        _ => None,
+    });
+    let mut axes = Vec::with_capacity(specs.len());
+    for s in specs {
+        if let Some(&chosen) = config.batch_axes.get(&s.name) {
+            let rank = config.shapes.get(&s.name).map(Vec::len).or(s.shape.as_ref().map(Vec::len));
+            if let (Some(axis), Some(rank)) = (chosen, rank)
+                && axis >= rank
+            {
+                return Err(usage(format!(
+                    "--batch-axis {}={axis}: the input has {rank} axes",
+                    s.name
+                )));
+            }
+            axes.push(chosen);
+            continue;
+        }
+        let axis = match &s.shape {
+            // Unknown rank: the shape comes from --input; the first axis, as before.
+            None => Some(0),
+            Some(dims) if dims.is_empty() => None,
+            Some(dims) => match &batch {
+                Some(b) => dims
+                    .iter()
+                    .position(|d| matches!(d, Dim::Symbol(x) if x == b))
+                    .or((dims[0] == Dim::Unknown).then_some(0)),
+                None => match &dims[0] {
+                    Dim::Unknown => Some(0),
+                    Dim::Known(k) if Some(*k) == first_fixed => Some(0),
+                    _ => None,
+                },
+            },
+        };
+        axes.push(axis);
+    }
+    Ok((axes, batch))
+}
+
+fn resolve_shape(
+    s: &InputSpec,
+    batch_axis: Option<usize>,
+    batch_symbol: Option<&str>,
+    pass_batch: usize,
+    config: &InputConfig,
+) -> Result<Vec<u64>> {
+    if let Some(shape) = config.shapes.get(&s.name) {
+        // A whole shape the user gave is what is fed.
+        return Ok(shape.clone());
     }
     let Some(declared) = &s.shape else {
         return Err(usage(format!(
@@ -393,16 +555,17 @@ fn resolve_shape(s: &InputSpec, pass_batch: usize, config: &InputConfig) -> Resu
         .iter()
         .enumerate()
         .map(|(axis, d)| match d {
-            Dim::Known(k) => Ok(if axis == 0 { pass_batch as u64 } else { *k }),
+            _ if Some(axis) == batch_axis => Ok(pass_batch as u64),
+            Dim::Known(k) => Ok(*k),
+            // The batch symbol anywhere is the samples per pass.
+            Dim::Symbol(sym) if Some(sym.as_str()) == batch_symbol => Ok(pass_batch as u64),
             Dim::Symbol(sym) => match config.dims.get(sym) {
-                Some(&v) if axis > 0 => Ok(v),
-                _ if axis == 0 => Ok(pass_batch as u64),
-                _ => Err(usage(format!(
+                Some(&v) => Ok(v),
+                None => Err(usage(format!(
                     "input '{}' has symbolic dimension '{sym}' at axis {axis}; set it with --dim {sym}=VALUE",
                     s.name
                 ))),
             },
-            Dim::Unknown if axis == 0 => Ok(pass_batch as u64),
             Dim::Unknown => Err(usage(format!(
                 "input '{}' has an unknown dimension at axis {axis}; give the shape with --input {}=D1xD2x...",
                 s.name, s.name
@@ -412,6 +575,12 @@ fn resolve_shape(s: &InputSpec, pass_batch: usize, config: &InputConfig) -> Resu
 }
 
 /// The values of every input for pass `pass` (0-based).
+///
+/// An input with a sample axis gets samples `pass * pass_batch ..` along
+/// it (a feed's last pass past its end repeats its first samples; random
+/// values are drawn sample after sample, so splitting the samples into
+/// passes never changes them, wherever the sample axis sits). An input
+/// without one gets the same values in every pass.
 pub fn values(input_plan: &InputPlan, pass: usize) -> Vec<Values> {
     input_plan
         .inputs
@@ -420,26 +589,25 @@ pub fn values(input_plan: &InputPlan, pass: usize) -> Vec<Values> {
         .map(|(index, fed)| {
             let n: u64 = fed.pass_shape.iter().product();
             let n = n as usize;
-            let per_sample = n.checked_div(input_plan.pass_batch).unwrap_or(n);
+            let batch = fed.batch_axis.map_or(1, |_| input_plan.pass_batch);
+            let first = fed.batch_axis.map_or(0, |_| pass * input_plan.pass_batch);
             let as_f64: Vec<f64> = match &fed.source {
                 Fill::Constant(v) => vec![*v; n],
-                Fill::Array(a) => {
-                    let flat: Vec<f64> = a.iter().copied().collect();
-                    let start = (pass * n).min(flat.len());
-                    let mut chunk = flat[start..(start + n).min(flat.len())].to_vec();
-                    // A last pass past the end of the fed samples repeats the first ones.
-                    while chunk.len() < n {
-                        let more = (n - chunk.len()).min(flat.len());
-                        chunk.extend_from_slice(&flat[..more]);
+                Fill::Array(a) => match fed.batch_axis {
+                    None => a.iter().copied().collect(),
+                    Some(axis) => {
+                        let total = a.shape()[axis].max(1);
+                        let picks: Vec<usize> = (first..first + batch).map(|i| i % total).collect();
+                        a.select(ndarray::Axis(axis), &picks).iter().copied().collect()
                     }
-                    chunk
-                }
+                },
                 Fill::Random(..) | Fill::Tokens(_) => {
                     let mut rng = ChaCha8Rng::seed_from_u64(input_plan.seed);
                     rng.set_stream(index as u64);
+                    let per_sample = n.checked_div(batch).unwrap_or(n);
                     // Skip the samples of earlier passes, draw this pass's.
                     let mut out = Vec::with_capacity(n);
-                    for i in 0..(pass * per_sample * input_plan.pass_batch + n) {
+                    for i in 0..(first * per_sample + n) {
                         let v = match &fed.source {
                             Fill::Random(Dist::Normal, s) => {
                                 let z: f32 = rng.sample(StandardNormal);
@@ -451,11 +619,11 @@ pub fn values(input_plan: &InputPlan, pass: usize) -> Vec<Values> {
                             Fill::Tokens(v) => rng.random_range(0..*v) as f64,
                             _ => unreachable!("only random fills are drawn"),
                         };
-                        if i >= pass * per_sample * input_plan.pass_batch {
+                        if i >= first * per_sample {
                             out.push(v);
                         }
                     }
-                    out
+                    sample_major_to_layout(out, &fed.pass_shape, fed.batch_axis)
                 }
             };
             match DataType::try_from(fed.dtype) {
@@ -476,6 +644,22 @@ pub fn values(input_plan: &InputPlan, pass: usize) -> Vec<Values> {
         .collect()
 }
 
+/// Values drawn sample after sample (the sample axis outermost) laid out
+/// in `shape`, whose sample axis is `axis`: unchanged when it is the first.
+fn sample_major_to_layout(values: Vec<f64>, shape: &[u64], axis: Option<usize>) -> Vec<f64> {
+    let Some(axis) = axis.filter(|&a| a > 0 && a < shape.len()) else { return values };
+    let mut drawn: Vec<usize> = shape.iter().map(|&d| d as usize).collect();
+    let samples = drawn.remove(axis);
+    drawn.insert(0, samples);
+    let Ok(a) = ArrayD::from_shape_vec(ndarray::IxDyn(&drawn), values.clone()) else {
+        return values;
+    };
+    // Axis 0 of the drawn array goes back to `axis`.
+    let mut order: Vec<usize> = (1..shape.len()).collect();
+    order.insert(axis, 0);
+    a.permuted_axes(ndarray::IxDyn(&order)).iter().copied().collect()
+}
+
 /// Stream numbers of perturbation directions start here, far above the
 /// streams of the inputs themselves (one per input index).
 const DIRECTION_STREAMS: u64 = 1 << 32;
@@ -487,7 +671,8 @@ const DIRECTION_STREAMS: u64 = 1 << 32;
 /// the size of the change relative to the input. Non-float inputs are kept.
 /// Directions come from ChaCha8 streams of their own, drawn sample after
 /// sample like the inputs, so they do not depend on how samples are split
-/// into passes. Half-precision inputs are kept too: the step (1e-3 by
+/// into passes. Inputs whose samples are not along their first axis are
+/// kept, and so are half-precision inputs: the step (1e-3 by
 /// default) is about two units in the last place of float16 (2^-11 relative
 /// per rounding) and below one of bfloat16 (2^-8), so the change would be
 /// mostly rounding.
@@ -497,6 +682,11 @@ pub fn perturbed(input_plan: &InputPlan, pass: usize, values: &[Values], step: f
         .enumerate()
         .map(|(index, v)| {
             let Values::F32(x) = v else { return v.clone() };
+            // Inputs without samples along their first axis (a recurrent
+            // state, a scalar) are kept: a per-sample step needs the samples.
+            if input_plan.inputs.get(index).is_some_and(|f| f.batch_axis != Some(0)) {
+                return v.clone();
+            }
             let n = x.len();
             let per_sample = n.checked_div(input_plan.pass_batch).filter(|&p| p > 0).unwrap_or(n);
             let mut rng = ChaCha8Rng::seed_from_u64(input_plan.seed);
@@ -593,7 +783,7 @@ fn read_npz<R: std::io::Read + std::io::Seek>(
         let array = read_npy_any(&bytes).map_err(in_entry)?;
         out.insert(name.to_owned(), array);
     }
-    same_samples(out)
+    Ok(out)
 }
 
 fn read_npy(bytes: &[u8], names: &[&str]) -> std::result::Result<Arrays, String> {
@@ -604,16 +794,7 @@ fn read_npy(bytes: &[u8], names: &[&str]) -> std::result::Result<Arrays, String>
         ));
     }
     let array = read_npy_any(bytes)?;
-    same_samples(BTreeMap::from([(names[0].to_owned(), array)]))
-}
-
-fn same_samples(arrays: Arrays) -> std::result::Result<Arrays, String> {
-    let batches: Vec<usize> =
-        arrays.values().filter_map(|(a, _)| a.shape().first().copied()).collect();
-    if batches.windows(2).any(|w| w[0] != w[1]) {
-        return Err("its arrays disagree on the number of samples (the first axis)".to_owned());
-    }
-    Ok(arrays)
+    Ok(BTreeMap::from([(names[0].to_owned(), array)]))
 }
 
 /// Largest `.npy` header read, in bytes: numpy's own loader refuses headers
@@ -830,6 +1011,81 @@ mod tests {
         let mut c = config(2);
         c.dims.insert("seq".into(), 5);
         assert_eq!(plan(&[s], &c).unwrap().inputs[0].pass_shape, vec![2, 5]);
+    }
+
+    /// Issue 15, item 2: `input [batch, samples]`, `state [2, batch, 128]`
+    /// and a scalar `sr`.
+    fn streaming_specs() -> Vec<InputSpec> {
+        let batch = || Dim::Symbol("batch".into());
+        vec![
+            spec("input", vec![batch(), Dim::Symbol("samples".into())]),
+            spec("state", vec![Dim::Known(2), batch(), Dim::Known(128)]),
+            InputSpec {
+                name: "sr".into(),
+                dtype: DataType::Int64 as i32,
+                shape: Some(vec![]),
+                vocab: None,
+            },
+        ]
+    }
+
+    #[test]
+    fn the_batch_axis_is_found_per_input() {
+        let mut c = config(3);
+        c.dims.insert("samples".into(), 16);
+        let f = plan(&streaming_specs(), &c).unwrap();
+        let axes: Vec<Option<usize>> = f.inputs.iter().map(|i| i.batch_axis).collect();
+        assert_eq!(axes, [Some(0), Some(1), None]);
+        let shapes: Vec<&[u64]> = f.inputs.iter().map(|i| i.pass_shape.as_slice()).collect();
+        assert_eq!(shapes, [&[3, 16][..], &[2, 3, 128], &[]]);
+        assert_eq!(f.warnings.len(), 1, "{:?}", f.warnings);
+        assert!(f.warnings[0].contains("--fill sr=VALUE"), "{}", f.warnings[0]);
+        // The batch symbol's value fixes the samples per pass.
+        c.dims.insert("batch".into(), 1);
+        let f = plan(&streaming_specs(), &c).unwrap();
+        assert_eq!((f.pass_batch, f.passes), (1, 3));
+        assert_eq!(f.inputs[1].pass_shape, [2, 1, 128]);
+        // A whole shape is fed as given, and fixes the samples per pass.
+        let mut c = config(2);
+        c.shapes.insert("state".into(), vec![2, 1, 128]);
+        c.shapes.insert("input".into(), vec![1, 16]);
+        let f = plan(&streaming_specs(), &c).unwrap();
+        assert_eq!(f.inputs[1].pass_shape, [2, 1, 128]);
+        assert_eq!(f.inputs[0].pass_shape, [1, 16]);
+        assert_eq!((f.pass_batch, f.passes), (1, 2));
+        // Two whole shapes that disagree on the samples per pass are refused.
+        c.shapes.insert("input".into(), vec![4, 16]);
+        let e = plan(&streaming_specs(), &c).unwrap_err();
+        assert!(e.message().contains("samples per pass"), "{e}");
+        // The user names an axis shunt cannot infer.
+        let mut c = config(2);
+        c.dims.insert("samples".into(), 16);
+        c.batch_axes.insert("state".into(), None);
+        let f = plan(&streaming_specs(), &c).unwrap();
+        assert_eq!(
+            (f.inputs[1].batch_axis, f.inputs[1].pass_shape.as_slice()),
+            (None, &[2, 2, 128][..])
+        );
+    }
+
+    #[test]
+    fn samples_along_a_later_axis_do_not_depend_on_the_passes() {
+        let mut c = config(4);
+        c.dims.insert("samples".into(), 3);
+        let whole = plan(&streaming_specs(), &c).unwrap();
+        let Values::F32(all) = &values(&whole, 0)[1] else { panic!() };
+        let all = ArrayD::from_shape_vec(ndarray::IxDyn(&[2, 4, 128]), all.clone()).unwrap();
+        c.max_pass = Some(2);
+        let split = plan(&streaming_specs(), &c).unwrap();
+        assert_eq!((split.pass_batch, split.passes), (2, 2));
+        for p in 0..2 {
+            let Values::F32(part) = &values(&split, p)[1] else { panic!() };
+            let part = ArrayD::from_shape_vec(ndarray::IxDyn(&[2, 2, 128]), part.clone()).unwrap();
+            let want = all.slice_axis(ndarray::Axis(1), (2 * p..2 * p + 2).into());
+            assert_eq!(part.view(), want);
+        }
+        // The sample-less scalar is the same in every pass.
+        assert_eq!(values(&split, 0)[2], values(&split, 1)[2]);
     }
 
     #[test]

@@ -74,6 +74,8 @@ pub struct BlockSamples {
     pub nan: u64,
     /// Infinite values seen in the block's watched tensors.
     pub inf: u64,
+    /// The shape of the merge output in the first pass (empty until seen).
+    pub output_shape: Vec<usize>,
 }
 
 /// The outcome of probing.
@@ -899,7 +901,10 @@ fn observe(
             with_view!(v, x => acc.fork_rms.extend(samples(x, batch).map(stats::rms)));
         }
         Role::Output => {
-            let (_, v) = view(value)?;
+            let (shape, v) = view(value)?;
+            if acc.output_shape.is_empty() {
+                acc.output_shape = shape;
+            }
             with_view!(v, x => measure_output(acc, w, x, batch));
         }
         Role::Shortcut => {

@@ -504,7 +504,7 @@ pub struct BareRunRow {
 pub struct NotBlockRow {
     /// The node.
     pub node: NodeRef,
-    /// `independent-inputs`, `no-shortcut` or `no-learned-layer`.
+    /// `independent-inputs`, `no-shortcut`, `no-learned-layer` or `sum-of-heads`.
     pub reason: NotBlockReason,
     /// The reason in words.
     pub detail: String,

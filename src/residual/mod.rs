@@ -98,6 +98,7 @@ pub struct Detection {
 /// Finds every residual block and concatenative skip of `g`.
 pub fn find_blocks(g: &Graph, dom: &Dominance) -> Detection {
     let mut det = Detection::default();
+    let mut learned_after: Option<Vec<bool>> = None;
     for &n in &g.order {
         let node = g.node(n);
         let is_merge = op::is_merge(&node.op);
@@ -111,13 +112,45 @@ pub fn find_blocks(g: &Graph, dom: &Dominance) -> Detection {
             .filter_map(|(slot, v)| v.map(|v| (slot, v)))
             .filter(|(_, v)| !g.value(*v).is_static)
             .collect();
+        let Some(&output) = node.outputs.first() else { continue };
+        if is_merge
+            && let [(_, signal)] = signals.as_slice()
+            && let Some(block) = constant_shortcut(g, n, output, *signal)
+        {
+            det.blocks.push(block);
+            continue;
+        }
         if signals.len() < 2 {
             continue;
         }
-        let Some(&output) = node.outputs.first() else { continue };
         let outcome = match dom.fork(output) {
             Some(fork) => join(g, fork, &signals, is_merge).map(|j| (fork, j)),
             None => Err(NotBlockReason::Independent),
+        };
+        // The branch reads the shortcut and a side signal that came from
+        // before it (a decoder's or a class-attention layer's stream that
+        // attends to a memory it was computed from): the dominator is then
+        // the memory, above the shortcut. The shortcut input itself is the fork.
+        let outcome = match outcome {
+            Err(NotBlockReason::NoShortcut) if is_merge => signals
+                .iter()
+                .find_map(|&(_, a)| join(g, a, &signals, true).ok().map(|j| (a, j)))
+                .ok_or(NotBlockReason::NoShortcut),
+            other => other,
+        };
+        // A projected shortcut into a sum that no learned layer reads: two
+        // heads on one map (a segmentation head's two classifiers, a
+        // detector's offset and size heads), not a block.
+        let outcome = match outcome {
+            Ok((_, (shortcut, ..)))
+                if is_merge
+                    && shortcut.projected
+                    && !learned_after.get_or_insert_with(|| learned_downstream(g))
+                        [n.0 as usize] =>
+            {
+                Err(NotBlockReason::HeadSum)
+            }
+            other => other,
         };
         match outcome {
             Ok((fork, (shortcut, branch_inputs, branch))) => {
@@ -165,6 +198,165 @@ pub fn find_blocks(g: &Graph, dom: &Dominance) -> Detection {
     det
 }
 
+/// A merge of one signal and a learned constant that the signal's path
+/// reads as well: `cls + f(concat(cls, x))`, the class-attention layer of
+/// [K1]. The constant (an initializer or Constant node's float tensor, with
+/// as many elements as one sample of the merge output) may reach the merge
+/// and the branch through reshapes or an `Expand` to the batch. A bias or a
+/// positional table is read by nothing else and is never such a shortcut.
+fn constant_shortcut(g: &Graph, merge: NodeId, output: ValueId, signal: ValueId) -> Option<Block> {
+    let node = g.node(merge);
+    for (slot, c) in node.inputs.iter().enumerate() {
+        let Some(c) = *c else { continue };
+        if c == signal || !g.value(c).is_static {
+            continue;
+        }
+        let Some(root) = constant_root(g, c) else { continue };
+        let dims = g.constant_dims(root).unwrap_or_default();
+        let elements = dims
+            .iter()
+            .try_fold(1u64, |acc, &d| u64::try_from(d).ok().and_then(|d| acc.checked_mul(d)))
+            .unwrap_or(0);
+        let sample = g.shape(output).and_then(|s| {
+            s.iter().skip(1).try_fold(1u64, |acc, d| match d {
+                crate::graph::Dim::Known(k) => acc.checked_mul(*k),
+                _ => None,
+            })
+        });
+        let dtype = g.constant_tensor(root).map_or(0, |t| t.data_type);
+        if elements < 2
+            || sample.is_some_and(|n| n != elements)
+            || !matches!(dtype, 1 | 10 | 11 | 16)
+        {
+            continue;
+        }
+        // The constant and its static reshapes and expansions.
+        let mut copies = vec![root];
+        let mut i = 0;
+        while i < copies.len() {
+            let v = copies[i];
+            i += 1;
+            for cons in g.consumers(v) {
+                let n = g.node(cons);
+                if is_copy(&n.op) && n.inputs.first() == Some(&Some(v)) {
+                    copies.extend(n.outputs.iter().copied().filter(|&o| g.value(o).is_static));
+                }
+            }
+        }
+        // Signal-carrying nodes that read a copy: where the branch starts.
+        let readers: Vec<(NodeId, ValueId)> = copies
+            .iter()
+            .flat_map(|&v| g.consumers(v).map(move |r| (r, v)))
+            .filter(|&(r, _)| {
+                r != merge && g.node(r).outputs.iter().any(|&o| !g.value(o).is_static)
+            })
+            .collect();
+        let Some(&(first, _)) = readers.iter().min_by_key(|(r, _)| g.rank[r.0 as usize]) else {
+            continue;
+        };
+        let floor = g.rank[first.0 as usize];
+        // Backwards from the signal over signal inputs, no further than the
+        // first reader; then forwards from the readers within those ancestors.
+        let mut ancestors: HashSet<NodeId> = HashSet::new();
+        let mut stack = vec![signal];
+        let mut seen: HashSet<ValueId> = HashSet::new();
+        while let Some(v) = stack.pop() {
+            if !seen.insert(v) || g.value(v).is_static {
+                continue;
+            }
+            let Some(p) = g.producer(v) else { continue };
+            if g.rank[p.0 as usize] < floor {
+                continue;
+            }
+            if ancestors.insert(p) {
+                stack.extend(g.signal_inputs(p));
+            }
+        }
+        let mut on_path: HashSet<NodeId> = HashSet::new();
+        let mut starts: Vec<(NodeId, ValueId)> =
+            readers.iter().copied().filter(|(r, _)| ancestors.contains(r)).collect();
+        starts.sort_by_key(|(r, _)| g.rank[r.0 as usize]);
+        let mut stack: Vec<NodeId> = starts.iter().map(|(r, _)| *r).collect();
+        while let Some(n) = stack.pop() {
+            if !on_path.insert(n) {
+                continue;
+            }
+            for &out in &g.node(n).outputs {
+                stack.extend(g.consumers(out).filter(|c| ancestors.contains(c)));
+            }
+        }
+        if !g.producer(signal).is_some_and(|p| on_path.contains(&p))
+            || !on_path.iter().any(|&n| op::is_parametrised(g, n))
+        {
+            continue;
+        }
+        // The fork: the copy the branch reads first (the merge's own input
+        // when the branch reads that one).
+        let fork = starts.iter().find(|(_, v)| *v == c).or(starts.first()).map(|(_, v)| *v)?;
+        let mut branch: Vec<NodeId> = on_path.into_iter().collect();
+        branch.sort_by_key(|n| g.rank[n.0 as usize]);
+        return Some(Block {
+            merge,
+            output,
+            fork,
+            shortcut: Shortcut {
+                kind: ShortcutKind::Parameter,
+                input: c,
+                slot,
+                ops: Vec::new(),
+                projected: false,
+            },
+            branch_inputs: vec![signal],
+            branch,
+            parent: None,
+            depth: 0,
+            children: 0,
+        });
+    }
+    None
+}
+
+/// Ops that copy a constant without changing its values.
+fn is_copy(op: &str) -> bool {
+    matches!(
+        op,
+        "Expand" | "Reshape" | "Unsqueeze" | "Squeeze" | "Identity" | "Cast" | "Tile" | "Flatten"
+    )
+}
+
+/// The initializer or Constant output `v` copies, through [`is_copy`] ops.
+fn constant_root(g: &Graph, mut v: ValueId) -> Option<ValueId> {
+    for _ in 0..8 {
+        if g.initializer(v).is_some() {
+            return Some(v);
+        }
+        let p = g.producer(v)?;
+        let n = g.node(p);
+        if n.op == "Constant" {
+            return Some(v);
+        }
+        if !is_copy(&n.op) {
+            return None;
+        }
+        v = n.inputs.first().copied().flatten()?;
+    }
+    None
+}
+
+/// For each node, whether a learned layer reads (directly or further on)
+/// any of its outputs: one pass in reverse topological order.
+fn learned_downstream(g: &Graph) -> Vec<bool> {
+    let mut after = vec![false; g.nodes.len()];
+    for &n in g.order.iter().rev() {
+        after[n.0 as usize] = g
+            .node(n)
+            .outputs
+            .iter()
+            .any(|&v| g.consumers(v).any(|c| after[c.0 as usize] || op::is_parametrised(g, c)));
+    }
+    after
+}
+
 /// Splits the signal inputs of a merge into one shortcut and the branch.
 fn join(
     g: &Graph,
@@ -206,7 +398,11 @@ fn join(
             branch_set.extend(path.iter().copied());
         }
     }
-    let learned = branch_set.iter().any(|&n| op::is_parametrised(g, n));
+    // A normalisation learns a scale and a shift: a branch of a norm and
+    // parameter-free mixing (PoolFormer's `pool(n) - n`, [F1]) is learned.
+    let learned = branch_set
+        .iter()
+        .any(|&n| op::is_parametrised(g, n) || (is_merge && op::family(g, n) == Family::Norm));
     if !learned {
         return Err(NotBlockReason::NoLearnedLayer);
     }

@@ -352,6 +352,13 @@ impl ModelBuilder {
         name
     }
 
+    /// Records the shape of a tensor the builder cannot infer (an `Expand`
+    /// to a shape computed at run time), so later helpers can read its axes.
+    pub fn declare_shape(&mut self, name: &str, dims: &[Dim]) {
+        let elem_type = self.fact(name).elem_type;
+        self.facts.insert(name.to_owned(), Fact { elem_type, shape: Some(dims.to_vec()) });
+    }
+
     /// Marks a tensor as a graph output.
     pub fn output(&mut self, name: &str) {
         let fact = self.fact(name).clone();

@@ -1050,18 +1050,18 @@ pub fn demo_tile_grader() -> ModelProto {
 }
 
 /// One post-activation residual block of a ResNet.
-struct ResBlock {
-    prefix: String,
-    width: i64,
-    out: i64,
-    stride: i64,
-    design: BlockDesign,
-    shortcut: Shortcut,
-    fold_bn: bool,
+pub(crate) struct ResBlock {
+    pub(crate) prefix: String,
+    pub(crate) width: i64,
+    pub(crate) out: i64,
+    pub(crate) stride: i64,
+    pub(crate) design: BlockDesign,
+    pub(crate) shortcut: Shortcut,
+    pub(crate) fold_bn: bool,
 }
 
 /// [R3] `relu(F(x) + shortcut(x))`, the branch first in the `Add`.
-fn post_activation_block(b: &mut ModelBuilder, x: &str, block: &ResBlock) -> String {
+pub(crate) fn post_activation_block(b: &mut ModelBuilder, x: &str, block: &ResBlock) -> String {
     let p = &block.prefix;
     let fold = block.fold_bn;
     let conv_bn = |b: &mut ModelBuilder, k: usize, x: &str, conv: Conv| {
@@ -1122,7 +1122,7 @@ fn post_activation_block(b: &mut ModelBuilder, x: &str, block: &ResBlock) -> Str
     b.relu(&format!("{p}.relu"), &y)
 }
 
-fn image_model(name: &str, opset: i64, image: &ImageSpec) -> (ModelBuilder, String) {
+pub(crate) fn image_model(name: &str, opset: i64, image: &ImageSpec) -> (ModelBuilder, String) {
     let mut b = ModelBuilder::new(name, opset).emit_value_info(image.value_info);
     let dims = [image.batch.clone(), image.channels.into(), image.size.into(), image.size.into()];
     let x = b.input("input", &dims);
@@ -1130,7 +1130,7 @@ fn image_model(name: &str, opset: i64, image: &ImageSpec) -> (ModelBuilder, Stri
 }
 
 /// GlobalAveragePool -> Flatten -> Gemm, marked as the graph output.
-fn classifier(b: &mut ModelBuilder, x: &str, classes: i64) {
+pub(crate) fn classifier(b: &mut ModelBuilder, x: &str, classes: i64) {
     let y = b.global_avg_pool("head.pool", x);
     let y = b.flatten("head.flatten", &y, 1);
     let y = b.gemm("head.fc", &y, classes, &Init::HeNormal);

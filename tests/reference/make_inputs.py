@@ -15,9 +15,9 @@ OUT = os.path.join("tests", "reference", "inputs")
 SAMPLES = 4
 
 
-def images(seed, channels):
+def images(seed, channels, size=32):
     rng = np.random.default_rng(seed)
-    return rng.standard_normal((SAMPLES, channels, 32, 32)).astype(np.float32)
+    return rng.standard_normal((SAMPLES, channels, size, size)).astype(np.float32)
 
 
 def main():
@@ -27,6 +27,22 @@ def main():
     np.save(os.path.join(OUT, "mobilenet_v2.npy"), images(3, 3))
     np.save(os.path.join(OUT, "tile_grader.npy"), images(4, 1))
     np.save(os.path.join(OUT, "resnet_cifar_folded.npy"), images(5, 3))
+    # fixtures/structure/ (issue 15); resnet18_constant_weights reuses resnet18_b's.
+    np.save(os.path.join(OUT, "detector_box_decode.npy"), images(8, 3))
+    np.save(os.path.join(OUT, "cait_class_attention.npy"), images(9, 3, 16))
+    np.save(os.path.join(OUT, "poolformer_s12_like.npy"), images(10, 3))
+    np.save(os.path.join(OUT, "nf_scaled_preact.npy"), images(11, 3, 16))
+    np.save(os.path.join(OUT, "convmixer_like.npy"), images(12, 3, 16))
+    np.save(os.path.join(OUT, "swin_like.npy"), images(14, 3))
+    # fixtures/structure/streaming_state.onnx: input [N, 64], state [2, N, 16]
+    # (samples on axis 1), sr a 0-d int64 sample rate.
+    rng = np.random.default_rng(13)
+    np.savez(
+        os.path.join(OUT, "streaming_state.npz"),
+        input=rng.standard_normal((SAMPLES, 64)).astype(np.float32),
+        state=rng.standard_normal((2, SAMPLES, 16)).astype(np.float32),
+        sr=np.array(16000, dtype=np.int64),
+    )
 
     # fixtures/text_postnorm.onnx: input_ids [N, 8] int64 into a 50-row
     # table, attention_mask [N, 8] float (1 = attend); samples end with 0..3

@@ -2,6 +2,7 @@
 
 Usage:
     python tests/reference/stats.py MODEL.onnx INPUTS.npy|INPUTS.npz OUT.json [--check-reference]
+        [--batch-axis NAME=AXIS ...]
 
 The model is rewritten with the onnx package so that the tensors a residual
 audit looks at become extra graph outputs:
@@ -14,7 +15,9 @@ audit looks at become extra graph outputs:
 The model then runs with onnxruntime (CPUExecutionProvider, one thread, all
 graph optimisations off so that no watched tensor is fused away), one sample
 at a time: run ``s`` is fed the batch-1 slice ``[s:s+1]`` of every input, as
-some models declare a fixed batch of 1. From each run's tensors, numpy computes
+some models declare a fixed batch of 1 (``--batch-axis NAME=AXIS`` names another
+sample axis of an input; a 0-d array, a scalar input, is fed whole to every
+run). From each run's tensors, numpy computes
 in float64
 
 - ``tensors[name].rms[s]`` = sqrt(mean(x**2)) over all elements of sample s,
@@ -105,7 +108,7 @@ def exposed(model, names):
     return m
 
 
-def load_feed(path, model_inputs, model):
+def load_feed(path, model_inputs, model, axes):
     decl = {i.name: i.type.tensor_type.elem_type for i in model.graph.input}
     if path.endswith(".npz"):
         with np.load(path) as z:
@@ -118,10 +121,22 @@ def load_feed(path, model_inputs, model):
     if missing:
         raise SystemExit(f"the feed has no entry for {missing}")
     feed = {n: feed[n].astype(NUMPY_OF_ONNX[decl[n]]) for n in model_inputs}
-    samples = {a.shape[0] for a in feed.values()}
+    # The sample axis of each input: --batch-axis, else the first; a scalar has none.
+    for n, a in feed.items():
+        axes.setdefault(n, 0 if a.ndim else None)
+    samples = {a.shape[axes[n]] for n, a in feed.items() if axes[n] is not None}
     if len(samples) != 1:
         raise SystemExit("the inputs disagree on the number of samples")
     return feed, samples.pop()
+
+
+def sample(a, s, axis):
+    """Sample s of array a along its sample axis, keeping the axis (all of a when None)."""
+    if axis is None:
+        return a
+    index = [slice(None)] * a.ndim
+    index[axis] = slice(s, s + 1)
+    return a[tuple(index)]
 
 
 def rms(x):
@@ -153,7 +168,7 @@ def statistics(runs, names, merges):
     return tensors, adds
 
 
-def run_ort(model, feed, samples, names):
+def run_ort(model, feed, samples, names, axes):
     opts = ort.SessionOptions()
     opts.intra_op_num_threads = 1
     opts.inter_op_num_threads = 1
@@ -165,21 +180,21 @@ def run_ort(model, feed, samples, names):
     outs = [o.name for o in sess.get_outputs()]
     runs = []
     for s in range(samples):
-        one = {k: v[s : s + 1] for k, v in feed.items()}
+        one = {k: sample(v, s, axes[k]) for k, v in feed.items()}
         values = dict(zip(outs, sess.run(outs, one)))
         values.update(one)
         runs.append({n: values[n] for n in names})
     return runs
 
 
-def run_reference(model, feed, samples, names):
+def run_reference(model, feed, samples, names, axes):
     from onnx.reference import ReferenceEvaluator
 
     ev = ReferenceEvaluator(model)
     outs = list(ev.output_names)
     runs = []
     for s in range(samples):
-        one = {k: v[s : s + 1] for k, v in feed.items()}
+        one = {k: sample(v, s, axes[k]) for k, v in feed.items()}
         values = dict(zip(outs, ev.run(outs, one)))
         values.update(one)
         runs.append({n: values[n] for n in names})
@@ -208,13 +223,24 @@ def main():
     p.add_argument("inputs")
     p.add_argument("out")
     p.add_argument("--check-reference", action="store_true")
+    p.add_argument(
+        "--batch-axis",
+        action="append",
+        default=[],
+        metavar="NAME=AXIS",
+        help="the sample axis of an input (default: the first; none for a scalar)",
+    )
     args = p.parse_args()
 
     model = onnx.load(args.model)
     inputs, names, merges = watched(model)
-    feed, samples = load_feed(args.inputs, inputs, model)
+    axes = {}
+    for item in args.batch_axis:
+        name, axis = item.split("=")
+        axes[name] = None if axis == "none" else int(axis)
+    feed, samples = load_feed(args.inputs, inputs, model, axes)
     m = exposed(model, names)
-    tensors, adds = statistics(run_ort(m, feed, samples, names), names, merges)
+    tensors, adds = statistics(run_ort(m, feed, samples, names, axes), names, merges)
     doc = {
         "model": args.model,
         "inputs": args.inputs,
@@ -230,7 +256,7 @@ def main():
         "adds": adds,
     }
     if args.check_reference:
-        ref_t, ref_a = statistics(run_reference(m, feed, samples, names), names, merges)
+        ref_t, ref_a = statistics(run_reference(m, feed, samples, names, axes), names, merges)
         worst = compare(
             {k: v["rms"] for k, v in tensors.items()},
             {k: v["rms"] for k, v in ref_t.items()},
