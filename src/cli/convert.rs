@@ -62,7 +62,15 @@ fn parse_size(text: &str) -> anyhow::Result<u64> {
     let bad =
         || anyhow::anyhow!("--memory-budget {text}: expected bytes, or a number with K, M, G or T");
     let t = text.trim();
-    let t = t.strip_suffix("iB").or_else(|| t.strip_suffix('B')).unwrap_or(t);
+    let lower = t.to_ascii_lowercase();
+    let unit_len = if lower.ends_with("ib") {
+        2
+    } else if lower.ends_with('b') {
+        1
+    } else {
+        0
+    };
+    let t = &t[..t.len() - unit_len];
     let (number, shift) = match t.char_indices().last() {
         Some((i, c)) if c.is_ascii_alphabetic() => {
             let shift = match c.to_ascii_uppercase() {

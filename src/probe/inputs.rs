@@ -977,8 +977,9 @@ mod tests {
         }
     }
 
+    /// All samples in one pass of a symbolic batch, unless a test says.
     fn config(samples: usize) -> InputConfig {
-        InputConfig { seed: 7, ..InputConfig::standard(samples) }
+        InputConfig { seed: 7, max_pass: None, ..InputConfig::standard(samples) }
     }
 
     #[test]

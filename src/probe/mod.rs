@@ -530,9 +530,21 @@ fn prepare(
         .chain(source_roles.iter().map(|(i, _)| (typed_inputs[*i].node, typed_inputs[*i].slot)))
         .map(|(node, slot)| outlet_bytes(&typed, node, slot))
         .sum();
-    typed
-        .select_output_outlets(&final_outs[..originals.len()])
-        .map_err(|e| tract_err("tract", &e))?;
+    // The model's own outputs again, so watched tensors are freed after their
+    // last reader. A watched tensor the outputs no longer need (the optimiser
+    // may compute the outputs from a rewritten copy, as it does for tensors
+    // of one sample with 1x1 spatial size) would then not be computed at
+    // all: it stays an output.
+    let mut outputs = final_outs[..originals.len()].to_vec();
+    let needed = ancestors(&typed, &outputs);
+    let mut orphans: Vec<OutletId> = watch_map
+        .keys()
+        .filter(|(node, _)| !needed.contains(node))
+        .map(|&(node, slot)| OutletId::new(node, slot))
+        .collect();
+    orphans.sort_by_key(|o| (o.node, o.slot));
+    outputs.extend(orphans);
+    typed.select_output_outlets(&outputs).map_err(|e| tract_err("tract", &e))?;
     let plan =
         typed.into_runnable().map_err(|e| tract_err("tract could not plan the model", &e))?;
     let pass_bytes = peak_live_bytes(&plan);
@@ -690,6 +702,18 @@ impl Prepared {
     }
 }
 
+/// The nodes the outlets `outputs` are computed from (themselves included).
+fn ancestors(model: &TypedModel, outputs: &[OutletId]) -> std::collections::HashSet<usize> {
+    let mut seen = std::collections::HashSet::new();
+    let mut todo: Vec<usize> = outputs.iter().map(|o| o.node).collect();
+    while let Some(node) = todo.pop() {
+        if seen.insert(node) {
+            todo.extend(model.node(node).inputs.iter().map(|i| i.node));
+        }
+    }
+    seen
+}
+
 /// The bytes of one outlet's tensor, when its shape is known (else 0).
 fn outlet_bytes(model: &TypedModel, node: usize, slot: usize) -> u64 {
     let fact = &model.node(node).outputs[slot].fact;
@@ -741,10 +765,11 @@ fn peak_live_bytes(plan: &TypedRunnableModel) -> u64 {
     peak
 }
 
-/// Appends the float outputs of one pass; returns their shapes.
+/// Appends the float outputs of one pass (the model's own, not the watched
+/// tensors kept as outputs after them); returns their shapes.
 fn collect_outputs(result: &TVec<TValue>, outputs: &mut [Vec<f32>]) -> Vec<Vec<usize>> {
-    let mut shapes = Vec::with_capacity(result.len());
-    for (i, t) in result.iter().enumerate() {
+    let mut shapes = Vec::with_capacity(outputs.len());
+    for (i, t) in result.iter().take(outputs.len()).enumerate() {
         shapes.push(t.shape().to_vec());
         if let Ok(f) = t.cast_to::<f32>()
             && let Ok(view) = f.try_as_plain_ram()
