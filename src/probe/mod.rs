@@ -1397,3 +1397,44 @@ fn pair_measure<A: stats::Value, B: stats::Value>(
         count_non_finite(acc, br);
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn layout_puts_passes_on_threads_first_then_kernels() {
+        let budget = |threads, memory| Budget { threads: Some(threads), memory: Some(memory) };
+        let layout = |workers, kernel_threads| Layout { workers, kernel_threads };
+        // Enough passes: one per thread, single-threaded kernels.
+        assert_eq!(Layout::of(&budget(4, 1 << 30), 8, 1 << 20), layout(4, 1));
+        // One pass: every thread inside it.
+        assert_eq!(Layout::of(&budget(4, 1 << 30), 1, 1 << 20), layout(1, 4));
+        // Two passes on four threads: two at once, two kernel threads each.
+        assert_eq!(Layout::of(&budget(4, 1 << 30), 2, 1 << 20), layout(2, 2));
+        // Memory for three passes at once: three, the leftover thread unused.
+        assert_eq!(Layout::of(&budget(4, 300), 8, 100), layout(3, 1));
+        // A pass larger than the budget still runs, alone, with every thread.
+        assert_eq!(Layout::of(&budget(4, 10), 8, 100), layout(1, 4));
+    }
+
+    #[test]
+    fn merging_passes_appends_samples_and_adds_sums() {
+        let pass = |x: f64| BlockSamples {
+            fork_rms: vec![x],
+            channel_shortcut: vec![x, 2.0 * x],
+            channel_branch: vec![1.0, 1.0],
+            nan: 1,
+            output_shape: vec![x as usize],
+            ..BlockSamples::default()
+        };
+        let mut total = BlockSamples::default();
+        for x in [1.0, 2.0, 3.0] {
+            total.merge(pass(x));
+        }
+        assert_eq!(total.fork_rms, [1.0, 2.0, 3.0]);
+        assert_eq!(total.channel_shortcut, [6.0, 12.0]);
+        assert_eq!(total.channel_branch, [3.0, 3.0]);
+        assert_eq!((total.nan, total.output_shape), (3, vec![1]));
+    }
+}
