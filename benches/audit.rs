@@ -56,13 +56,17 @@ fn bench_dir() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("target").join("bench")
 }
 
-/// The audit's configuration as the command line builds it by default.
+/// The audit's configuration as the command line builds it by default,
+/// but on one thread with the whole batch in one pass, like the plain
+/// forward it is compared with (benches/peers.py and benches/threads.py
+/// measure the command line's own defaults).
 fn audit_config() -> AuditConfig {
     AuditConfig {
         open: OpenConfig::standard(),
-        inputs: InputConfig::standard(BATCH),
+        inputs: InputConfig { max_pass: None, ..InputConfig::standard(BATCH) },
         findings: shunt::findings::FindingConfig::STANDARD,
         influence: None,
+        budget: shunt::parallel::Budget::ONE_THREAD,
     }
 }
 

@@ -106,6 +106,10 @@ fn child_plain(path: &Path) -> Value {
 fn child_knockout(path: &Path) -> Value {
     let mut config = AuditConfig::standard();
     config.inputs.samples = BATCH;
+    // One pass of the batch on one thread, like the plain forward (the
+    // command line's threaded figures: benches/threads.py).
+    config.inputs.max_pass = None;
+    config.budget = shunt::parallel::Budget::ONE_THREAD;
     config.influence = Some(InfluenceConfig::standard());
     let clock = Clock::default();
     let (start, c0) = (Instant::now(), cpu());

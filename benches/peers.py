@@ -11,14 +11,16 @@ ROUNDS times (default 5), interleaved; wall time is from process start to
 exit, CPU time and peak memory (ru_maxrss) come from wait4 for that process:
 
 - shunt: `shunt audit MODEL --feed INPUT` (scan, tract load and optimise,
-  run with per-block statistics, findings, JSON report), one thread;
-- tract: tract's plain forward (`peers tract`: load, optimise, run once);
+  run with per-block statistics, findings, JSON report) with its default
+  threads (every core: passes of one sample, as many at once as cores),
+  and with `--threads 1`;
+- tract: tract's plain forward (`peers tract`: load, optimise, run once on
+  the batch of 8), on one thread and with its multithreaded kernels on two;
 - onnxruntime: a plain forward (session with default options, run once);
 - practitioner: benches/practitioner.py (onnxruntime with every merge input
   as an extra output, statistics in numpy).
 
-onnxruntime uses its default thread count (one per core); tract and shunt
-run on one thread.
+onnxruntime uses its default thread count (one per core).
 """
 import os
 import platform
@@ -65,7 +67,11 @@ def main():
     variants = {
         "shunt audit": [SHUNT, "audit", MODEL, "--feed", INPUT, "--format", "json",
                         "-o", os.path.join(out, "report.json"), "-q"],
+        "shunt audit --threads 1": [SHUNT, "audit", MODEL, "--feed", INPUT, "--format", "json",
+                                    "-o", os.path.join(out, "report1.json"), "-q",
+                                    "--threads", "1"],
         "tract plain forward": [PEERS, "tract", MODEL, INPUT],
+        "tract plain forward, 2 threads": [PEERS, "tract", MODEL, INPUT, "2"],
         "onnxruntime plain forward": [py, "-c", ORT_PLAIN, MODEL, INPUT],
         "practitioner script (onnxruntime + numpy)":
             [py, os.path.join(ROOT, "benches", "practitioner.py"), MODEL, INPUT],
@@ -84,7 +90,7 @@ def main():
     print(f"machine: {os.cpu_count()} logical CPUs, {cpu}, Linux {platform.release()}; "
           f"onnxruntime {onnxruntime.__version__}, numpy {numpy.__version__}, "
           f"python {platform.python_version()}")
-    print(f"load average before {load_before[0]:.1f}, after {load_after[0]:.1f}; "
+    print(f"load average before {load_before[0]:.2f}, after {load_after[0]:.2f}; "
           f"{rounds} rounds, medians")
     print()
     med = {k: [statistics.median(x[i] for x in v) for i in range(3)] for k, v in rows.items()}

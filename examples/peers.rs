@@ -5,9 +5,9 @@
 //!   224x224, 1000 classes, symbolic batch, weights in `raw_data`) and
 //!   `DIR/input.npy`, the 8 samples `shunt audit` feeds by default (seed 0,
 //!   normal), so every program sees the same batch.
-//! - `peers tract MODEL INPUT.npy`: tract's plain forward pass as a program:
-//!   load, optimise, run once on the batch, print the logits' sum (one
-//!   thread, as tract runs).
+//! - `peers tract MODEL INPUT.npy [THREADS]`: tract's plain forward pass as a
+//!   program: load, optimise, run once on the batch, print the logits' sum;
+//!   on one thread, or with tract's multithreaded kernels on `THREADS`.
 #![allow(clippy::print_stdout, clippy::print_stderr)]
 
 use std::path::Path;
@@ -29,7 +29,8 @@ fn write(dir: &Path) {
     let model = zoo::resnet(&cfg);
     std::fs::write(dir.join("resnet50.onnx"), model.encode_to_vec()).expect("write the model");
     // The inputs exactly as the audit makes them by default.
-    let config = InputConfig::standard(8);
+    // All eight samples in one array (the audit's passes draw the same values).
+    let config = InputConfig { max_pass: None, ..InputConfig::standard(8) };
     let analysis = shunt::open::analyse(model, ExternalData::none(), &OpenConfig::standard())
         .expect("analyse the model");
     let input_plan = inputs::plan(&inputs::input_specs(&analysis.graph), &config).expect("a plan");
@@ -40,7 +41,7 @@ fn write(dir: &Path) {
     ndarray_npy::write_npy(dir.join("input.npy"), &array).expect("write the input");
 }
 
-fn tract_forward(model: &Path, input: &Path) -> TractResult<()> {
+fn tract_forward(model: &Path, input: &Path, threads: usize) -> TractResult<()> {
     let a: ArrayD<f32> = ndarray_npy::read_npy(input).expect("read the input");
     let shape = a.shape().to_vec();
     let data: Vec<f32> = a.into_iter().collect();
@@ -52,7 +53,15 @@ fn tract_forward(model: &Path, input: &Path) -> TractResult<()> {
         .with_input_fact(0, InferenceFact::dt_shape(f32::datum_type(), &shape))?
         .into_optimized()?
         .into_runnable()?;
-    let out = plan.run(tvec![x.into_tvalue()])?;
+    let executor = if threads > 1 {
+        tract_onnx::tract_core::tract_linalg::multithread::Executor::multithread(threads)
+    } else {
+        tract_onnx::tract_core::tract_linalg::multithread::Executor::SingleThread
+    };
+    let out = tract_onnx::tract_core::tract_linalg::multithread::multithread_tract_scope(
+        executor,
+        || plan.run(tvec![x.into_tvalue()]),
+    )?;
     let view = out[0].try_as_plain_ram()?;
     let logits = view.as_slice::<f32>()?;
     println!("{} logits, sum {}", logits.len(), logits.iter().map(|&v| v as f64).sum::<f64>());
@@ -63,9 +72,15 @@ fn main() {
     let args: Vec<String> = std::env::args().skip(1).collect();
     match args.iter().map(String::as_str).collect::<Vec<_>>().as_slice() {
         ["write", dir] => write(Path::new(dir)),
-        ["tract", model, input] => tract_forward(Path::new(model), Path::new(input)).expect("run"),
+        ["tract", model, input] => {
+            tract_forward(Path::new(model), Path::new(input), 1).expect("run")
+        }
+        ["tract", model, input, threads] => {
+            let threads = threads.parse().expect("a thread count");
+            tract_forward(Path::new(model), Path::new(input), threads).expect("run")
+        }
         _ => {
-            eprintln!("usage: peers write DIR | peers tract MODEL INPUT.npy");
+            eprintln!("usage: peers write DIR | peers tract MODEL INPUT.npy [THREADS]");
             std::process::exit(2);
         }
     }

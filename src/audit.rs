@@ -10,6 +10,7 @@ use crate::error::{Error, Result};
 use crate::findings::FindingConfig;
 use crate::measure::{self, InfluenceConfig};
 use crate::open::{self, OpenConfig, Opened, Purpose};
+use crate::parallel::Budget;
 use crate::probe::Progress;
 use crate::probe::inputs::InputConfig;
 use crate::proto::ModelProto;
@@ -27,6 +28,8 @@ pub struct AuditConfig {
     pub findings: FindingConfig,
     /// Knockout and perturbation gain, when asked for.
     pub influence: Option<InfluenceConfig>,
+    /// Threads and memory the run may use (results do not depend on them).
+    pub budget: Budget,
 }
 
 impl AuditConfig {
@@ -37,6 +40,7 @@ impl AuditConfig {
         inputs: InputConfig::STANDARD,
         findings: FindingConfig::STANDARD,
         influence: None,
+        budget: Budget::STANDARD,
     };
 
     /// [`AuditConfig::STANDARD`].
@@ -96,8 +100,14 @@ pub(crate) fn measured(
 ) -> Result<Audit> {
     let runnable = opened.take_runnable().expect("a model opened for a run");
     let influence = config.influence.as_ref();
-    let measurement =
-        measure::measure(runnable, &opened.analysis, input_plan, influence, progress)?;
+    let measurement = measure::measure(
+        runnable,
+        &opened.analysis,
+        input_plan,
+        influence,
+        &config.budget,
+        progress,
+    )?;
     let run = RunFacts { input_plan, measurement: &measurement, influence };
     let report = assemble::report(
         Command::Audit,

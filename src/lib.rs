@@ -34,6 +34,7 @@ pub mod load;
 pub mod lower;
 pub mod measure;
 pub mod open;
+pub mod parallel;
 pub mod probe;
 pub mod proto;
 pub mod report;

@@ -17,6 +17,7 @@ use crate::gate::{self, Site};
 use crate::graph;
 use crate::lower::precision::{self, Half};
 use crate::open::{Analysis, HalfModel, Runnable};
+use crate::parallel::Budget;
 use crate::probe::inputs::InputPlan;
 use crate::probe::{self, GainSamples, GatedPlan, ModelSource, ProbeResult, Progress, Watch};
 use crate::stats::{self, Agreement};
@@ -133,6 +134,7 @@ pub fn measure(
     analysis: &Analysis,
     input_plan: &InputPlan,
     influence: Option<&InfluenceConfig>,
+    budget: &Budget,
     progress: &dyn Progress,
 ) -> Result<Measurement> {
     let watches = watches(analysis);
@@ -146,6 +148,7 @@ pub fn measure(
             &watches,
             input_plan,
             ic,
+            budget,
             progress,
         );
     }
@@ -156,7 +159,7 @@ pub fn measure(
         (None, None) => ModelSource::Bytes(&bytes),
     };
     let (outcome, ran_as) = run_precise(half.as_ref(), source, dir.as_deref(), |s| {
-        probe::run(s, &watches, input_plan, progress)
+        probe::run(s, &watches, input_plan, budget, progress)
     });
     let outcome = outcome.map(|intact| Measured { intact, influence: None });
     Ok(Measurement { ran_as, outcome })
@@ -269,6 +272,7 @@ fn measure_gated(
     watches: &[Watch],
     input_plan: &InputPlan,
     ic: &InfluenceConfig,
+    budget: &Budget,
     progress: &dyn Progress,
 ) -> Result<Measurement> {
     let n = analysis.detection.blocks.len();
@@ -344,7 +348,7 @@ fn measure_gated(
         }
     };
     let (outcome, ran_as) = run_precise(half.as_ref(), source, dir, |s| {
-        probe::run_gated(s, watches, input_plan, &plan, &mut sink, progress)
+        probe::run_gated(s, watches, input_plan, &plan, budget, &mut sink, progress)
     });
     let outcome = outcome.map(|r| Measured {
         intact: r.intact,

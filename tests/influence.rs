@@ -338,8 +338,9 @@ fn blocks_selection_costs_one_pass_per_selected_block() {
     let inf = influence(&r);
     let k = inf.knockout.as_ref().unwrap();
     assert_eq!(k.blocks, vec![2, 5, 6]);
-    // One intact pass, one perturbed pass, one pass per knocked-out block.
-    assert_eq!(k.forward_passes, 2 + 3);
+    // Two passes of one sample, each: one intact, one perturbed, one per
+    // knocked-out block.
+    assert_eq!(k.forward_passes, 2 * (2 + 3));
     let knocked: Vec<usize> =
         inf.blocks.iter().filter(|b| b.knockout.is_some()).map(|b| b.block).collect();
     assert_eq!(knocked, vec![2, 5, 6]);
@@ -366,7 +367,8 @@ fn converse_knockout_removes_the_shortcut() {
     ic.shortcuts = true;
     let a = audit_with(load("rezero.onnx"), &config(2, ic));
     let inf = influence(&a.report);
-    assert_eq!(inf.knockout.as_ref().unwrap().forward_passes, 2 + 3 + 3);
+    // Two passes of one sample: intact, perturbed, 3 branches, 3 shortcuts.
+    assert_eq!(inf.knockout.as_ref().unwrap().forward_passes, 2 * (2 + 3 + 3));
     // fixtures/MANIFEST.txt: rezero.onnx additive=3.
     assert_eq!(inf.blocks.len(), 3);
     for row in &inf.blocks {

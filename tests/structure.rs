@@ -430,7 +430,7 @@ fn batch_axes_per_input() {
     let shapes = |v: &[(&str, &[u64])]| -> Vec<(String, Vec<u64>)> {
         v.iter().map(|(n, s)| ((*n).to_owned(), s.to_vec())).collect()
     };
-    let r = audit_streaming(&["--dim", "samples=64", "--batch", "3"]);
+    let r = audit_streaming(&["--dim", "samples=64", "--batch", "3", "--pass-batch", "3"]);
     assert_eq!(fed_shapes(&r), shapes(&[("input", &[3, 64]), ("state", &[2, 3, 16]), ("sr", &[])]));
     let warnings: Vec<&str> = r["diagnostics"]
         .as_array()

@@ -33,6 +33,8 @@ mod intent;
 mod scale;
 // Several models in one command: folders, errors per model, exit codes.
 mod batch;
+// Threads: the same report for any thread count, budgets, progress.
+mod threads;
 // Reports for people: HTML in headless Chromium, Markdown and its size limit.
 mod report;
 // Half precision: float16/bfloat16 inputs, feeds, and statistics against onnxruntime.

@@ -70,7 +70,9 @@ pub(super) struct ScanArgs {
 #[derive(Debug, clap::Args)]
 pub(super) struct ManyArgs {
     /// With several models: how many to process at once (default: one per
-    /// core). Each audit holds its own model and activations in memory.
+    /// core; an audit takes at most --threads, and shares the threads and
+    /// memory budget between the models it runs at once). Each audit holds
+    /// its own model and activations in memory.
     #[arg(long, short = 'j', value_name = "N")]
     pub jobs: Option<usize>,
 }
@@ -105,6 +107,8 @@ pub(super) struct AuditArgs {
     pub many: ManyArgs,
     #[command(flatten)]
     pub inputs: InputArgs,
+    #[command(flatten)]
+    pub run: RunArgs,
     /// Do not run the model: report the structure and structural findings only.
     #[arg(long)]
     pub no_run: bool,
@@ -126,7 +130,7 @@ pub(super) struct InputArgs {
     /// Number of samples to run (models with a fixed batch run it in passes of that batch).
     #[arg(long = "batch", value_name = "N", default_value_t = InputConfig::STANDARD.samples)]
     pub samples: usize,
-    /// Most samples per forward pass (models with a symbolic batch; default: all at once).
+    /// Most samples per forward pass (models with a symbolic batch; default: one).
     #[arg(long, value_name = "N")]
     pub pass_batch: Option<usize>,
     /// Most elements one model input may hold in one pass (checked before allocating).
@@ -160,6 +164,22 @@ pub(super) struct InputArgs {
     /// (one entry per input name); samples lie along each input's sample axis.
     #[arg(long, value_name = "FILE")]
     pub feed: Option<PathBuf>,
+}
+
+/// How much of the machine a run may use: `audit`, `verify --expect` and
+/// `compare` share these. Results do not depend on them.
+#[derive(Debug, clap::Args)]
+pub(super) struct RunArgs {
+    /// Threads in all (forward passes at once times threads inside a pass;
+    /// with several models, divided between the models run at once).
+    /// Default: the cores this process may use.
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Most memory the activations of the passes run at once may take, e.g.
+    /// `512M` or `4G` (fewer passes run at once when one pass needs more).
+    /// Default: half the memory the system has available.
+    #[arg(long, value_name = "SIZE")]
+    pub memory_budget: Option<String>,
 }
 
 /// The thresholds of the measured findings.
@@ -301,6 +321,8 @@ pub(super) struct VerifyArgs {
     pub output: Option<PathBuf>,
     #[command(flatten)]
     pub inputs: InputArgs,
+    #[command(flatten)]
+    pub run: RunArgs,
     /// No progress bar.
     #[arg(long, short = 'q')]
     pub quiet: bool,
@@ -331,6 +353,8 @@ pub(super) struct CompareArgs {
     pub no_run: bool,
     #[command(flatten)]
     pub inputs: InputArgs,
+    #[command(flatten)]
+    pub run: RunArgs,
     /// No progress bar.
     #[arg(long, short = 'q')]
     pub quiet: bool,

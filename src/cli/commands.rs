@@ -74,10 +74,18 @@ pub(super) fn audit(a: &AuditArgs, argv: &[OsString]) -> anyhow::Result<u8> {
         inputs: if a.no_run { no_inputs() } else { a.inputs.config()? },
         findings,
         influence: a.influence.config()?,
+        budget: a.run.config()?,
     };
     if is_batch(&a.models) {
+        // The models run at once share the budget: jobs x threads stays
+        // within --threads.
+        let models = batch::find_models(&a.models).len();
+        let threads = config.budget.threads();
+        let jobs = a.many.jobs.unwrap_or_else(|| batch::default_threads(models)).min(threads);
+        let config = AuditConfig { budget: config.budget.share(jobs), ..config };
+        let many = ManyArgs { jobs: Some(jobs) };
         let job = |path: &Path| audit_one(path, a.no_run, &config, &crate::probe::Silent);
-        return run_batch(Command::Audit, &a.models, &a.out, &a.many, a.quiet, &fail_on, &job);
+        return run_batch(Command::Audit, &a.models, &a.out, &many, a.quiet, &fail_on, &job);
     }
     let model = &a.models[0];
     let bar = progress::Bar::new(a.quiet);
@@ -156,6 +164,7 @@ pub(super) fn verify(a: &VerifyArgs) -> anyhow::Result<u8> {
                 inputs: a.inputs.config()?,
                 findings: FindingConfig::STANDARD,
                 influence: None,
+                budget: a.run.config()?,
             };
             let bar = progress::Bar::new(a.quiet);
             let outcome = audit::audit_file(&a.model, &config, &bar)?;
@@ -193,6 +202,7 @@ pub(super) fn compare(a: &CompareArgs) -> anyhow::Result<u8> {
             inputs: a.inputs.config()?,
             findings: FindingConfig::STANDARD,
             influence: None,
+            budget: a.run.config()?,
         },
         run: !a.no_run,
     };

@@ -6,10 +6,11 @@ use std::collections::BTreeMap;
 
 use anyhow::{Context, bail};
 
-use super::args::{DistArg, InfluenceArgs, InputArgs, Limits, ThresholdArgs};
+use super::args::{DistArg, InfluenceArgs, InputArgs, Limits, RunArgs, ThresholdArgs};
 use crate::findings::{FindingConfig, InfluenceThresholds};
 use crate::measure::InfluenceConfig;
 use crate::open::OpenConfig;
+use crate::parallel::Budget;
 use crate::probe::inputs::{Dist, InputConfig};
 use crate::vocab::FindingCode;
 
@@ -28,7 +29,7 @@ impl InputArgs {
     pub(super) fn config(&self) -> anyhow::Result<InputConfig> {
         Ok(InputConfig {
             samples: self.samples,
-            max_pass: self.pass_batch,
+            max_pass: self.pass_batch.or(InputConfig::STANDARD.max_pass),
             seed: self.seed,
             dist: match self.dist {
                 DistArg::Normal => Dist::Normal,
@@ -43,6 +44,52 @@ impl InputArgs {
             max_input_elements: self.max_input_elements,
         })
     }
+}
+
+impl RunArgs {
+    pub(super) fn config(&self) -> anyhow::Result<Budget> {
+        if self.threads == Some(0) {
+            bail!("--threads must be at least 1");
+        }
+        let memory = self.memory_budget.as_deref().map(parse_size).transpose()?;
+        Ok(Budget { threads: self.threads, memory })
+    }
+}
+
+/// `--memory-budget`: bytes, or a number with `K`, `M`, `G` or `T` (powers
+/// of 1024, an optional `B` or `iB` after it).
+fn parse_size(text: &str) -> anyhow::Result<u64> {
+    let bad =
+        || anyhow::anyhow!("--memory-budget {text}: expected bytes, or a number with K, M, G or T");
+    let t = text.trim();
+    let lower = t.to_ascii_lowercase();
+    let unit_len = if lower.ends_with("ib") {
+        2
+    } else if lower.ends_with('b') {
+        1
+    } else {
+        0
+    };
+    let t = &t[..t.len() - unit_len];
+    let (number, shift) = match t.char_indices().last() {
+        Some((i, c)) if c.is_ascii_alphabetic() => {
+            let shift = match c.to_ascii_uppercase() {
+                'K' => 10,
+                'M' => 20,
+                'G' => 30,
+                'T' => 40,
+                _ => return Err(bad()),
+            };
+            (&t[..i], shift)
+        }
+        _ => (t, 0),
+    };
+    let value: f64 = number.trim().parse().map_err(|_| bad())?;
+    let bytes = value * (1u64 << shift) as f64;
+    if !(bytes.is_finite() && bytes >= 1.0 && bytes < u64::MAX as f64) {
+        return Err(bad());
+    }
+    Ok(bytes as u64)
 }
 
 impl ThresholdArgs {
@@ -156,4 +203,21 @@ fn parse_axis(s: &str) -> Option<Option<usize>> {
 
 fn parse_shape(s: &str) -> Option<Vec<u64>> {
     s.split(['x', 'X', ',']).map(|d| d.trim().parse::<u64>().ok().filter(|&d| d > 0)).collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn memory_sizes_parse_with_binary_units() {
+        assert_eq!(parse_size("4096").unwrap(), 4096);
+        assert_eq!(parse_size("512M").unwrap(), 512 << 20);
+        assert_eq!(parse_size("1.5G").unwrap(), 3 << 29);
+        assert_eq!(parse_size("2GiB").unwrap(), 2 << 30);
+        assert_eq!(parse_size("64kb").unwrap(), 64 << 10);
+        for bad in ["", "0", "-1G", "12Q", "G", "nan"] {
+            assert!(parse_size(bad).is_err(), "{bad}");
+        }
+    }
 }

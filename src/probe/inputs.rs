@@ -48,7 +48,9 @@ pub struct InputConfig {
     /// Number of samples to run.
     pub samples: usize,
     /// Most samples in one forward pass of a model with a symbolic batch
-    /// (`None`: all at once); bounds memory on large models.
+    /// (`None`: all at once); bounds memory on large models. The standard
+    /// is one: passes of one sample run faster per sample (their tensors
+    /// stay in cache) and spread over threads (DEVELOPERS.md, "Threads").
     pub max_pass: Option<usize>,
     /// Seed of the generator.
     pub seed: u64,
@@ -80,11 +82,11 @@ pub const MAX_INPUT_ELEMENTS: u64 = 1 << 28;
 impl InputConfig {
     /// The documented defaults, the only place they are written (the
     /// command line's defaults read them): 8 samples of standard normal
-    /// inputs with seed 0, all at once, nothing overridden, the default size
-    /// limit.
+    /// inputs with seed 0, one sample per pass, nothing overridden, the
+    /// default size limit.
     pub const STANDARD: InputConfig = InputConfig {
         samples: 8,
-        max_pass: None,
+        max_pass: Some(1),
         seed: 0,
         dist: Dist::Normal,
         scale: 1.0,
@@ -975,8 +977,9 @@ mod tests {
         }
     }
 
+    /// All samples in one pass of a symbolic batch, unless a test says.
     fn config(samples: usize) -> InputConfig {
-        InputConfig { seed: 7, ..InputConfig::standard(samples) }
+        InputConfig { seed: 7, max_pass: None, ..InputConfig::standard(samples) }
     }
 
     #[test]

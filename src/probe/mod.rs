@@ -25,9 +25,14 @@ use std::panic::{AssertUnwindSafe, catch_unwind};
 use std::path::Path;
 
 use tract_onnx::prelude::*;
+use tract_onnx::tract_core::model::{TypedNode, TypedRunnableModel, TypedSimpleState};
+use tract_onnx::tract_core::ops::OpState;
+use tract_onnx::tract_core::plan::{EvalContext, SimpleState};
+use tract_onnx::tract_core::tract_linalg::multithread::{Executor, multithread_tract_scope};
 use tract_onnx::tract_hir::infer::Factoid;
 
 use crate::error::{Error, ErrorKind, Result};
+use crate::parallel::{self, Budget, Merge};
 use crate::stats;
 use inputs::{InputPlan, Values};
 
@@ -126,14 +131,18 @@ enum Role {
     Output,
 }
 
-/// Runs the model over every pass of `input_plan` and measures every watch.
+/// Runs the model over every pass of `input_plan` and measures every watch,
+/// passes on as many threads as `budget` allows; the statistics of the
+/// passes are merged in pass order, so the result does not depend on it.
 pub fn run(
     source: ModelSource<'_>,
     watches: &[Watch],
     input_plan: &InputPlan,
+    budget: &Budget,
     progress: &dyn Progress,
 ) -> Result<ProbeResult> {
-    match catch_unwind(AssertUnwindSafe(|| run_inner(source, watches, input_plan, progress))) {
+    let inner = AssertUnwindSafe(|| run_inner(source, watches, input_plan, budget, progress));
+    match catch_unwind(inner) {
         Ok(r) => r,
         Err(panic) => {
             let what = panic
@@ -158,22 +167,204 @@ fn run_inner(
     source: ModelSource<'_>,
     watches: &[Watch],
     input_plan: &InputPlan,
+    budget: &Budget,
     progress: &dyn Progress,
 ) -> Result<ProbeResult> {
-    let mut prepared = prepare(source, watches, input_plan, &[], progress)?;
+    let prepared = prepare(source, watches, input_plan, &[], progress)?;
     progress.step("running", input_plan.passes as u64);
-    let mut acc: Vec<BlockSamples> = vec![BlockSamples::default(); watches.len()];
-    let mut outputs: Vec<Vec<f32>> = vec![Vec::new(); prepared.n_outputs];
-    let mut output_shapes = Vec::new();
-    for pass in 0..input_plan.passes {
-        let values = inputs::values(input_plan, pass);
-        let tensors = prepared.tensors(input_plan, &values, &[])?;
-        let result = prepared.measure(watches, input_plan, tensors, &mut acc, None)?;
-        output_shapes = collect_outputs(&result, &mut outputs);
-        progress.advance();
-    }
+    let layout = Layout::of(budget, input_plan.passes, prepared.pass_bytes);
+    let mut total = ProbeResult::empty(watches.len(), prepared.n_outputs);
+    parallel::ordered(
+        input_plan.passes,
+        layout.workers,
+        &|| Runner::new(&prepared, layout.kernel_threads),
+        &|runner: &mut Runner, pass| {
+            let values = inputs::values(input_plan, pass);
+            let tensors = prepared.tensors(input_plan, &values, &[])?;
+            let mut pass_result = ProbeResult::empty(watches.len(), prepared.n_outputs);
+            let result = prepared.measure(
+                runner,
+                watches,
+                input_plan,
+                tensors,
+                &mut pass_result.blocks,
+                None,
+            )?;
+            pass_result.output_shapes = collect_outputs(&result, &mut pass_result.outputs);
+            Ok(pass_result)
+        },
+        &engine_panic,
+        &mut |_, pass_result| {
+            total.merge(pass_result);
+            Ok(())
+        },
+        &mut |_| progress.advance(),
+    )?;
     progress.finish();
-    Ok(ProbeResult { blocks: acc, outputs, output_shapes })
+    Ok(total)
+}
+
+/// A panic inside tract, as an error.
+fn engine_panic(what: String) -> Error {
+    Error::new(
+        ErrorKind::Probe,
+        format!("the inference engine (tract) failed while running the model: {what}"),
+    )
+}
+
+impl ProbeResult {
+    /// Nothing measured yet: `blocks` empty accumulators, `outputs` empty outputs.
+    fn empty(blocks: usize, outputs: usize) -> ProbeResult {
+        ProbeResult {
+            blocks: vec![BlockSamples::default(); blocks],
+            outputs: vec![Vec::new(); outputs],
+            output_shapes: Vec::new(),
+        }
+    }
+}
+
+impl Merge for ProbeResult {
+    /// Block by block and output by output; the shapes of one pass are the
+    /// later pass's.
+    fn merge(&mut self, later: ProbeResult) {
+        let ProbeResult { blocks, outputs, output_shapes } = later;
+        merge_each(&mut self.blocks, blocks);
+        merge_each(&mut self.outputs, outputs);
+        self.output_shapes = output_shapes;
+    }
+}
+
+impl Merge for BlockSamples {
+    /// Per-sample values append, sums add, the shape is the first pass's.
+    /// Every field is named here, so a new one cannot be forgotten.
+    fn merge(&mut self, later: BlockSamples) {
+        let BlockSamples {
+            fork_rms,
+            shortcut_rms,
+            branch_rms,
+            output_rms,
+            cosine,
+            zeroed,
+            channel_shortcut,
+            channel_branch,
+            nan,
+            inf,
+            output_shape,
+        } = later;
+        self.fork_rms.merge(fork_rms);
+        self.shortcut_rms.merge(shortcut_rms);
+        self.branch_rms.merge(branch_rms);
+        self.output_rms.merge(output_rms);
+        self.cosine.merge(cosine);
+        self.zeroed.merge(zeroed);
+        add_sums(&mut self.channel_shortcut, channel_shortcut);
+        add_sums(&mut self.channel_branch, channel_branch);
+        self.nan += nan;
+        self.inf += inf;
+        if self.output_shape.is_empty() {
+            self.output_shape = output_shape;
+        }
+    }
+}
+
+impl Merge for GainSamples {
+    /// Per-sample values append.
+    fn merge(&mut self, later: GainSamples) {
+        let GainSamples { fork, shortcut, branch, output } = later;
+        self.fork.merge(fork);
+        self.shortcut.merge(shortcut);
+        self.branch.merge(branch);
+        self.output.merge(output);
+    }
+}
+
+/// Merges `later[i]` into `acc[i]` for every `i`.
+fn merge_each<T: Merge>(acc: &mut [T], later: Vec<T>) {
+    for (a, b) in acc.iter_mut().zip(later) {
+        a.merge(b);
+    }
+}
+
+/// Adds per-channel sums; an empty side takes the other's.
+fn add_sums(acc: &mut Vec<f64>, later: Vec<f64>) {
+    if acc.len() != later.len() {
+        if acc.is_empty() {
+            *acc = later;
+        }
+        return;
+    }
+    for (a, b) in acc.iter_mut().zip(later) {
+        *a += b;
+    }
+}
+
+/// How a run spreads over its threads: passes at once (`workers`, each with
+/// its own evaluation state of the one preparation) and threads inside each
+/// pass (tract's multithreaded kernels). Chosen from the budget, the number
+/// of passes and one pass's live activations; never changes a result.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Layout {
+    /// Passes run at once.
+    pub workers: usize,
+    /// Threads of tract's kernels inside each pass.
+    pub kernel_threads: usize,
+}
+
+impl Layout {
+    /// Passes on separate threads first (as many as there are passes, the
+    /// thread budget and the memory budget allow); the threads left over
+    /// go to each pass's kernels (see DEVELOPERS.md, "Threads").
+    /// `SHUNT_LAYOUT=WxK` forces `W` workers of `K` kernel threads each
+    /// (for benchmarks; results do not depend on it).
+    pub fn of(budget: &Budget, passes: usize, pass_bytes: u64) -> Layout {
+        if let Some(forced) = forced_layout() {
+            return forced;
+        }
+        let threads = budget.threads();
+        let by_memory = (budget.memory() / pass_bytes.max(1)).clamp(1, usize::MAX as u64) as usize;
+        let workers = threads.min(passes.max(1)).min(by_memory).max(1);
+        Layout { workers, kernel_threads: (threads / workers).max(1) }
+    }
+}
+
+fn forced_layout() -> Option<Layout> {
+    let text = std::env::var("SHUNT_LAYOUT").ok()?;
+    let (w, k) = text.split_once('x')?;
+    let (workers, kernel_threads) = (w.trim().parse().ok()?, k.trim().parse().ok()?);
+    (workers > 0 && kernel_threads > 0).then_some(Layout { workers, kernel_threads })
+}
+
+/// One thread's evaluation state of the shared preparation, with the
+/// executor of tract's kernels on that thread.
+struct Runner {
+    state: TypedSimpleState,
+    executor: Executor,
+}
+
+impl Runner {
+    fn new(prepared: &Prepared, kernel_threads: usize) -> Result<Runner> {
+        let state = SimpleState::new(&prepared.plan).map_err(|e| tract_err("tract", &e))?;
+        let executor = if kernel_threads > 1 {
+            Executor::multithread_with_name(kernel_threads, "shunt-kernels")
+        } else {
+            Executor::SingleThread
+        };
+        Ok(Runner { state, executor })
+    }
+
+    /// One pass with `eval` called on every node, on this runner's executor.
+    fn run_with<Eval>(&mut self, tensors: TVec<TValue>, eval: Eval) -> TractResult<TVec<TValue>>
+    where
+        Eval: for<'a, 'b, 'c> FnMut(
+            &'a EvalContext<'a>,
+            Option<&'b mut (dyn OpState + 'static)>,
+            &'c TypedNode,
+            TVec<TValue>,
+        ) -> TractResult<TVec<TValue>>,
+    {
+        let state = &mut self.state;
+        multithread_tract_scope(self.executor.clone(), || state.run_plan_with_eval(tensors, eval))
+    }
 }
 
 /// Where the value of one tract input comes from.
@@ -187,14 +378,21 @@ enum InputSlot {
 
 type Roles = Vec<(usize, Role)>;
 
-/// A model prepared once and run many times.
+/// A model prepared once and run many times, on any number of threads
+/// (each with its own [`Runner`]).
 struct Prepared {
-    state: tract_onnx::tract_core::model::TypedSimpleState,
+    plan: Arc<TypedRunnableModel>,
     order: Vec<InputSlot>,
     watch_map: HashMap<(usize, usize), Roles>,
     source_roles: Vec<(usize, Roles)>,
     constant_roles: Vec<(TValue, Roles)>,
     n_outputs: usize,
+    /// The most bytes of activations one pass holds at once (estimated
+    /// from the plan; see [`peak_live_bytes`]).
+    pass_bytes: u64,
+    /// The bytes of every watched tensor of one pass (what the gain holds
+    /// through the perturbed pass).
+    watched_bytes: u64,
 }
 
 fn prepare(
@@ -326,21 +524,40 @@ fn prepare(
     }
     // A deterministic order of constants (the map's order is not).
     constant_roles.sort_by_key(|(_, roles)| roles.first().map(|&(b, _)| b));
-    typed
-        .select_output_outlets(&final_outs[..originals.len()])
-        .map_err(|e| tract_err("tract", &e))?;
+    let watched_bytes: u64 = watch_map
+        .keys()
+        .copied()
+        .chain(source_roles.iter().map(|(i, _)| (typed_inputs[*i].node, typed_inputs[*i].slot)))
+        .map(|(node, slot)| outlet_bytes(&typed, node, slot))
+        .sum();
+    // The model's own outputs again, so watched tensors are freed after their
+    // last reader. A watched tensor the outputs no longer need (the optimiser
+    // may compute the outputs from a rewritten copy, as it does for tensors
+    // of one sample with 1x1 spatial size) would then not be computed at
+    // all: it stays an output.
+    let mut outputs = final_outs[..originals.len()].to_vec();
+    let needed = ancestors(&typed, &outputs);
+    let mut orphans: Vec<OutletId> = watch_map
+        .keys()
+        .filter(|(node, _)| !needed.contains(node))
+        .map(|&(node, slot)| OutletId::new(node, slot))
+        .collect();
+    orphans.sort_by_key(|o| (o.node, o.slot));
+    outputs.extend(orphans);
+    typed.select_output_outlets(&outputs).map_err(|e| tract_err("tract", &e))?;
     let plan =
         typed.into_runnable().map_err(|e| tract_err("tract could not plan the model", &e))?;
-    let state = tract_onnx::tract_core::plan::SimpleState::new(&plan)
-        .map_err(|e| tract_err("tract", &e))?;
+    let pass_bytes = peak_live_bytes(&plan);
     progress.advance();
     Ok(Prepared {
-        state,
+        plan,
         order,
         watch_map,
         source_roles,
         constant_roles,
         n_outputs: originals.len(),
+        pass_bytes,
+        watched_bytes,
     })
 }
 
@@ -371,7 +588,8 @@ impl Prepared {
     /// Runs one pass and measures every watch into `acc`; with `hold`, keeps
     /// a reference to every watched tensor of the pass (for the gain).
     fn measure(
-        &mut self,
+        &self,
+        runner: &mut Runner,
         watches: &[Watch],
         input_plan: &InputPlan,
         tensors: TVec<TValue>,
@@ -405,9 +623,8 @@ impl Prepared {
             }
         }
         let watch_map = &self.watch_map;
-        let result = self.state.run_plan_with_eval(
-            tensors,
-            |ctx, op_state, node, ins| -> TractResult<TVec<TValue>> {
+        let result =
+            runner.run_with(tensors, |ctx, op_state, node, ins| -> TractResult<TVec<TValue>> {
                 let out = tract_onnx::tract_core::plan::eval(ctx, op_state, node, ins)?;
                 for (slot, value) in out.iter().enumerate() {
                     if let Some(roles) = watch_map.get(&(node.id, slot)) {
@@ -428,15 +645,15 @@ impl Prepared {
                     }
                 }
                 Ok(out)
-            },
-        );
+            });
         result.map_err(|e| tract_err("tract failed while running the model", &e))
     }
 
     /// Runs the perturbed copy of a pass whose intact tensors are `held`, and
     /// records every block's changes into `acc`.
     fn compare(
-        &mut self,
+        &self,
+        runner: &mut Runner,
         watches: &[Watch],
         input_plan: &InputPlan,
         tensors: TVec<TValue>,
@@ -459,9 +676,8 @@ impl Prepared {
             }
         }
         let watch_map = &self.watch_map;
-        let result = self.state.run_plan_with_eval(
-            tensors,
-            |ctx, op_state, node, ins| -> TractResult<TVec<TValue>> {
+        let result =
+            runner.run_with(tensors, |ctx, op_state, node, ins| -> TractResult<TVec<TValue>> {
                 let out = tract_onnx::tract_core::plan::eval(ctx, op_state, node, ins)?;
                 for (slot, value) in out.iter().enumerate() {
                     if let Some(roles) = watch_map.get(&(node.id, slot)) {
@@ -473,22 +689,87 @@ impl Prepared {
                     }
                 }
                 Ok(out)
-            },
-        );
+            });
         result.map_err(|e| tract_err("tract failed while running the model", &e))?;
         Ok(())
     }
 
     /// Runs one pass without measuring anything.
-    fn plain(&mut self, tensors: TVec<TValue>) -> Result<TVec<TValue>> {
-        self.state.run(tensors).map_err(|e| tract_err("tract failed while running the model", &e))
+    fn plain(&self, runner: &mut Runner, tensors: TVec<TValue>) -> Result<TVec<TValue>> {
+        runner
+            .run_with(tensors, tract_onnx::tract_core::plan::eval)
+            .map_err(|e| tract_err("tract failed while running the model", &e))
     }
 }
 
-/// Appends the float outputs of one pass; returns their shapes.
+/// The nodes the outlets `outputs` are computed from (themselves included).
+fn ancestors(model: &TypedModel, outputs: &[OutletId]) -> std::collections::HashSet<usize> {
+    let mut seen = std::collections::HashSet::new();
+    let mut todo: Vec<usize> = outputs.iter().map(|o| o.node).collect();
+    while let Some(node) = todo.pop() {
+        if seen.insert(node) {
+            todo.extend(model.node(node).inputs.iter().map(|i| i.node));
+        }
+    }
+    seen
+}
+
+/// The bytes of one outlet's tensor, when its shape is known (else 0).
+fn outlet_bytes(model: &TypedModel, node: usize, slot: usize) -> u64 {
+    let fact = &model.node(node).outputs[slot].fact;
+    fact.shape
+        .as_concrete()
+        .map_or(0, |dims| dims.iter().product::<usize>() as u64 * fact.datum_type.size_of() as u64)
+}
+
+/// The most bytes of activations alive at once while the plan runs: tract
+/// keeps a node's outputs from the step that computes them to the last step
+/// that reads them (the model's outputs to the end), and a node's inputs
+/// stay alive while it computes. Constants are not counted (they are shared
+/// by every pass); neither is the scratch space inside an op.
+fn peak_live_bytes(plan: &TypedRunnableModel) -> u64 {
+    let model = plan.model();
+    let order = plan.order_without_consts();
+    let step_of: HashMap<usize, usize> = order.iter().enumerate().map(|(s, &n)| (n, s)).collect();
+    let mut last_use: HashMap<usize, usize> = HashMap::new();
+    for (step, &n) in order.iter().enumerate() {
+        for input in &model.node(n).inputs {
+            if step_of.contains_key(&input.node) {
+                let last = last_use.entry(input.node).or_insert(step);
+                *last = (*last).max(step);
+            }
+        }
+    }
+    for output in model.output_outlets().into_iter().flatten() {
+        last_use.insert(output.node, usize::MAX);
+    }
+    let bytes = |n: usize| -> u64 {
+        (0..model.node(n).outputs.len()).map(|slot| outlet_bytes(model, n, slot)).sum()
+    };
+    let mut freed_at: HashMap<usize, Vec<usize>> = HashMap::new();
+    for (&n, &step) in &last_use {
+        freed_at.entry(step).or_default().push(n);
+    }
+    let (mut live, mut peak) = (0u64, 0u64);
+    for (step, &n) in order.iter().enumerate() {
+        live += bytes(n);
+        peak = peak.max(live);
+        // A node nothing reads is dropped right away.
+        if !last_use.contains_key(&n) {
+            live -= bytes(n);
+        }
+        for &done in freed_at.get(&step).into_iter().flatten() {
+            live -= bytes(done);
+        }
+    }
+    peak
+}
+
+/// Appends the float outputs of one pass (the model's own, not the watched
+/// tensors kept as outputs after them); returns their shapes.
 fn collect_outputs(result: &TVec<TValue>, outputs: &mut [Vec<f32>]) -> Vec<Vec<usize>> {
-    let mut shapes = Vec::with_capacity(result.len());
-    for (i, t) in result.iter().enumerate() {
+    let mut shapes = Vec::with_capacity(outputs.len());
+    for (i, t) in result.iter().take(outputs.len()).enumerate() {
         shapes.push(t.shape().to_vec());
         if let Ok(f) = t.cast_to::<f32>()
             && let Ok(view) = f.try_as_plain_ram()
@@ -650,17 +931,21 @@ pub struct GatedResult {
 /// Prepares the (gated) model once, runs the intact passes with every gate
 /// at 1 and measures every watch, then (optionally) a perturbed copy of
 /// every pass, then every knockout setting over all passes; `sink` receives
-/// each setting's float outputs (flattened per output over all passes).
+/// each setting's float outputs (flattened per output over all passes), in
+/// setting order. Passes and knockout runs spread over the threads `budget`
+/// allows; results are merged in order, so they do not depend on it.
 pub fn run_gated(
     source: ModelSource<'_>,
     watches: &[Watch],
     input_plan: &InputPlan,
     plan: &GatedPlan,
+    budget: &Budget,
     sink: &mut OutputSink<'_>,
     progress: &dyn Progress,
 ) -> Result<GatedResult> {
-    let inner =
-        AssertUnwindSafe(|| run_gated_inner(source, watches, input_plan, plan, sink, progress));
+    let inner = AssertUnwindSafe(|| {
+        run_gated_inner(source, watches, input_plan, plan, budget, sink, progress)
+    });
     match catch_unwind(inner) {
         Ok(r) => r,
         Err(panic) => {
@@ -682,61 +967,129 @@ fn run_gated_inner(
     watches: &[Watch],
     input_plan: &InputPlan,
     plan: &GatedPlan,
+    budget: &Budget,
     sink: &mut OutputSink<'_>,
     progress: &dyn Progress,
 ) -> Result<GatedResult> {
-    let mut prepared = prepare(source, watches, input_plan, &plan.gates, progress)?;
+    let prepared = prepare(source, watches, input_plan, &plan.gates, progress)?;
     let per_pass = if plan.gain_step.is_some() { 2 } else { 1 };
     progress.step("running", (input_plan.passes * per_pass) as u64);
-    let mut acc: Vec<BlockSamples> = vec![BlockSamples::default(); watches.len()];
-    let mut outputs: Vec<Vec<f32>> = vec![Vec::new(); prepared.n_outputs];
-    let mut output_shapes = Vec::new();
-    let mut gain: Option<Vec<GainSamples>> =
-        plan.gain_step.map(|_| vec![GainSamples::default(); watches.len()]);
-    let mut input_change = Vec::new();
-    let mut forward_passes = 0;
-    for pass in 0..input_plan.passes {
-        let values = inputs::values(input_plan, pass);
-        let tensors = prepared.tensors(input_plan, &values, &[])?;
-        let mut held: Option<Vec<Held>> =
-            plan.gain_step.map(|_| watches.iter().map(Held::new).collect());
-        let result = prepared.measure(watches, input_plan, tensors, &mut acc, held.as_mut())?;
-        forward_passes += 1;
-        output_shapes = collect_outputs(&result, &mut outputs);
-        drop(result);
-        progress.advance();
-        if let (Some(step), Some(held), Some(gain)) = (plan.gain_step, held.as_mut(), gain.as_mut())
-        {
-            let moved = inputs::perturbed(input_plan, pass, &values, step);
-            input_changes(&values, &moved, input_plan.pass_batch, &mut input_change);
-            let tensors = prepared.tensors(input_plan, &moved, &[])?;
-            prepared.compare(watches, input_plan, tensors, held, gain)?;
-            forward_passes += 1;
-            progress.advance();
-        }
-    }
+    // The gain holds every watched tensor of the intact pass through the
+    // perturbed one.
+    let held = if plan.gain_step.is_some() { prepared.watched_bytes } else { 0 };
+    let layout = Layout::of(budget, input_plan.passes, prepared.pass_bytes + held);
+    let mut total = GatedPass {
+        intact: ProbeResult::empty(watches.len(), prepared.n_outputs),
+        gain: plan.gain_step.map(|_| vec![GainSamples::default(); watches.len()]),
+        input_change: Vec::new(),
+    };
+    parallel::ordered(
+        input_plan.passes,
+        layout.workers,
+        &|| Runner::new(&prepared, layout.kernel_threads),
+        &|runner: &mut Runner, pass| {
+            gated_pass(&prepared, runner, watches, input_plan, plan.gain_step, pass)
+        },
+        &engine_panic,
+        &mut |_, pass_result| {
+            total.merge(pass_result);
+            Ok(())
+        },
+        &mut |_| (0..per_pass).for_each(|_| progress.advance()),
+    )?;
+    let mut forward_passes = input_plan.passes * per_pass;
+    let GatedPass { intact, gain, input_change } = total;
     if !plan.settings.is_empty() {
-        progress.step("knocking out", (plan.settings.len() * input_plan.passes) as u64);
-        for (i, setting) in plan.settings.iter().enumerate() {
-            let mut outs: Vec<Vec<f32>> = vec![Vec::new(); prepared.n_outputs];
-            for pass in 0..input_plan.passes {
+        let passes = input_plan.passes;
+        progress.step("knocking out", (plan.settings.len() * passes) as u64);
+        let layout = Layout::of(budget, plan.settings.len() * passes, prepared.pass_bytes);
+        // Item `i` is pass `i % passes` of setting `i / passes`; a setting's
+        // outputs go to the sink once its last pass is in.
+        let mut outs: Vec<Vec<f32>> = vec![Vec::new(); prepared.n_outputs];
+        parallel::ordered(
+            plan.settings.len() * passes,
+            layout.workers,
+            &|| Runner::new(&prepared, layout.kernel_threads),
+            &|runner: &mut Runner, item| {
+                let (setting, pass) = (item / passes, item % passes);
                 let values = inputs::values(input_plan, pass);
-                let tensors = prepared.tensors(input_plan, &values, setting)?;
-                let result = prepared.plain(tensors)?;
-                forward_passes += 1;
-                collect_outputs(&result, &mut outs);
-                progress.advance();
-            }
-            sink(i, &outputs, &output_shapes, outs);
-        }
+                let tensors = prepared.tensors(input_plan, &values, &plan.settings[setting])?;
+                let result = prepared.plain(runner, tensors)?;
+                let mut pass_outs: Vec<Vec<f32>> = vec![Vec::new(); prepared.n_outputs];
+                collect_outputs(&result, &mut pass_outs);
+                Ok(pass_outs)
+            },
+            &engine_panic,
+            &mut |item, pass_outs| {
+                merge_each(&mut outs, pass_outs);
+                if item % passes == passes - 1 {
+                    let fresh = vec![Vec::new(); prepared.n_outputs];
+                    let done = std::mem::replace(&mut outs, fresh);
+                    sink(item / passes, &intact.outputs, &intact.output_shapes, done);
+                }
+                Ok(())
+            },
+            &mut |_| progress.advance(),
+        )?;
+        forward_passes += plan.settings.len() * passes;
     }
     progress.finish();
-    Ok(GatedResult {
-        intact: ProbeResult { blocks: acc, outputs, output_shapes },
-        gain,
-        input_change,
-        forward_passes,
-    })
+    Ok(GatedResult { intact, gain, input_change, forward_passes })
+}
+
+/// What one pass of a gated run measures: the intact pass, and with the
+/// gain its perturbed copy.
+struct GatedPass {
+    intact: ProbeResult,
+    gain: Option<Vec<GainSamples>>,
+    input_change: Vec<f64>,
+}
+
+impl Merge for GatedPass {
+    fn merge(&mut self, later: GatedPass) {
+        let GatedPass { intact, gain, input_change } = later;
+        self.intact.merge(intact);
+        if let (Some(acc), Some(gain)) = (self.gain.as_mut(), gain) {
+            merge_each(acc, gain);
+        }
+        self.input_change.merge(input_change);
+    }
+}
+
+/// Pass `pass` of a gated run with every gate at 1, measured; then, with a
+/// gain step, its perturbed copy compared with it.
+fn gated_pass(
+    prepared: &Prepared,
+    runner: &mut Runner,
+    watches: &[Watch],
+    input_plan: &InputPlan,
+    gain_step: Option<f32>,
+    pass: usize,
+) -> Result<GatedPass> {
+    let values = inputs::values(input_plan, pass);
+    let tensors = prepared.tensors(input_plan, &values, &[])?;
+    let mut held: Option<Vec<Held>> = gain_step.map(|_| watches.iter().map(Held::new).collect());
+    let mut intact = ProbeResult::empty(watches.len(), prepared.n_outputs);
+    let result = prepared.measure(
+        runner,
+        watches,
+        input_plan,
+        tensors,
+        &mut intact.blocks,
+        held.as_mut(),
+    )?;
+    intact.output_shapes = collect_outputs(&result, &mut intact.outputs);
+    drop(result);
+    let mut out = GatedPass { intact, gain: None, input_change: Vec::new() };
+    if let (Some(step), Some(held)) = (gain_step, held.as_mut()) {
+        let moved = inputs::perturbed(input_plan, pass, &values, step);
+        input_changes(&values, &moved, input_plan.pass_batch, &mut out.input_change);
+        let tensors = prepared.tensors(input_plan, &moved, &[])?;
+        let mut gain = vec![GainSamples::default(); watches.len()];
+        prepared.compare(runner, watches, input_plan, tensors, held, &mut gain)?;
+        out.gain = Some(gain);
+    }
+    Ok(out)
 }
 
 /// Merge inputs of one block held until both sides have been seen.
@@ -1042,5 +1395,46 @@ fn pair_measure<A: stats::Value, B: stats::Value>(
     if !finite {
         count_non_finite(acc, sc);
         count_non_finite(acc, br);
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn layout_puts_passes_on_threads_first_then_kernels() {
+        let budget = |threads, memory| Budget { threads: Some(threads), memory: Some(memory) };
+        let layout = |workers, kernel_threads| Layout { workers, kernel_threads };
+        // Enough passes: one per thread, single-threaded kernels.
+        assert_eq!(Layout::of(&budget(4, 1 << 30), 8, 1 << 20), layout(4, 1));
+        // One pass: every thread inside it.
+        assert_eq!(Layout::of(&budget(4, 1 << 30), 1, 1 << 20), layout(1, 4));
+        // Two passes on four threads: two at once, two kernel threads each.
+        assert_eq!(Layout::of(&budget(4, 1 << 30), 2, 1 << 20), layout(2, 2));
+        // Memory for three passes at once: three, the leftover thread unused.
+        assert_eq!(Layout::of(&budget(4, 300), 8, 100), layout(3, 1));
+        // A pass larger than the budget still runs, alone, with every thread.
+        assert_eq!(Layout::of(&budget(4, 10), 8, 100), layout(1, 4));
+    }
+
+    #[test]
+    fn merging_passes_appends_samples_and_adds_sums() {
+        let pass = |x: f64| BlockSamples {
+            fork_rms: vec![x],
+            channel_shortcut: vec![x, 2.0 * x],
+            channel_branch: vec![1.0, 1.0],
+            nan: 1,
+            output_shape: vec![x as usize],
+            ..BlockSamples::default()
+        };
+        let mut total = BlockSamples::default();
+        for x in [1.0, 2.0, 3.0] {
+            total.merge(pass(x));
+        }
+        assert_eq!(total.fork_rms, [1.0, 2.0, 3.0]);
+        assert_eq!(total.channel_shortcut, [6.0, 12.0]);
+        assert_eq!(total.channel_branch, [3.0, 3.0]);
+        assert_eq!((total.nan, total.output_shape), (3, vec![1]));
     }
 }
