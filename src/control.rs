@@ -47,6 +47,7 @@ pub fn unfold(
     input_plan: &InputPlan,
     dir: Option<&Path>,
 ) -> BodyWatches {
+    unname_scan_dims(model);
     let mut out: BodyWatches = Vec::with_capacity(analysis.bodies.len());
     // The branch each `If` of the main graph takes, by node index.
     let mut taken: HashMap<usize, std::result::Result<String, String>> = HashMap::new();
@@ -380,6 +381,33 @@ fn expose_scan(
             ..w.clone()
         })
         .collect())
+}
+
+/// Leaves the symbolic dims of every main-graph `Scan` body's declared
+/// inputs and outputs unnamed: tract unifies them with the concrete sizes it
+/// is fed (a body declaring `[batch, 8]` fails when fed `[3, 8]`), where the
+/// main graph's declarations are replaced by the input plan's. The same
+/// reason the probe ignores `value_info`.
+fn unname_scan_dims(model: &mut ModelProto) {
+    use crate::proto::tensor_shape_proto::dimension;
+    let Some(graph) = model.graph.as_mut() else { return };
+    for node in graph.node.iter_mut().filter(|n| n.op_type == "Scan") {
+        let Some(body) = node_body_mut(node) else { continue };
+        for vi in body.input.iter_mut().chain(body.output.iter_mut()) {
+            let Some(crate::proto::TypeProto {
+                value: Some(crate::proto::type_proto::Value::TensorType(t)),
+                ..
+            }) = vi.r#type.as_mut()
+            else {
+                continue;
+            };
+            for d in t.shape.iter_mut().flat_map(|s| s.dim.iter_mut()) {
+                if matches!(d.value, Some(dimension::Value::DimParam(_))) {
+                    d.value = None;
+                }
+            }
+        }
+    }
 }
 
 fn node_body(node: &NodeProto) -> Option<&GraphProto> {
