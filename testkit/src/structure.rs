@@ -249,7 +249,9 @@ pub fn all() -> Vec<Case> {
                 shortcuts: vec![("identity", 2)],
                 placements: vec![("pre-norm", 2)],
                 stages: vec![2],
-                not_blocks: Vec::new(),
+                // The cell's Concat of the state and the step: two inputs
+                // and no learned layer between them and it.
+                not_blocks: vec![("no-learned-layer", 1)],
                 concat_skips: 0,
                 audit_args: Vec::new(),
             },
@@ -263,7 +265,9 @@ pub fn all() -> Vec<Case> {
                 shortcuts: vec![("identity", 2)],
                 placements: vec![("pre-norm", 2)],
                 stages: vec![2],
-                not_blocks: Vec::new(),
+                // The cell's Concat of the state and the step: two inputs
+                // and no learned layer between them and it.
+                not_blocks: vec![("no-learned-layer", 1)],
                 concat_skips: 0,
                 audit_args: Vec::new(),
             },
@@ -902,7 +906,17 @@ pub fn loop_recurrence() -> ModelProto {
     }) = hs.r#type.as_mut()
     {
         // [trips, batch, 8]: the trips are known only when it runs.
-        t.shape = None;
+        if let Some(shape) = t.shape.as_mut() {
+            shape.dim.insert(
+                0,
+                shunt::proto::tensor_shape_proto::Dimension {
+                    value: Some(shunt::proto::tensor_shape_proto::dimension::Value::DimParam(
+                        "trips".to_owned(),
+                    )),
+                    ..Default::default()
+                },
+            );
+        }
     }
     graph.output.push(hs);
     graph.node.push(NodeProto {
