@@ -313,7 +313,7 @@ fn expose_scan(
             if !on_samples {
                 return Err(format!(
                     "{what}: inside its body, the samples' axis of tensor '{name}' is not known \
-                     (run with --batch-axis or one sample per pass, --dim on the batch symbol)"
+                     (one sample per pass measures it: --dim on the batch symbol set to 1)"
                 ));
             }
         }
