@@ -62,7 +62,7 @@ pub fn unfold(
     // indices of the others hold.
     let mut inline: Vec<(usize, String)> =
         taken.into_iter().filter_map(|(index, branch)| branch.ok().map(|b| (index, b))).collect();
-    inline.sort_by(|a, b| b.0.cmp(&a.0));
+    inline.sort_by_key(|b| std::cmp::Reverse(b.0));
     for (index, branch) in inline {
         if let Err(why) = inline_if(model, index, &branch) {
             for (body, slot) in analysis.bodies.iter().zip(out.iter_mut()) {
