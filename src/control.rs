@@ -27,7 +27,7 @@ use prost::Message;
 use crate::graph::Dim;
 use crate::open::{Analysis, Body};
 use crate::probe::inputs::InputPlan;
-use crate::probe::{self, ModelSource, Watch};
+use crate::probe::{ModelSource, Watch, evaluate};
 use crate::proto::attribute_proto::AttributeType;
 use crate::proto::{AttributeProto, GraphProto, ModelProto, NodeProto, ValueInfoProto};
 
@@ -152,7 +152,7 @@ fn branch_taken(
         Some(d) => ModelSource::BytesIn(&bytes, d),
         None => ModelSource::Bytes(&bytes),
     };
-    let values = probe::evaluate(source, input_plan)
+    let values = evaluate(source, input_plan)
         .map_err(|e| format!("{what}: its condition could not be computed: {}", e.message()))?;
     match values.as_slice() {
         [v] => Ok(if *v != 0.0 { "then_branch" } else { "else_branch" }.to_owned()),

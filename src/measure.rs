@@ -419,7 +419,8 @@ fn measure_gated(
             ));
             continue;
         }
-        let (g, b) = block_at(analysis, i);
+        let (a, j) = block_at(analysis, i);
+        let (g, b) = (&a.graph, &a.detection.blocks[j]);
         let op = &g.node(b.merge).op;
         if op != "Add" && op != "Sum" {
             skipped.push((i, format!("the merge is {op}; only Add and Sum are gated")));
@@ -489,22 +490,19 @@ fn measure_gated(
     Ok(Measurement { ran_as, outcome })
 }
 
-/// The graph and detected block of block `i` of the report (the main
-/// graph's blocks first, then each body's).
-fn block_at(analysis: &Analysis, i: usize) -> (&graph::Graph, &crate::residual::Block) {
+/// The analysis (the main graph's, or a body's) that holds block `i` of
+/// the report (the main graph's blocks first, then each body's), and the
+/// block's index in it.
+fn block_at(analysis: &Analysis, i: usize) -> (&Analysis, usize) {
     let mut i = i;
-    if i < analysis.detection.blocks.len() {
-        return (&analysis.graph, &analysis.detection.blocks[i]);
-    }
-    i -= analysis.detection.blocks.len();
-    for body in &analysis.bodies {
-        let blocks = &body.analysis.detection.blocks;
-        if i < blocks.len() {
-            return (&body.analysis.graph, &blocks[i]);
+    for a in std::iter::once(analysis).chain(analysis.bodies.iter().map(|b| &b.analysis)) {
+        let n = a.detection.blocks.len();
+        if i < n {
+            return (a, i);
         }
-        i -= blocks.len();
+        i -= n;
     }
-    unreachable!("block {i} beyond the report's blocks")
+    unreachable!("a block beyond the report's blocks")
 }
 
 /// The outputs of a knockout against the intact ones: the largest relative
