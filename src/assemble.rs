@@ -57,6 +57,16 @@ pub fn report(
         match &run.measurement.outcome {
             Ok(m) => {
                 fill_stats(&mut report, &mut facts, &m.intact.blocks, thresholds.dead_below);
+                for (i, why) in &m.not_measured {
+                    if let (Some(row), Some(f)) = (report.blocks.get_mut(*i), facts.get_mut(*i)) {
+                        row.stats = None;
+                        row.not_measured = Some(why.clone());
+                        f.ratio = None;
+                        f.output_rms = None;
+                        f.channels = None;
+                        f.dead_channel_fraction = None;
+                    }
+                }
                 measured_stages(&mut report, analysis, &m.intact.blocks);
                 measured = Some(m);
             }
@@ -79,7 +89,8 @@ pub fn report(
 /// again. Bare runs are those of the static stages.
 fn measured_stages(report: &mut Report, a: &Analysis, blocks: &[BlockSamples]) {
     let keys = crate::classify::stage_keys(&a.graph, &a.detection.blocks);
-    if keys.len() != report.blocks.len() || keys.iter().all(Option::is_some) {
+    let main = a.detection.blocks.len();
+    if keys.len() != main || main > report.blocks.len() || keys.iter().all(Option::is_some) {
         return;
     }
     let keys: Vec<Option<Vec<Dim>>> = keys
@@ -93,6 +104,10 @@ fn measured_stages(report: &mut Report, a: &Analysis, blocks: &[BlockSamples]) {
         })
         .collect();
     let (stages, of_block) = crate::classify::group(&keys);
+    // The bodies' stages follow the main graph's: renumber them.
+    let bodies: Vec<StageRow> = report.stages.split_off(a.stages.len().min(report.stages.len()));
+    let first_body_stage = a.stages.len() + 1;
+    let renumber = |id: usize| id + stages.len() + 1 - first_body_stage;
     report.stages = stages
         .iter()
         .enumerate()
@@ -102,6 +117,10 @@ fn measured_stages(report: &mut Report, a: &Analysis, blocks: &[BlockSamples]) {
             blocks: s.blocks.iter().map(|b| b + 1).collect(),
         })
         .collect();
+    report.stages.extend(bodies.into_iter().map(|s| StageRow { id: renumber(s.id), ..s }));
+    for row in &mut report.blocks[main..] {
+        row.stage = row.stage.map(renumber);
+    }
     for ((row, stage), b) in report.blocks.iter_mut().zip(of_block).zip(blocks) {
         row.stage = stage.map(|s| s + 1);
         // Where the static shape has unknown dims, show the measured ones
@@ -189,10 +208,18 @@ fn dims(shape: &[Dim]) -> Vec<String> {
 
 /// The structural facts findings need, one per block of the report.
 fn block_facts(report: &Report) -> Vec<BlockFacts> {
+    let mut scopes: Vec<&[ScopeRow]> = Vec::new();
     report
         .blocks
         .iter()
         .map(|b| BlockFacts {
+            scope: match scopes.iter().position(|s| *s == b.scope.as_slice()) {
+                Some(k) => k,
+                None => {
+                    scopes.push(&b.scope);
+                    scopes.len() - 1
+                }
+            },
             static_dead: b
                 .static_dead
                 .as_ref()
@@ -225,8 +252,37 @@ fn set_findings(report: &mut Report, facts: &[BlockFacts], config: &FindingConfi
         .collect();
 }
 
-/// The rows of an analysis, without findings, for `command`.
-fn structure(command: Command, model: ModelInfo, a: &Analysis) -> Report {
+/// The rows of one analysed graph (the main graph or a body), numbered
+/// after the `offsets` of the rows before them.
+struct Rows {
+    blocks: Vec<BlockRow>,
+    concat_skips: Vec<ConcatRow>,
+    stages: Vec<StageRow>,
+    bare_runs: Vec<BareRunRow>,
+    not_blocks: Vec<NotBlockRow>,
+}
+
+/// Blocks, concatenative skips and stages before a graph's rows.
+#[derive(Clone, Copy, Default)]
+struct Offsets {
+    blocks: usize,
+    concat_skips: usize,
+    stages: usize,
+}
+
+fn scope_rows(scope: &[crate::open::ScopeStep]) -> Vec<ScopeRow> {
+    scope
+        .iter()
+        .map(|s| ScopeRow {
+            node: s.node.clone(),
+            index: s.index,
+            op_type: s.op.clone(),
+            attribute: s.attribute.clone(),
+        })
+        .collect()
+}
+
+fn rows(a: &Analysis, scope: &[ScopeRow], at: Offsets) -> Rows {
     let g = &a.graph;
     let det = &a.detection;
     let labelled = |list: &[(NodeId, String)]| -> Vec<LabelledNode> {
@@ -240,8 +296,9 @@ fn structure(command: Command, model: ModelInfo, a: &Analysis) -> Report {
         .zip(&a.classifications)
         .enumerate()
         .map(|(i, (b, k))| BlockRow {
-            id: i + 1,
-            stage: a.stage_of[i].map(|s| s + 1),
+            id: at.blocks + i + 1,
+            scope: scope.to_vec(),
+            stage: a.stage_of[i].map(|s| at.stages + s + 1),
             merge: node_ref(g, b.merge),
             output: value_name(g, b.output),
             output_shape: g.shape(b.output).map(dims),
@@ -284,10 +341,11 @@ fn structure(command: Command, model: ModelInfo, a: &Analysis) -> Report {
             static_dead: k
                 .static_dead
                 .map(|d| DeadRow { reason: d.reason, node: node_ref(g, d.node) }),
-            parent: b.parent.map(|p| p + 1),
+            parent: b.parent.map(|p| at.blocks + p + 1),
             depth: b.depth,
             children: b.children,
             stats: None,
+            not_measured: None,
         })
         .collect();
     let concat_skips: Vec<ConcatRow> = det
@@ -295,7 +353,8 @@ fn structure(command: Command, model: ModelInfo, a: &Analysis) -> Report {
         .iter()
         .enumerate()
         .map(|(i, c)| ConcatRow {
-            id: i + 1,
+            id: at.concat_skips + i + 1,
+            scope: scope.to_vec(),
             concat: node_ref(g, c.concat),
             output: value_name(g, c.output),
             fork: value_name(g, c.fork),
@@ -306,10 +365,96 @@ fn structure(command: Command, model: ModelInfo, a: &Analysis) -> Report {
                 .iter()
                 .filter(|&&n| crate::graph::op::is_parametrised(g, n))
                 .count(),
-            parent: c.parent.map(|p| p + 1),
+            parent: c.parent.map(|p| at.concat_skips + p + 1),
             depth: c.depth,
         })
         .collect();
+    Rows {
+        blocks,
+        concat_skips,
+        stages: a
+            .stages
+            .iter()
+            .enumerate()
+            .map(|(i, s)| StageRow {
+                id: at.stages + i + 1,
+                shape: dims(&s.shape),
+                blocks: s.blocks.iter().map(|b| at.blocks + b + 1).collect(),
+            })
+            .collect(),
+        bare_runs: a
+            .bare_runs
+            .iter()
+            .map(|r| BareRunRow {
+                after_block: at.blocks + r.after + 1,
+                before_block: at.blocks + r.before + 1,
+                layers: r.layers.iter().map(|&n| node_ref(g, n)).collect(),
+            })
+            .collect(),
+        not_blocks: det
+            .rejected
+            .iter()
+            .map(|r| NotBlockRow {
+                scope: scope.to_vec(),
+                node: node_ref(g, r.node),
+                reason: r.reason,
+                detail: r.reason.describe().to_owned(),
+            })
+            .collect(),
+    }
+}
+
+/// The rows of an analysis and of the bodies of its control-flow nodes
+/// (after the main graph's, in the analysis' order), without findings, for
+/// `command`.
+fn structure(command: Command, model: ModelInfo, a: &Analysis) -> Report {
+    let mut all = rows(a, &[], Offsets::default());
+    let mut body_blocks: Vec<Vec<usize>> = Vec::with_capacity(a.bodies.len());
+    for body in &a.bodies {
+        let at = Offsets {
+            blocks: all.blocks.len(),
+            concat_skips: all.concat_skips.len(),
+            stages: all.stages.len(),
+        };
+        let more = rows(&body.analysis, &scope_rows(&body.scope), at);
+        body_blocks.push(more.blocks.iter().map(|b| b.id).collect());
+        all.blocks.extend(more.blocks);
+        all.concat_skips.extend(more.concat_skips);
+        all.stages.extend(more.stages);
+        all.bare_runs.extend(more.bare_runs);
+        all.not_blocks.extend(more.not_blocks);
+    }
+    // Every node carrying subgraphs, in the main graph and in each body,
+    // with the bodies searched.
+    let mut subgraphs = Vec::new();
+    let graphs = std::iter::once((&a.graph, &[][..]))
+        .chain(a.bodies.iter().map(|b| (&b.analysis.graph, b.scope.as_slice())));
+    for (g, scope) in graphs {
+        for (i, n) in g.nodes.iter().enumerate().filter(|(_, n)| n.subgraphs > 0) {
+            let bodies = a
+                .bodies
+                .iter()
+                .zip(&body_blocks)
+                .filter(|(b, _)| {
+                    b.scope.len() == scope.len() + 1
+                        && b.scope.starts_with(scope)
+                        && b.scope.last().is_some_and(|s| s.index == n.index && s.node == n.name)
+                })
+                .map(|(b, ids)| BodyRow {
+                    attribute: b.scope.last().map(|s| s.attribute.clone()).unwrap_or_default(),
+                    captured: b.captured.clone(),
+                    blocks: ids.clone(),
+                })
+                .collect();
+            subgraphs.push(SubgraphRow {
+                scope: scope_rows(scope),
+                node: node_ref(g, NodeId(i as u32)),
+                subgraphs: n.subgraphs,
+                bodies,
+            });
+        }
+    }
+    let Rows { blocks, concat_skips, stages, bare_runs, not_blocks } = all;
     let mut by_shortcut = BTreeMap::new();
     let mut by_placement = BTreeMap::new();
     for b in &blocks {
@@ -325,7 +470,7 @@ fn structure(command: Command, model: ModelInfo, a: &Analysis) -> Report {
         concat_skips: concat_skips.len(),
         long_skips: blocks.iter().filter(|b| b.children > 0).count() + concat_parents.len(),
         static_dead: blocks.iter().filter(|b| b.static_dead.is_some()).count(),
-        bare_runs: a.bare_runs.len(),
+        bare_runs: bare_runs.len(),
         plain: blocks.is_empty() && concat_skips.is_empty(),
     };
     Report {
@@ -346,46 +491,12 @@ fn structure(command: Command, model: ModelInfo, a: &Analysis) -> Report {
         run_error: None,
         findings: Vec::new(),
         summary,
-        stages: a
-            .stages
-            .iter()
-            .enumerate()
-            .map(|(i, s)| StageRow {
-                id: i + 1,
-                shape: dims(&s.shape),
-                blocks: s.blocks.iter().map(|b| b + 1).collect(),
-            })
-            .collect(),
+        stages,
         blocks,
         concat_skips,
-        bare_runs: a
-            .bare_runs
-            .iter()
-            .map(|r| BareRunRow {
-                after_block: r.after + 1,
-                before_block: r.before + 1,
-                layers: r.layers.iter().map(|&n| node_ref(g, n)).collect(),
-            })
-            .collect(),
-        not_blocks: det
-            .rejected
-            .iter()
-            .map(|r| NotBlockRow {
-                node: node_ref(g, r.node),
-                reason: r.reason,
-                detail: r.reason.describe().to_owned(),
-            })
-            .collect(),
-        subgraphs: g
-            .nodes
-            .iter()
-            .enumerate()
-            .filter(|(_, n)| n.subgraphs > 0)
-            .map(|(i, n)| SubgraphRow {
-                node: node_ref(g, NodeId(i as u32)),
-                subgraphs: n.subgraphs,
-            })
-            .collect(),
+        bare_runs,
+        not_blocks,
+        subgraphs,
         diagnostics: a
             .diagnostics
             .iter()
@@ -540,14 +651,26 @@ fn influence(
     inf: &InfluenceMeasured,
     ic: &InfluenceConfig,
 ) {
-    let n = analysis.detection.blocks.len();
+    // Every block of the report: the main graph's, then each body's.
+    let graphs = std::iter::once(analysis).chain(analysis.bodies.iter().map(|b| &b.analysis));
+    let (depth, changes_resolution): (Vec<usize>, Vec<bool>) = graphs
+        .flat_map(|a| {
+            a.detection
+                .blocks
+                .iter()
+                .zip(&a.classifications)
+                .map(|(b, k)| (b.depth, k.changes_resolution))
+        })
+        .unzip();
+    let n = depth.len();
+    let measured: Vec<bool> =
+        (0..n).map(|i| !result.not_measured.iter().any(|(k, _)| *k == i)).collect();
     let knocked = &inf.knocked;
     let knocked_shortcut = &inf.knocked_shortcut;
-    let depth: Vec<usize> = analysis.detection.blocks.iter().map(|b| b.depth).collect();
     let mut rows: Vec<InfluenceRow> = (0..n)
         .map(|i| InfluenceRow {
             block: i + 1,
-            changes_resolution: analysis.classifications[i].changes_resolution,
+            changes_resolution: changes_resolution[i],
             knockout: knocked[i],
             shortcut_knockout: knocked_shortcut[i],
             rank: None,
@@ -571,7 +694,9 @@ fn influence(
         rows[i].rank = Some(r + 1);
     }
 
-    let top: Vec<usize> = (0..n).filter(|&i| depth[i] == 0).collect();
+    // The top-level blocks the run measured (a branch not taken is not on
+    // the path of any change).
+    let top: Vec<usize> = (0..n).filter(|&i| depth[i] == 0 && measured[i]).collect();
     let gain_setup = ic.gain_step.map(|step| GainSetup {
         step: f64::from(step),
         input_change: Spread::of(&inf.input_change),

@@ -25,6 +25,7 @@ pub mod batch;
 pub mod classify;
 pub mod cli;
 pub mod compare;
+pub mod control;
 pub mod error;
 pub mod expect;
 pub mod findings;

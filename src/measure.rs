@@ -12,6 +12,7 @@ use std::path::Path;
 
 use prost::Message;
 
+use crate::control;
 use crate::error::{Error, ErrorKind, Result};
 use crate::gate::{self, Site};
 use crate::graph;
@@ -19,7 +20,9 @@ use crate::lower::precision::{self, Half};
 use crate::open::{Analysis, HalfModel, Runnable};
 use crate::parallel::Budget;
 use crate::probe::inputs::InputPlan;
-use crate::probe::{self, GainSamples, GatedPlan, ModelSource, ProbeResult, Progress, Watch};
+use crate::probe::{
+    self, BlockSamples, GainSamples, GatedPlan, ModelSource, ProbeResult, Progress, Watch,
+};
 use crate::stats::{self, Agreement};
 use crate::vocab::Placement;
 
@@ -98,8 +101,12 @@ pub struct Measurement {
 /// What one run measured.
 #[derive(Debug)]
 pub struct Measured {
-    /// The intact run: every block's samples and the model's outputs.
+    /// The intact run: every block's samples (the main graph's blocks, then
+    /// each body's, as the report numbers them) and the model's outputs.
     pub intact: ProbeResult,
+    /// Blocks (0-based) the run could not measure, and why: blocks inside
+    /// control flow the engine does not expose (their samples are empty).
+    pub not_measured: Vec<(usize, String)>,
     /// The knockout and the gain, when asked for.
     pub influence: Option<InfluenceMeasured>,
 }
@@ -137,32 +144,144 @@ pub fn measure(
     budget: &Budget,
     progress: &dyn Progress,
 ) -> Result<Measurement> {
-    let watches = watches(analysis);
-    let Runnable { path, bytes, dir, half, surgery } = runnable;
-    if let (Some(ic), Some(model)) = (influence, surgery) {
-        return measure_gated(
+    let Runnable { mut path, mut bytes, dir, mut half, mut surgery } = runnable;
+    let selection = select(analysis, input_plan, &mut surgery, dir.as_deref());
+    if let Some(model) = surgery.as_ref().filter(|_| selection.rewritten) {
+        // The engine runs the rewritten model (and a half-precision model
+        // the rewritten one, in the form `run_precise` chooses).
+        half = half.map(|h| HalfModel { model: model.clone(), ..h });
+        if influence.is_none() {
+            bytes = Some(model.encode_to_vec());
+            path = None;
+        }
+    }
+    let watches = &selection.watches;
+    let measurement = if let (Some(ic), Some(model)) = (influence, surgery) {
+        measure_gated(
             analysis,
+            &selection,
             model,
             dir.as_deref(),
             half,
-            &watches,
+            watches,
             input_plan,
             ic,
             budget,
             progress,
-        );
-    }
-    let bytes = bytes.unwrap_or_default();
-    let source = match (path.as_deref(), dir.as_deref()) {
-        (Some(p), _) => ModelSource::Path(p),
-        (None, Some(d)) => ModelSource::BytesIn(&bytes, d),
-        (None, None) => ModelSource::Bytes(&bytes),
+        )?
+    } else {
+        let bytes = bytes.unwrap_or_default();
+        let source = match (path.as_deref(), dir.as_deref()) {
+            (Some(p), _) => ModelSource::Path(p),
+            (None, Some(d)) => ModelSource::BytesIn(&bytes, d),
+            (None, None) => ModelSource::Bytes(&bytes),
+        };
+        let (outcome, ran_as) = run_precise(half.as_ref(), source, dir.as_deref(), |s| {
+            probe::run(s, watches, input_plan, budget, progress)
+        });
+        let outcome =
+            outcome.map(|intact| Measured { intact, not_measured: Vec::new(), influence: None });
+        Measurement { ran_as, outcome }
     };
-    let (outcome, ran_as) = run_precise(half.as_ref(), source, dir.as_deref(), |s| {
-        probe::run(s, &watches, input_plan, budget, progress)
-    });
-    let outcome = outcome.map(|intact| Measured { intact, influence: None });
-    Ok(Measurement { ran_as, outcome })
+    Ok(selection.spread(measurement))
+}
+
+/// Which blocks are measured, under which tensor names.
+struct Selection {
+    /// What to watch, in order.
+    watches: Vec<Watch>,
+    /// For each block of the report: its position in `watches`, or why it
+    /// is not measured.
+    of_block: Vec<std::result::Result<usize, String>>,
+    /// For each block: whether it is in the main graph of the model the
+    /// engine runs (a main-graph block, or one of an inlined `If` branch),
+    /// so that gates can reach it.
+    in_main: Vec<bool>,
+    /// Whether the model was rewritten to expose blocks inside bodies.
+    rewritten: bool,
+}
+
+/// The blocks to measure: every block of the main graph, and those of the
+/// bodies `control` can bring out (rewriting `model` for it).
+fn select(
+    analysis: &Analysis,
+    input_plan: &InputPlan,
+    model: &mut Option<crate::proto::ModelProto>,
+    dir: Option<&Path>,
+) -> Selection {
+    let mut watches = watches(analysis);
+    let mut of_block: Vec<std::result::Result<usize, String>> =
+        (0..watches.len()).map(Ok).collect();
+    let mut in_main = vec![true; watches.len()];
+    let with_blocks = analysis.bodies.iter().any(|b| !b.analysis.detection.blocks.is_empty());
+    let mut rewritten = false;
+    let per_body: control::BodyWatches = match model.as_mut() {
+        Some(m) if with_blocks => {
+            let by_body: Vec<Vec<Watch>> =
+                analysis.bodies.iter().map(|b| self::watches(&b.analysis)).collect();
+            rewritten = true;
+            control::unfold(m, analysis, &by_body, input_plan, dir)
+        }
+        _ => analysis
+            .bodies
+            .iter()
+            .map(|_| Err("the model was not kept for rewriting".to_owned()))
+            .collect(),
+    };
+    for (body, found) in analysis.bodies.iter().zip(per_body) {
+        let n = body.analysis.detection.blocks.len();
+        match found {
+            Ok(list) => {
+                let inlined = body.scope[0].op == "If";
+                for w in list {
+                    of_block.push(Ok(watches.len()));
+                    watches.push(w);
+                    in_main.push(inlined);
+                }
+            }
+            Err(why) => {
+                of_block.extend((0..n).map(|_| Err(why.clone())));
+                in_main.extend((0..n).map(|_| false));
+            }
+        }
+    }
+    Selection { watches, of_block, in_main, rewritten }
+}
+
+impl Selection {
+    /// The measurement with one entry per block of the report: the
+    /// measured blocks' samples in place, the others empty, with why.
+    fn spread(&self, mut m: Measurement) -> Measurement {
+        if let Ok(measured) = &mut m.outcome {
+            let mut by_watch: Vec<Option<BlockSamples>> =
+                std::mem::take(&mut measured.intact.blocks).into_iter().map(Some).collect();
+            let mut gains: Option<Vec<Option<GainSamples>>> = measured
+                .influence
+                .as_mut()
+                .and_then(|i| i.gain.take())
+                .map(|g| g.into_iter().map(Some).collect());
+            let mut spread_gain = Vec::new();
+            for (i, slot) in self.of_block.iter().enumerate() {
+                match slot {
+                    Ok(k) => {
+                        measured.intact.blocks.push(by_watch[*k].take().unwrap_or_default());
+                        if let Some(g) = gains.as_mut() {
+                            spread_gain.push(g[*k].take().unwrap_or_default());
+                        }
+                    }
+                    Err(why) => {
+                        measured.intact.blocks.push(BlockSamples::default());
+                        spread_gain.push(GainSamples::default());
+                        measured.not_measured.push((i, why.clone()));
+                    }
+                }
+            }
+            if let (Some(inf), Some(_)) = (measured.influence.as_mut(), gains) {
+                inf.gain = Some(spread_gain);
+            }
+        }
+        m
+    }
 }
 
 /// What to measure for each block.
@@ -266,6 +385,7 @@ fn twin(h: &HalfModel) -> Result<Vec<u8>> {
 #[allow(clippy::too_many_arguments)]
 fn measure_gated(
     analysis: &Analysis,
+    selection: &Selection,
     mut model: crate::proto::ModelProto,
     dir: Option<&Path>,
     half: Option<HalfModel>,
@@ -275,7 +395,7 @@ fn measure_gated(
     budget: &Budget,
     progress: &dyn Progress,
 ) -> Result<Measurement> {
-    let n = analysis.detection.blocks.len();
+    let n = selection.of_block.len();
     let selected: Vec<usize> = if !ic.knockout {
         Vec::new()
     } else if let Some(ids) = &ic.blocks {
@@ -292,12 +412,19 @@ fn measure_gated(
     } else {
         (0..n).collect()
     };
-    let g = &analysis.graph;
     let mut skipped = Vec::new();
     let mut sites = Vec::new();
     let mut gated = Vec::new();
     for &i in &selected {
-        let b = &analysis.detection.blocks[i];
+        if !selection.in_main[i] {
+            skipped.push((
+                i,
+                "inside the body of a control-flow node the engine runs as one op".to_owned(),
+            ));
+            continue;
+        }
+        let (a, j) = block_at(analysis, i);
+        let (g, b) = (&a.graph, &a.detection.blocks[j]);
         let op = &g.node(b.merge).op;
         if op != "Add" && op != "Sum" {
             skipped.push((i, format!("the merge is {op}; only Add and Sum are gated")));
@@ -352,6 +479,7 @@ fn measure_gated(
     });
     let outcome = outcome.map(|r| Measured {
         intact: r.intact,
+        not_measured: Vec::new(),
         influence: Some(InfluenceMeasured {
             knocked,
             knocked_shortcut,
@@ -364,6 +492,21 @@ fn measure_gated(
         }),
     });
     Ok(Measurement { ran_as, outcome })
+}
+
+/// The analysis (the main graph's, or a body's) that holds block `i` of
+/// the report (the main graph's blocks first, then each body's), and the
+/// block's index in it.
+fn block_at(analysis: &Analysis, i: usize) -> (&Analysis, usize) {
+    let mut i = i;
+    for a in std::iter::once(analysis).chain(analysis.bodies.iter().map(|b| &b.analysis)) {
+        let n = a.detection.blocks.len();
+        if i < n {
+            return (a, i);
+        }
+        i -= n;
+    }
+    unreachable!("a block beyond the report's blocks")
 }
 
 /// The outputs of a knockout against the intact ones: the largest relative

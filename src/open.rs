@@ -125,7 +125,8 @@ impl FileFacts {
     }
 }
 
-/// The structural analysis of one model.
+/// The structural analysis of one model (or of one body of a control-flow
+/// node).
 #[derive(Debug)]
 pub struct Analysis {
     /// The dataflow graph.
@@ -144,6 +145,44 @@ pub struct Analysis {
     pub diagnostics: Vec<Diagnostic>,
     /// Operators lowered before the analysis: `(domain, op_type, nodes)`.
     pub lowered: Vec<(String, String, usize)>,
+    /// The bodies of control-flow nodes (`If` branches, `Loop` and `Scan`
+    /// bodies) at every depth, outer before inner, each analysed as a graph
+    /// of its own; empty in the analysis of a body.
+    pub bodies: Vec<Body>,
+}
+
+/// One step from a graph into a body: the node that carries it and the
+/// attribute that holds it.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ScopeStep {
+    /// The node's name (`{op_type}#{index}` when unnamed).
+    pub node: String,
+    /// Its op type (`If`, `Loop`, `Scan`).
+    pub op: String,
+    /// Its position in its graph's node list.
+    pub index: usize,
+    /// The attribute holding the body (`then_branch`, `else_branch`, `body`).
+    pub attribute: String,
+}
+
+/// The body of a control-flow node, analysed.
+#[derive(Debug)]
+pub struct Body {
+    /// The steps from the main graph down to it (one for a body of a main
+    /// graph node).
+    pub scope: Vec<ScopeStep>,
+    /// The outer tensors it reads, which its analysis takes as inputs (or,
+    /// for outer weights, as initializers).
+    pub captured: Vec<String>,
+    /// Its analysis (`bodies` empty: they are all in the main analysis).
+    pub analysis: Analysis,
+}
+
+/// A scope in words: `If 'switch' then_branch › Scan 'rnn' body`.
+pub fn scope_text(scope: &[ScopeStep]) -> String {
+    let steps: Vec<String> =
+        scope.iter().map(|s| format!("{} '{}' {}", s.op, s.node, s.attribute)).collect();
+    steps.join(" › ")
 }
 
 /// Lowers and analyses a decoded model.
@@ -152,16 +191,98 @@ pub fn analyse(model: ModelProto, external: ExternalData, config: &OpenConfig) -
     analyse_lowered(lowered, external, config)
 }
 
-/// Analyses a lowered model.
+/// Analyses a lowered model, then the bodies of its control-flow nodes.
 fn analyse_lowered(
     lowered: Lowered,
     external: ExternalData,
     config: &OpenConfig,
 ) -> Result<Analysis> {
     let summary = lowered.summary();
-    let (mut graph, mut diagnostics) = graph::build(lowered.model, external, &config.build)?;
+    let ir_version = lowered.model.ir_version;
+    let opsets = lowered.model.opset_import.clone();
+    let (mut graph, mut diagnostics) =
+        graph::build(lowered.model, external.clone(), &config.build)?;
     diagnostics.extend(lowered.notes);
     graph.set_origins(lowered.origins);
+    let mut analysis = analyse_graph(graph, diagnostics, config, None);
+    analysis.lowered = summary;
+    let context = BodyContext { ir_version, opsets: &opsets, external: &external, config };
+    let mut bodies = Vec::new();
+    let mut notes = Vec::new();
+    let mut stages = analysis.stages.len();
+    search_bodies(&analysis.graph, &[], &context, &mut stages, &mut bodies, &mut notes);
+    analysis.diagnostics.extend(notes);
+    analysis.bodies = bodies;
+    Ok(analysis)
+}
+
+/// What every body of one model is analysed with.
+struct BodyContext<'a> {
+    ir_version: i64,
+    opsets: &'a [crate::proto::OperatorSetIdProto],
+    external: &'a ExternalData,
+    config: &'a OpenConfig,
+}
+
+/// Analyses every body of `outer`'s nodes, and theirs, into `out` (outer
+/// before inner). `stages` counts the stages before them, so that a body's
+/// notes name its stages as the report numbers them. A body whose graph
+/// cannot be built is left out with a warning.
+fn search_bodies(
+    outer: &Graph,
+    scope: &[ScopeStep],
+    context: &BodyContext<'_>,
+    stages: &mut usize,
+    out: &mut Vec<Body>,
+    notes: &mut Vec<Diagnostic>,
+) {
+    for node in outer.nodes.iter().filter(|n| n.subgraphs > 0) {
+        for (attribute, body) in crate::load::attr::graphs(&node.attrs) {
+            let mut path = scope.to_vec();
+            path.push(ScopeStep {
+                node: node.name.clone(),
+                op: node.op.clone(),
+                index: node.index,
+                attribute: attribute.to_owned(),
+            });
+            let where_ = scope_text(&path);
+            let made = graph::body_model(outer, body, context.ir_version, context.opsets);
+            let built = graph::build(made.model, context.external.clone(), &context.config.build);
+            let (graph, diagnostics) = match built {
+                Ok(b) => b,
+                Err(e) => {
+                    notes.push(Diagnostic::warning(
+                        Some(&node.name),
+                        format!("{where_}: not searched for blocks: {}", e.message()),
+                    ));
+                    continue;
+                }
+            };
+            let analysis = analyse_graph(graph, diagnostics, context.config, Some(*stages));
+            *stages += analysis.stages.len();
+            notes.extend(
+                analysis.diagnostics.iter().map(|d| Diagnostic {
+                    message: format!("{where_}: {}", d.message),
+                    ..d.clone()
+                }),
+            );
+            let mut inner = Vec::new();
+            search_bodies(&analysis.graph, &path, context, stages, &mut inner, notes);
+            out.push(Body { scope: path, captured: made.captured, analysis });
+            out.extend(inner);
+        }
+    }
+}
+
+/// Detection, classification, stages and bare runs of a built graph; the
+/// regular-pattern notes number stages from `stage_offset` (a body's stages
+/// follow the main graph's and earlier bodies' in the report).
+fn analyse_graph(
+    graph: Graph,
+    mut diagnostics: Vec<Diagnostic>,
+    config: &OpenConfig,
+    stage_offset: Option<usize>,
+) -> Analysis {
     let dom = Dominance::compute(&graph);
     let detection = residual::find_blocks(&graph, &dom);
     let classifications: Vec<Classification> =
@@ -169,21 +290,10 @@ fn analyse_lowered(
     let (stages, stage_of) = classify::stages(&graph, &detection.blocks);
     let runs = classify::bare_runs(&graph, &detection.blocks, &stage_of);
     for pattern in &runs.regular {
-        diagnostics.push(regular_pattern_note(&graph, pattern));
+        diagnostics.push(regular_pattern_note(&graph, pattern, stage_offset.unwrap_or(0)));
     }
     let bare_runs = runs.anomalies;
-    for n in &graph.nodes {
-        if n.subgraphs > 0 {
-            diagnostics.push(Diagnostic::note(
-                Some(&n.name),
-                format!(
-                    "{} carries {} subgraph(s) that were not searched for blocks",
-                    n.op, n.subgraphs
-                ),
-            ));
-        }
-    }
-    Ok(Analysis {
+    Analysis {
         graph,
         detection,
         classifications,
@@ -191,12 +301,13 @@ fn analyse_lowered(
         stage_of,
         bare_runs,
         diagnostics,
-        lowered: summary,
-    })
+        lowered: Vec::new(),
+        bodies: Vec::new(),
+    }
 }
 
 /// The note that reports a stage's regular unspanned layers once.
-fn regular_pattern_note(g: &Graph, pattern: &classify::RegularRun) -> Diagnostic {
+fn regular_pattern_note(g: &Graph, pattern: &classify::RegularRun, offset: usize) -> Diagnostic {
     let first = &pattern.runs[0];
     let layers: Vec<&str> = first.layers.iter().map(|&n| g.node(n).name.as_str()).collect();
     Diagnostic::note(
@@ -204,7 +315,7 @@ fn regular_pattern_note(g: &Graph, pattern: &classify::RegularRun) -> Diagnostic
         format!(
             "stage {}: {} of its gaps between blocks hold the same {} learned layer(s) that no \
              shortcut spans (first: {}); read as the architecture's pattern, not as lost shortcuts",
-            pattern.stage + 1,
+            pattern.stage + offset + 1,
             pattern.runs.len(),
             first.layers.len(),
             layers.join(", ")
@@ -246,7 +357,9 @@ pub struct Runnable {
     pub dir: Option<PathBuf>,
     /// For a model with half-precision types.
     pub half: Option<HalfModel>,
-    /// The lowered model for the gate surgery ([`Purpose::GatedRun`]).
+    /// The lowered model for surgery: the gates ([`Purpose::GatedRun`]),
+    /// and bringing out the blocks inside control flow (a model whose main
+    /// graph has a node with a body).
     pub surgery: Option<ModelProto>,
 }
 
@@ -288,8 +401,10 @@ pub fn open_file(path: &Path, config: &OpenConfig, purpose: Purpose) -> Result<O
             bytes,
             half: half_model(&lowered.model, &loaded.external),
             // A copy of the decoded model (payloads in `raw_data` are
-            // shared, not copied).
-            surgery: (purpose == Purpose::GatedRun).then(|| lowered.model.clone()),
+            // shared, not copied), for gates and for bringing out blocks
+            // inside control flow.
+            surgery: (purpose == Purpose::GatedRun || has_bodies(&lowered.model))
+                .then(|| lowered.model.clone()),
         }
     });
     let analysis = analyse_lowered(lowered, loaded.external, config).map_err(|e| e.at(path))?;
@@ -312,10 +427,19 @@ pub fn open_model(
         dir: None,
         bytes: Some(lowered.model.encode_to_vec()),
         half: half_model(&lowered.model, &external),
-        surgery: (purpose == Purpose::GatedRun).then(|| lowered.model.clone()),
+        surgery: (purpose == Purpose::GatedRun || has_bodies(&lowered.model))
+            .then(|| lowered.model.clone()),
     });
     let analysis = analyse_lowered(lowered, external, config)?;
     Ok(Opened { file, analysis, runnable })
+}
+
+/// Whether a node of the main graph carries a body (If, Loop, Scan).
+fn has_bodies(model: &ModelProto) -> bool {
+    model
+        .graph
+        .as_ref()
+        .is_some_and(|g| g.node.iter().any(|n| crate::load::attr::subgraphs(n).next().is_some()))
 }
 
 fn half_model(model: &ModelProto, external: &ExternalData) -> Option<HalfModel> {
@@ -341,6 +465,9 @@ impl Opened {
         let runnable = self.runnable.take();
         if runnable.is_some() {
             self.analysis.graph.release_payloads();
+            for body in &mut self.analysis.bodies {
+                body.analysis.graph.release_payloads();
+            }
         }
         runnable
     }

@@ -434,6 +434,10 @@ fn subgraphs_are_reported() {
     let r = shunt::scan::scan_model(model, "if", &shunt::open::OpenConfig::standard()).unwrap();
     assert_eq!(r.subgraphs.len(), 1);
     assert_eq!((r.subgraphs[0].node.name.as_str(), r.subgraphs[0].subgraphs), ("branchy", 2));
-    assert!(r.diagnostics.iter().any(|d| d.message.contains("not searched")));
+    // Both bodies are searched (issue 15, item 1); they hold no block.
+    let bodies: Vec<&str> = r.subgraphs[0].bodies.iter().map(|b| b.attribute.as_str()).collect();
+    assert_eq!(bodies, ["then_branch", "else_branch"]);
+    assert!(r.subgraphs[0].bodies.iter().all(|b| b.blocks.is_empty()));
+    assert!(!r.diagnostics.iter().any(|d| d.message.contains("not searched")));
     assert_eq!(r.summary.blocks, 1);
 }

@@ -70,6 +70,8 @@ fn stats_args(case: &Case) -> &'static [&'static str] {
     match case.name {
         "resnet18_b" => &["--check-reference"],
         "streaming_state" => &["--batch-axis", "state=1", "--check-reference"],
+        "if_sample_rate" => &["--control-flow", "--check-reference"],
+        "scan_recurrence" => &["--control-flow", "--batch-axis", "x=1", "--check-reference"],
         _ => &[],
     }
 }
@@ -330,6 +332,27 @@ pub(crate) fn check_case(case: &Case) -> usize {
     check_drift(case, &reference);
     let report = audit(&case.model_rel(), &case.inputs_rel());
     check_blocks(case.name, &report, &reference, case.blocks)
+}
+
+/// [`check_case`] for a model some of whose blocks the run does not
+/// measure (a branch not taken): `measured` of its `case.blocks` blocks
+/// are checked, the others must say why they were not measured. Returns
+/// the report.
+pub(crate) fn check_case_measured(case: &Case, measured: usize) -> Value {
+    let reference = committed(case);
+    check_drift(case, &reference);
+    let report = audit(&case.model_rel(), &case.inputs_rel());
+    let blocks = report["blocks"].as_array().expect("blocks");
+    assert_eq!(blocks.len(), case.blocks, "{}: residual blocks (the fixture's census)", case.name);
+    let (with, without): (Vec<Value>, Vec<Value>) =
+        blocks.iter().cloned().partition(|b| !b["stats"].is_null());
+    for b in &without {
+        assert!(b["not_measured"].is_string(), "{}: {b} has neither stats nor a reason", case.name);
+    }
+    let mut only = report.clone();
+    only["blocks"] = Value::Array(with);
+    check_blocks(case.name, &only, &reference, measured);
+    report
 }
 
 #[test]

@@ -80,9 +80,20 @@ fn report_documents_keep_their_fields() {
         ]),
         // A lowered model run: lowered, lowered_from in blocks and findings.
         args(&["audit", &path(fixture("transformed/encoder_prenorm_ortopt.onnx")), "--batch", "2"]),
+        // Blocks inside control flow (scope, bodies), one branch not measured.
+        args(&["scan", &path(fixture("structure/if_sample_rate.onnx"))]),
+        args(&["scan", &path(fixture("structure/scan_recurrence.onnx"))]), // not_blocks[].scope
+        args(&[
+            "audit",
+            &path(fixture("structure/if_sample_rate.onnx")),
+            "--dim",
+            "samples=16",
+            "--batch",
+            "2",
+        ]),
     ];
     let documents: Vec<Value> = runs.iter().map(|a| document(a, &[0, 1, 2])).collect();
-    assert_eq!(documents.len(), 14);
+    assert_eq!(documents.len(), 17);
     // The run that fails writes its structure and says why.
     assert!(documents[10]["run_error"].is_string(), "{}", documents[10]["run_error"]);
     assert_eq!(documents[7]["concat_skips"][0]["skip_ops"].as_array().map(Vec::len), Some(1));

@@ -510,3 +510,119 @@ fn swin_measured_like_onnxruntime() {
         blocks: case(path).expect.blocks(),
     });
 }
+
+/// Item 1: blocks inside control flow. The `If` model's blocks are in its
+/// two branches (3 in `then_branch`, 2 in `else_branch`, from the module
+/// definition in `testkit::structure::if_sample_rate`), each with its scope;
+/// the recurrent cell's in the `Scan` and `Loop` bodies. The `If` node
+/// lists its bodies with the blocks found in each and the outer tensor they
+/// read.
+#[test]
+fn blocks_inside_control_flow_have_their_scope() {
+    let r = scan("structure/if_sample_rate.onnx");
+    let blocks = r["blocks"].as_array().unwrap();
+    assert_eq!(blocks.len(), 5, "fixtures/structure/MANIFEST.txt");
+    for b in blocks {
+        let scope = b["scope"].as_array().expect("a block inside the If");
+        assert_eq!(scope.len(), 1);
+        assert_eq!(scope[0]["node"], "sr.switch");
+        assert_eq!(scope[0]["op_type"], "If");
+        let name = b["merge"]["name"].as_str().unwrap();
+        let branch = if name.starts_with("sr16k") { "then_branch" } else { "else_branch" };
+        assert_eq!(scope[0]["attribute"], branch, "{name}");
+    }
+    let subgraphs = r["subgraphs"].as_array().unwrap();
+    assert_eq!(subgraphs.len(), 1);
+    let bodies = subgraphs[0]["bodies"].as_array().unwrap();
+    let listed: Vec<(&str, Vec<u64>)> = bodies
+        .iter()
+        .map(|b| {
+            let ids = b["blocks"].as_array().unwrap().iter().map(|i| i.as_u64().unwrap()).collect();
+            (b["attribute"].as_str().unwrap(), ids)
+        })
+        .collect();
+    assert_eq!(listed, [("then_branch", vec![1, 2, 3]), ("else_branch", vec![4, 5])]);
+    assert!(bodies.iter().all(|b| b["captured"] == serde_json::json!(["input"])));
+    // The stages of each branch are their own.
+    assert_eq!(r["stages"][0]["blocks"], serde_json::json!([1, 2, 3]));
+    assert_eq!(r["stages"][1]["blocks"], serde_json::json!([4, 5]));
+    // The table names the body of each block.
+    let model = fixture("structure/if_sample_rate.onnx");
+    let table = shunt(&["scan", model.to_str().unwrap()]);
+    assert!(table.stdout.contains("in If 'sr.switch' then_branch"), "{}", table.stdout);
+
+    for (path, node, op) in [
+        ("structure/scan_recurrence.onnx", "rnn", "Scan"),
+        ("structure/loop_recurrence.onnx", "recur", "Loop"),
+    ] {
+        let r = scan(path);
+        let blocks = r["blocks"].as_array().unwrap();
+        assert_eq!(blocks.len(), 2, "{path}: fixtures/structure/MANIFEST.txt");
+        for b in blocks {
+            assert_eq!(b["scope"][0]["node"], node, "{path}");
+            assert_eq!(b["scope"][0]["op_type"], op, "{path}");
+            assert_eq!(b["scope"][0]["attribute"], "body", "{path}");
+        }
+        assert!(!notes(&r).iter().any(|n| n.contains("not searched")), "{path}");
+    }
+}
+
+/// Item 1, the `If` against onnxruntime: with `sr` = 16000 the run takes
+/// `then_branch`, whose 3 blocks are measured (stats.py --control-flow
+/// inlines the branch onnxruntime's condition picks, and checks the inlined
+/// model's outputs against the original's); `else_branch`'s 2 blocks are
+/// not measured, and say why. With `sr` fed 1 (the default, with its
+/// warning), the other branch runs.
+#[test]
+fn if_branch_taken_is_measured_like_onnxruntime() {
+    let path = "structure/if_sample_rate.onnx";
+    let report = reference_stats::check_case_measured(
+        &reference_stats::Case {
+            name: "if_sample_rate",
+            inputs: "if_sample_rate",
+            model: path,
+            ext: "npz",
+            blocks: case(path).expect.blocks(),
+        },
+        3,
+    );
+    for b in &report["blocks"].as_array().unwrap()[3..] {
+        let why = b["not_measured"].as_str().unwrap();
+        assert!(
+            why.contains("takes then_branch") && why.contains("else_branch does not run"),
+            "{why}"
+        );
+    }
+    let r = audit(path, &["--dim", "samples=64", "--batch", "2"]);
+    let measured: Vec<bool> =
+        r["blocks"].as_array().unwrap().iter().map(|b| !b["stats"].is_null()).collect();
+    assert_eq!(measured, [false, false, false, true, true]);
+}
+
+/// Item 1, the `Scan` against onnxruntime: each block of the recurrent cell
+/// measured over all 5 steps of each sample (stats.py --control-flow exposes
+/// the body's tensors as scan outputs), 4 samples in one pass, the samples
+/// on axis 1 of `x`.
+#[test]
+fn scan_body_measured_like_onnxruntime() {
+    let path = "structure/scan_recurrence.onnx";
+    reference_stats::check_case(&reference_stats::Case {
+        name: "scan_recurrence",
+        inputs: "scan_recurrence",
+        model: path,
+        ext: "npz",
+        blocks: case(path).expect.blocks(),
+    });
+}
+
+/// Item 1: tract-onnx 0.23.9 has no `Loop`; the audit reports the
+/// structure, with the blocks of the body, and the run's error.
+#[test]
+fn loop_body_is_reported_when_the_run_fails() {
+    let model = fixture("structure/loop_recurrence.onnx");
+    let run = shunt(&["audit", model.to_str().unwrap(), "--format", "json", "--quiet"]);
+    assert_eq!(run.code, 2, "{}", run.stderr);
+    let r: Value = serde_json::from_str(&run.stdout).expect("the structure is written first");
+    assert!(r["run_error"].as_str().unwrap().contains("Loop"), "{}", r["run_error"]);
+    assert_eq!(r["blocks"].as_array().unwrap().len(), 2);
+}

@@ -52,6 +52,11 @@ pub struct BlockFacts {
     pub static_dead: Option<String>,
     /// Nesting depth (0 for top-level blocks).
     pub depth: usize,
+    /// The graph the block is in: 0 for the main graph, another number for
+    /// each body of a control-flow node. The signal across depth is judged
+    /// within one graph (an `If`'s two branches are alternatives, not a
+    /// sequence).
+    pub scope: usize,
 }
 
 /// One finding.
@@ -148,37 +153,54 @@ pub fn findings(
             });
         }
     }
-    let top: Vec<(usize, f64)> = blocks
-        .iter()
-        .enumerate()
-        .filter(|(_, b)| b.depth == 0)
-        .filter_map(|(i, b)| b.output_rms.filter(|v| v.is_finite() && *v > 0.0).map(|v| (i + 1, v)))
-        .collect();
-    if let (Some(&(first_id, first)), Some(&(last_id, last))) = (top.first(), top.last())
-        && top.len() >= 2
-    {
-        let growth = last / first;
-        if growth > config.depth_factor {
-            out.push(Finding {
-                    code: FindingCode::ExplodingSignal,
-                    block: None,
-                    message: format!(
-                        "output RMS grows {growth:.3e}-fold from block #{first_id} to block #{last_id} (limit {})",
-                        config.depth_factor
-                    ),
-                });
-        } else if growth < 1.0 / config.depth_factor {
-            out.push(Finding {
-                    code: FindingCode::VanishingSignal,
-                    block: None,
-                    message: format!(
-                        "output RMS shrinks to {growth:.3e} of its value from block #{first_id} to block #{last_id} (limit 1/{})",
-                        config.depth_factor
-                    ),
-                });
+    let mut scopes: Vec<usize> = blocks.iter().map(|b| b.scope).collect();
+    scopes.sort_unstable();
+    scopes.dedup();
+    for scope in scopes {
+        let top: Vec<(usize, f64)> = blocks
+            .iter()
+            .enumerate()
+            .filter(|(_, b)| b.depth == 0 && b.scope == scope)
+            .filter_map(|(i, b)| {
+                b.output_rms.filter(|v| v.is_finite() && *v > 0.0).map(|v| (i + 1, v))
+            })
+            .collect();
+        if let Some(f) = depth_finding(&top, config) {
+            out.push(f);
         }
     }
     out
+}
+
+/// `exploding-signal` / `vanishing-signal` from the first to the last of
+/// one graph's top-level blocks `(id, output RMS)`.
+fn depth_finding(top: &[(usize, f64)], config: &FindingConfig) -> Option<Finding> {
+    let (&(first_id, first), &(last_id, last)) = (top.first()?, top.last()?);
+    if top.len() < 2 {
+        return None;
+    }
+    let growth = last / first;
+    if growth > config.depth_factor {
+        Some(Finding {
+            code: FindingCode::ExplodingSignal,
+            block: None,
+            message: format!(
+                "output RMS grows {growth:.3e}-fold from block #{first_id} to block #{last_id} (limit {})",
+                config.depth_factor
+            ),
+        })
+    } else if growth < 1.0 / config.depth_factor {
+        Some(Finding {
+            code: FindingCode::VanishingSignal,
+            block: None,
+            message: format!(
+                "output RMS shrinks to {growth:.3e} of its value from block #{first_id} to block #{last_id} (limit 1/{})",
+                config.depth_factor
+            ),
+        })
+    } else {
+        None
+    }
 }
 
 /// Thresholds of the knockout and gain findings, both relative.

@@ -5,6 +5,7 @@
 //! topological order of all nodes; a value is *static* exactly when it derives
 //! only from initializers, Constant nodes or shape metadata.
 
+mod body;
 mod build;
 pub mod op;
 mod order;
@@ -16,6 +17,7 @@ use crate::load::ExternalData;
 use crate::load::tensor;
 use crate::proto::{AttributeProto, TensorProto};
 
+pub use body::{BodyModel, body_model, free_names};
 pub use build::{BuildConfig, build};
 pub use order::Dominance;
 

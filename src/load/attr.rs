@@ -31,7 +31,10 @@ pub fn tensor<'a>(attrs: &'a [AttributeProto], name: &str) -> Option<&'a TensorP
 /// Every subgraph a node carries (If branches, Loop and Scan bodies), with
 /// the attribute that holds it.
 pub fn subgraphs(node: &NodeProto) -> impl Iterator<Item = (&str, &GraphProto)> {
-    node.attribute
-        .iter()
-        .flat_map(|a| a.g.iter().chain(a.graphs.iter()).map(move |g| (a.name.as_str(), g)))
+    graphs(&node.attribute)
+}
+
+/// Every subgraph among a node's attributes, with the attribute that holds it.
+pub fn graphs(attrs: &[AttributeProto]) -> impl Iterator<Item = (&str, &GraphProto)> {
+    attrs.iter().flat_map(|a| a.g.iter().chain(a.graphs.iter()).map(move |g| (a.name.as_str(), g)))
 }

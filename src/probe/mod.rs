@@ -158,6 +158,28 @@ pub fn run(
     }
 }
 
+/// Runs a small model (no watches) once on the first pass of the plan's
+/// values for the inputs it declares, and returns its first output as
+/// numbers: how `control` learns which branch an `If` takes.
+pub fn evaluate(source: ModelSource<'_>, input_plan: &InputPlan) -> Result<Vec<f64>> {
+    let go = || -> Result<Vec<f64>> {
+        let prepared = prepare(source, &[], input_plan, &[], &Silent)?;
+        let mut runner = Runner::new(&prepared, 1)?;
+        let values = inputs::values(input_plan, 0);
+        let tensors = prepared.tensors(input_plan, &values, &[])?;
+        let out = prepared.plain(&mut runner, tensors)?;
+        let first =
+            out.first().ok_or_else(|| Error::new(ErrorKind::Probe, "the model has no output"))?;
+        let cast = first.cast_to::<f64>().map_err(|e| tract_err("tract", &e))?;
+        let view = cast.try_as_plain_ram().map_err(|e| tract_err("tract", &e))?;
+        Ok(view.as_slice::<f64>().map_err(|e| tract_err("tract", &e))?.to_vec())
+    };
+    match catch_unwind(AssertUnwindSafe(go)) {
+        Ok(r) => r,
+        Err(_) => Err(Error::new(ErrorKind::Probe, "the inference engine (tract) panicked")),
+    }
+}
+
 fn tract_err(what: &str, e: &anyhow::Error) -> Error {
     let chain: Vec<String> = e.chain().map(|c| c.to_string()).collect();
     Error::new(ErrorKind::Probe, format!("{what}: {}", chain.join(": ")))

@@ -33,7 +33,12 @@ pub const REPORT_SCHEMA: &str = "shunt/report";
 /// Version 4 added `lowered` and `NodeRef::lowered_from` (both left out when
 /// empty), for models whose fused or quantised operators were lowered, and
 /// `RunRow::precision` (left out for models without half-precision types).
-pub const REPORT_SCHEMA_VERSION: u32 = 4;
+///
+/// Version 5 added the blocks inside control flow: `scope` on blocks,
+/// concatenative skips, merges that are not blocks and nodes carrying
+/// subgraphs (left out in the main graph), `BlockRow::not_measured` (left
+/// out when measured or not run), and `SubgraphRow::bodies`.
+pub const REPORT_SCHEMA_VERSION: u32 = 5;
 
 /// The result of `shunt scan` or `shunt audit` on one model.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -69,7 +74,8 @@ pub struct Report {
     pub bare_runs: Vec<BareRunRow>,
     /// Merges of two or more signals that are not residual blocks.
     pub not_blocks: Vec<NotBlockRow>,
-    /// Nodes carrying subgraphs (If, Loop, Scan): not searched for blocks.
+    /// Nodes carrying subgraphs (If, Loop, Scan), at every depth, with the
+    /// blocks found in each body.
     pub subgraphs: Vec<SubgraphRow>,
     /// Problems the analysis worked around.
     pub diagnostics: Vec<DiagnosticRow>,
@@ -213,8 +219,13 @@ pub struct StageRow {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct BlockRow {
-    /// 1-based block number, in graph order.
+    /// 1-based block number: the main graph's blocks in graph order, then
+    /// each body's (in the order of `subgraphs`).
     pub id: usize,
+    /// The body of a control-flow node the block is in, from the main graph
+    /// down; empty (and left out) in the main graph.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub scope: Vec<ScopeRow>,
     /// Stage id, or `null` when the output shape is unknown.
     pub stage: Option<usize>,
     /// The merge node (Add, Sum).
@@ -244,6 +255,24 @@ pub struct BlockRow {
     pub children: usize,
     /// Measurements, when the model was run.
     pub stats: Option<StatsRow>,
+    /// Why the block was not measured although the model ran (a body the
+    /// engine runs as one op, a branch not taken); left out otherwise.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub not_measured: Option<String>,
+}
+
+/// One step from a graph into the body of one of its nodes.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ScopeRow {
+    /// The node carrying the body (`{op_type}#{index}` when unnamed).
+    pub node: String,
+    /// Its position in its own graph's node list (0-based).
+    pub index: usize,
+    /// Its op type (`If`, `Loop`, `Scan`).
+    pub op_type: String,
+    /// The attribute holding the body (`then_branch`, `else_branch`, `body`).
+    pub attribute: String,
 }
 
 /// Measurements of one block over all samples.
@@ -466,8 +495,11 @@ pub struct DeadRow {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct ConcatRow {
-    /// 1-based number in graph order.
+    /// 1-based number in graph order (the main graph's first).
     pub id: usize,
+    /// The body it is in (see [`BlockRow::scope`]).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub scope: Vec<ScopeRow>,
     /// The Concat node.
     pub concat: NodeRef,
     /// Its output tensor.
@@ -502,6 +534,9 @@ pub struct BareRunRow {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct NotBlockRow {
+    /// The body it is in (see [`BlockRow::scope`]).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub scope: Vec<ScopeRow>,
     /// The node.
     pub node: NodeRef,
     /// `independent-inputs`, `no-shortcut`, `no-learned-layer` or `sum-of-heads`.
@@ -514,10 +549,27 @@ pub struct NotBlockRow {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct SubgraphRow {
+    /// The body the node is in (see [`BlockRow::scope`]).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub scope: Vec<ScopeRow>,
     /// The node.
     pub node: NodeRef,
     /// Number of subgraphs it carries.
     pub subgraphs: usize,
+    /// The bodies searched for blocks, in attribute order.
+    pub bodies: Vec<BodyRow>,
+}
+
+/// One body of a control-flow node, searched for blocks.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BodyRow {
+    /// The attribute holding it (`then_branch`, `else_branch`, `body`).
+    pub attribute: String,
+    /// The outer tensors it reads (its inputs besides its own).
+    pub captured: Vec<String>,
+    /// Ids of the blocks found in it (not in bodies inside it).
+    pub blocks: Vec<usize>,
 }
 
 /// A problem the analysis worked around.

@@ -28,6 +28,9 @@ fn merge_cell(b: &BlockRow) -> String {
 
 fn notes_cell(b: &BlockRow) -> String {
     let mut notes = Vec::new();
+    if !b.scope.is_empty() {
+        notes.push(format!("in {}", super::text::scope_path(&b.scope)));
+    }
     if let Some(d) = &b.static_dead {
         notes.push(format!(
             "dead by construction: {} at {}",
@@ -74,6 +77,8 @@ pub fn render(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
         writeln!(out, "{t}")?;
     }
     if r.run.is_some() && r.run_error.is_none() {
+        scopes(r, out)?;
+        not_measured(r, out)?;
         profile(r, out)?;
     }
     if r.run_error.is_none()
@@ -167,6 +172,42 @@ fn structure_table(r: &Report) -> Table {
         }
         t
     }
+}
+
+/// Under the measurement table (which has no notes column): the blocks
+/// inside control flow, consecutive blocks of one body on one line.
+fn scopes(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
+    let mut groups: Vec<(usize, usize, String)> = Vec::new();
+    for b in r.blocks.iter().filter(|b| !b.scope.is_empty()) {
+        let path = super::text::scope_path(&b.scope);
+        match groups.last_mut() {
+            Some(g) if g.2 == path && g.1 + 1 == b.id => g.1 = b.id,
+            _ => groups.push((b.id, b.id, path)),
+        }
+    }
+    for (first, last, path) in groups {
+        let ids = if first == last { format!("#{first}") } else { format!("#{first}-#{last}") };
+        writeln!(out, "in {path}: {ids}")?;
+    }
+    Ok(())
+}
+
+/// Blocks the run did not measure, with why; consecutive blocks with one
+/// reason on one line.
+fn not_measured(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
+    let mut groups: Vec<(usize, usize, &str)> = Vec::new();
+    for b in &r.blocks {
+        let Some(why) = b.not_measured.as_deref() else { continue };
+        match groups.last_mut() {
+            Some(g) if g.2 == why && g.1 + 1 == b.id => g.1 = b.id,
+            _ => groups.push((b.id, b.id, why)),
+        }
+    }
+    for (first, last, why) in groups {
+        let ids = if first == last { format!("#{first}") } else { format!("#{first}-#{last}") };
+        writeln!(out, "not measured: {ids}: {}", terminal_safe(why))?;
+    }
+    Ok(())
 }
 
 fn block_findings(r: &Report, id: usize) -> String {

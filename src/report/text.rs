@@ -24,6 +24,16 @@ pub fn terminal_safe(s: &str) -> String {
     out
 }
 
+/// A block's place inside control flow in words, outermost first:
+/// `If 'switch' then_branch › Scan 'rnn' body` (empty in the main graph).
+pub fn scope_path(scope: &[super::ScopeRow]) -> String {
+    let steps: Vec<String> = scope
+        .iter()
+        .map(|s| format!("{} '{}' {}", s.op_type, terminal_safe(&s.node), s.attribute))
+        .collect();
+    steps.join(" › ")
+}
+
 /// `1 block`, `3 blocks`.
 pub fn plural(n: usize, word: &str) -> String {
     if n == 1 { format!("1 {word}") } else { format!("{n} {word}s") }

@@ -16,7 +16,7 @@ use std::path::{Path, PathBuf};
 use prost::Message;
 
 use shunt::proto::attribute_proto::AttributeType;
-use shunt::proto::{AttributeProto, ModelProto, NodeProto};
+use shunt::proto::{AttributeProto, GraphProto, ModelProto, NodeProto, ValueInfoProto};
 
 use crate::builder::{Attention, Conv, Dim, Form, Init, ModelBuilder};
 use crate::zoo::{self, BlockDesign, ImageSpec, ResBlock, Shortcut};
@@ -226,6 +226,52 @@ pub fn all() -> Vec<Case> {
                 audit_args: vec!["--dim", "height=32", "--dim", "width=32", "--batch", "2"],
             },
             source: "R1 R2 R3",
+        },
+        Case {
+            path: "structure/if_sample_rate.onnx",
+            model: if_sample_rate(),
+            isolates: "item 1: the whole network inside an If on a scalar int64 sample rate sr (sr == 16000): then_branch a stem and 3 post-activation blocks, else_branch a stem and 2; both read the outer input [batch, samples]",
+            expect: Expect {
+                shortcuts: vec![("identity", 5)],
+                placements: vec![("post-activation", 5)],
+                stages: vec![3, 2],
+                not_blocks: Vec::new(),
+                concat_skips: 0,
+                audit_args: Vec::new(),
+            },
+            source: "hand-built (a sample-rate switch as the issue describes it); the census from the module definition, testkit::structure::if_sample_rate",
+        },
+        Case {
+            path: "structure/scan_recurrence.onnx",
+            model: scan_recurrence(),
+            isolates: "item 1: a residual recurrent cell in a Scan over x [steps, batch, 8] from h0 [batch, 8]: h' = two pre-norm residual MLP blocks on tanh(W [h; x_t])",
+            expect: Expect {
+                shortcuts: vec![("identity", 2)],
+                placements: vec![("pre-norm", 2)],
+                stages: vec![2],
+                // The cell's Concat of the state and the step: two inputs
+                // and no learned layer between them and it.
+                not_blocks: vec![("no-learned-layer", 1)],
+                concat_skips: 0,
+                audit_args: Vec::new(),
+            },
+            source: "hand-built (no exporter of the pinned set writes Scan); the census from the module definition, testkit::structure::scan_recurrence",
+        },
+        Case {
+            path: "structure/loop_recurrence.onnx",
+            model: loop_recurrence(),
+            isolates: "item 1: the cell of scan_recurrence in a Loop of trip count steps, driven by the outer x [batch, 8]; tract-onnx 0.23.9 has no Loop, so the audit reports the structure and the run's error",
+            expect: Expect {
+                shortcuts: vec![("identity", 2)],
+                placements: vec![("pre-norm", 2)],
+                stages: vec![2],
+                // The cell's Concat of the state and the step: two inputs
+                // and no learned layer between them and it.
+                not_blocks: vec![("no-learned-layer", 1)],
+                concat_skips: 0,
+                audit_args: Vec::new(),
+            },
+            source: "hand-built (torch.jit.script loops export as Loop); the census from the module definition, testkit::structure::loop_recurrence",
         },
     ]
 }
@@ -688,6 +734,200 @@ pub fn detector_box_decode() -> ModelProto {
         b.output(out);
     }
     b.finish()
+}
+
+/// A graph attribute named `name`.
+fn graph_attr(name: &str, g: GraphProto) -> AttributeProto {
+    AttributeProto {
+        name: name.to_owned(),
+        r#type: AttributeType::Graph as i32,
+        g: Some(g),
+        ..AttributeProto::default()
+    }
+}
+
+/// An integer attribute named `name`.
+fn int_attr(name: &str, i: i64) -> AttributeProto {
+    AttributeProto {
+        name: name.to_owned(),
+        r#type: AttributeType::Int as i32,
+        i,
+        ..AttributeProto::default()
+    }
+}
+
+/// `vi` under another name.
+fn renamed(vi: &ValueInfoProto, name: &str) -> ValueInfoProto {
+    ValueInfoProto { name: name.to_owned(), ..vi.clone() }
+}
+
+/// Item 1: a network wrapped whole in an `If` on a sample-rate input, as
+/// streaming audio models switch between their 16 kHz and 8 kHz networks:
+/// inputs `input [batch, samples]` and a scalar int64 `sr`; the condition is
+/// `sr == 16000`. Each branch reads the outer `input`, unsqueezes it to
+/// `[batch, 1, 1, samples]`, and runs a 3x3 stem conv to 8 channels with a
+/// ReLU, then post-activation blocks `relu(x + conv(relu(conv(x))))` (3 in
+/// `then_branch`, 2 in `else_branch`, each with weights of its own), then a
+/// conv to one channel. The branches' initializers stay inside them.
+pub fn if_sample_rate() -> ModelProto {
+    let batch = || Dim::Sym("batch".to_owned());
+    let samples = || Dim::Sym("samples".to_owned());
+    let branch = |prefix: &str, blocks: usize| -> GraphProto {
+        let mut b = ModelBuilder::new(prefix, 17);
+        let input = b.input("input", &[batch(), samples()]);
+        let x = b.unsqueeze(&format!("{prefix}.wave"), &input, &[1, 2]);
+        let x = b.conv(&format!("{prefix}.stem"), &x, &Conv::new(8, 3).with_bias());
+        let mut x = b.relu(&format!("{prefix}.stem.relu"), &x);
+        for i in 0..blocks {
+            let p = format!("{prefix}.block{i}");
+            let y = b.conv(&format!("{p}.conv1"), &x, &Conv::new(8, 3).with_bias());
+            let y = b.relu(&format!("{p}.relu1"), &y);
+            let y = b.conv(&format!("{p}.conv2"), &y, &Conv::new(8, 3).with_bias());
+            let y = b.add(&format!("{p}.add"), &y, &x);
+            x = b.relu(&format!("{p}.relu"), &y);
+        }
+        let out = b.conv(&format!("{prefix}.out"), &x, &Conv::new(1, 3).with_bias());
+        b.output(&out);
+        let mut g = b.finish().graph.expect("a built model has a graph");
+        // `input` is the outer graph's: the branch reads it from there.
+        g.input.clear();
+        g
+    };
+    let then_branch = branch("sr16k", 3);
+    let else_branch = branch("sr8k", 2);
+    let mut b = ModelBuilder::new("if_sample_rate", 17);
+    b.input("input", &[batch(), samples()]);
+    let sr = b.typed_input("sr", shunt::proto::tensor_proto::DataType::Int64, &[]);
+    let rate = b.init_i64("sr.16k", &[], vec![16000]);
+    let cond = b.node("Equal", "sr.is_16k", &[&sr, &rate], &[]);
+    let mut model = b.finish();
+    let graph = model.graph.as_mut().expect("a built model has a graph");
+    graph.output.push(renamed(&then_branch.output[0], "out"));
+    graph.node.push(NodeProto {
+        op_type: "If".to_owned(),
+        name: "sr.switch".to_owned(),
+        input: vec![cond],
+        output: vec!["out".to_owned()],
+        attribute: vec![
+            graph_attr("then_branch", then_branch),
+            graph_attr("else_branch", else_branch),
+        ],
+        ..NodeProto::default()
+    });
+    model
+}
+
+/// The residual recurrent cell of [`scan_recurrence`] and
+/// [`loop_recurrence`]: `z = tanh(Gemm([h; x]))` to 8 features, then two
+/// pre-norm blocks `z + fc2(relu(fc1(LN(z))))` (16 hidden features); returns
+/// the builder and the new state.
+fn residual_cell(b: &mut ModelBuilder, h: &str, x: &str) -> String {
+    let c = b.concat("cell.cat", &[h, x], 1);
+    let z = b.gemm("cell.in", &c, 8, &Init::HeNormal);
+    let mut z = b.tanh("cell.act", &z);
+    for i in 0..2 {
+        let p = format!("cell.block{i}");
+        let n = b.layer_norm(&format!("{p}.norm"), &z, Form::Fused);
+        let y = b.gemm(&format!("{p}.fc1"), &n, 16, &Init::HeNormal);
+        let y = b.relu(&format!("{p}.relu"), &y);
+        let y = b.gemm(&format!("{p}.fc2"), &y, 8, &Init::HeNormal);
+        z = b.add(&format!("{p}.add"), &z, &y);
+    }
+    z
+}
+
+/// Item 1: a recurrence in a `Scan`: inputs `x [steps, batch, 8]` and the
+/// initial state `h0 [batch, 8]`; the body takes the state `h [batch, 8]`
+/// and one step `x_t [batch, 8]`, runs [`residual_cell`], and returns the
+/// new state and (through an `Identity`) the step's output, stacked into
+/// `ys [steps, batch, 8]`; `h_last` is the final state.
+pub fn scan_recurrence() -> ModelProto {
+    let batch = || Dim::Sym("batch".to_owned());
+    let mut cell = ModelBuilder::new("cell", 17);
+    let h = cell.input("cell.h", &[batch(), 8.into()]);
+    let x = cell.input("cell.x", &[batch(), 8.into()]);
+    let z = residual_cell(&mut cell, &h, &x);
+    let y = cell.node("Identity", "cell.y", &[&z], &[]);
+    cell.output(&z);
+    cell.output(&y);
+    let body = cell.finish().graph.expect("a built model has a graph");
+    let mut b = ModelBuilder::new("scan_recurrence", 17);
+    b.input("x", &[Dim::Sym("steps".to_owned()), batch(), 8.into()]);
+    b.input("h0", &[batch(), 8.into()]);
+    let mut model = b.finish();
+    let graph = model.graph.as_mut().expect("a built model has a graph");
+    graph.output.push(renamed(&body.output[0], "h_last"));
+    let mut ys = renamed(&graph.input[0], "ys");
+    ys.doc_string.clear();
+    graph.output.push(ys);
+    graph.node.push(NodeProto {
+        op_type: "Scan".to_owned(),
+        name: "rnn".to_owned(),
+        input: vec!["h0".to_owned(), "x".to_owned()],
+        output: vec!["h_last".to_owned(), "ys".to_owned()],
+        attribute: vec![graph_attr("body", body), int_attr("num_scan_inputs", 1)],
+        ..NodeProto::default()
+    });
+    model
+}
+
+/// Item 1: the cell of [`scan_recurrence`] in a `Loop` of `steps` trips
+/// (an int64 scalar input), its state from `h0 [batch, 8]`, each trip
+/// driven by the outer `x [batch, 8]` (read from inside the body); outputs
+/// the final state and the stacked states.
+pub fn loop_recurrence() -> ModelProto {
+    let batch = || Dim::Sym("batch".to_owned());
+    let int64 = shunt::proto::tensor_proto::DataType::Int64;
+    let mut cell = ModelBuilder::new("loop_cell", 17);
+    cell.typed_input("cell.iteration", int64, &[]);
+    let cond = cell.typed_input("cell.cond", shunt::proto::tensor_proto::DataType::Bool, &[]);
+    let h = cell.input("cell.h", &[batch(), 8.into()]);
+    let x = cell.input("x", &[batch(), 8.into()]);
+    let z = residual_cell(&mut cell, &h, &x);
+    let keep = cell.node("Identity", "cell.keep", &[&cond], &[]);
+    let y = cell.node("Identity", "cell.y", &[&z], &[]);
+    cell.output(&keep);
+    cell.output(&z);
+    cell.output(&y);
+    let mut body = cell.finish().graph.expect("a built model has a graph");
+    // `x` is the outer graph's.
+    body.input.retain(|i| i.name != "x");
+    let mut b = ModelBuilder::new("loop_recurrence", 17);
+    b.input("x", &[batch(), 8.into()]);
+    b.input("h0", &[batch(), 8.into()]);
+    b.typed_input("steps", int64, &[]);
+    let mut model = b.finish();
+    let graph = model.graph.as_mut().expect("a built model has a graph");
+    graph.output.push(renamed(&body.output[1], "h_last"));
+    let mut hs = renamed(&body.output[1], "hs");
+    if let Some(shunt::proto::TypeProto {
+        value: Some(shunt::proto::type_proto::Value::TensorType(t)),
+        ..
+    }) = hs.r#type.as_mut()
+    {
+        // [trips, batch, 8]: the trips are known only when it runs.
+        if let Some(shape) = t.shape.as_mut() {
+            shape.dim.insert(
+                0,
+                shunt::proto::tensor_shape_proto::Dimension {
+                    value: Some(shunt::proto::tensor_shape_proto::dimension::Value::DimParam(
+                        "trips".to_owned(),
+                    )),
+                    ..Default::default()
+                },
+            );
+        }
+    }
+    graph.output.push(hs);
+    graph.node.push(NodeProto {
+        op_type: "Loop".to_owned(),
+        name: "recur".to_owned(),
+        input: vec!["steps".to_owned(), String::new(), "h0".to_owned()],
+        output: vec!["h_last".to_owned(), "hs".to_owned()],
+        attribute: vec![graph_attr("body", body)],
+        ..NodeProto::default()
+    });
+    model
 }
 
 /// A converter's output: every initializer of `model` becomes a Constant

@@ -43,6 +43,22 @@ def main():
         state=rng.standard_normal((2, SAMPLES, 16)).astype(np.float32),
         sr=np.array(16000, dtype=np.int64),
     )
+    # fixtures/structure/if_sample_rate.onnx: input [N, 64], sr a 0-d int64
+    # that takes the If's then_branch (sr == 16000).
+    rng = np.random.default_rng(15)
+    np.savez(
+        os.path.join(OUT, "if_sample_rate.npz"),
+        input=rng.standard_normal((SAMPLES, 64)).astype(np.float32),
+        sr=np.array(16000, dtype=np.int64),
+    )
+    # fixtures/structure/scan_recurrence.onnx: x [5 steps, N, 8] (samples on
+    # axis 1), h0 [N, 8].
+    rng = np.random.default_rng(16)
+    np.savez(
+        os.path.join(OUT, "scan_recurrence.npz"),
+        x=rng.standard_normal((5, SAMPLES, 8)).astype(np.float32),
+        h0=rng.standard_normal((SAMPLES, 8)).astype(np.float32),
+    )
 
     # fixtures/text_postnorm.onnx: input_ids [N, 8] int64 into a 50-row
     # table, attention_mask [N, 8] float (1 = attend); samples end with 0..3

@@ -2,7 +2,7 @@
 
 Usage:
     python tests/reference/stats.py MODEL.onnx INPUTS.npy|INPUTS.npz OUT.json [--check-reference]
-        [--batch-axis NAME=AXIS ...]
+        [--batch-axis NAME=AXIS ...] [--control-flow]
 
 The model is rewritten with the onnx package so that the tensors a residual
 audit looks at become extra graph outputs:
@@ -23,6 +23,15 @@ in float64
 - ``tensors[name].rms[s]`` = sqrt(mean(x**2)) over all elements of sample s,
 - ``adds[output].cosine[s]`` = dot(a, b) / (|a| |b|) of the node's two inputs
   when they have the same shape (``null`` when either is all zeros).
+
+With ``--control-flow`` the tensors inside control flow are brought out
+first, with the onnx package: every ``If`` of the main graph is replaced by
+the branch its condition takes on the first sample (the condition computed
+by onnxruntime, and the inlined model's outputs checked against the
+original's on that sample), and every ``Scan`` of the main graph gets each
+tensor its body would watch (the rules above, applied to the body) as an
+extra scan output, stacked over the steps; its statistics are then over all
+steps of the sample, under the body's own tensor name.
 
 The JSON also records the versions of python, numpy, onnx and onnxruntime.
 With ``--check-reference`` the same runs are repeated with
@@ -108,6 +117,88 @@ def exposed(model, names):
     return m
 
 
+def constant_names(g):
+    names = {i.name for i in g.initializer}
+    return names | {o for n in g.node if n.op_type == "Constant" for o in n.output}
+
+
+def body_watched(body):
+    """The tensors and merges of a Scan body, by the rules of watched()."""
+    constants = constant_names(body)
+    consumers = {}
+    for n in body.node:
+        for x in set(n.input):
+            if x:
+                consumers[x] = consumers.get(x, 0) + 1
+    merges, names = [], []
+    for n in body.node:
+        if n.op_type in ("Add", "Sum") and len(n.input) >= 2:
+            if not any(x in constants for x in n.input):
+                merges.append(n)
+                names.extend(n.input)
+                names.append(n.output[0])
+        for o in n.output:
+            if consumers.get(o, 0) > 1:
+                names.append(o)
+    names.extend(i.name for i in body.input if consumers.get(i.name, 0) > 1)
+    seen = set()
+    return [x for x in names if x and not (x in seen or seen.add(x))], merges
+
+
+def expose_scans(model):
+    """Every Scan body's watched tensors as extra scan outputs named NAME::steps."""
+    m = onnx.ModelProto()
+    m.CopyFrom(model)
+    names, merges = [], []
+    for node in m.graph.node:
+        if node.op_type != "Scan":
+            continue
+        body = next(a.g for a in node.attribute if a.name == "body")
+        inner, adds = body_watched(body)
+        for name in inner:
+            body.node.append(helper.make_node("Identity", [name], [name + "::step"]))
+            body.output.append(helper.make_tensor_value_info(name + "::step", onnx.TensorProto.FLOAT, None))
+            node.output.append(name + "::steps")
+        for a in node.attribute:
+            if a.name in ("scan_output_axes", "scan_output_directions"):
+                a.ints.extend([0] * len(inner))
+        names.extend(inner)
+        merges.extend(adds)
+    return m, names, merges
+
+
+def inline_ifs(model, feed, axes):
+    """Each If of the main graph replaced by the branch it takes on sample 0."""
+    m = onnx.ModelProto()
+    m.CopyFrom(model)
+    ifs = [n for n in m.graph.node if n.op_type == "If"]
+    if not ifs:
+        return m
+    probe = exposed(model, [n.input[0] for n in ifs])
+    first = {k: sample(v, 0, axes[k]) for k, v in feed.items()}
+    sess = ort.InferenceSession(probe.SerializeToString(), providers=["CPUExecutionProvider"])
+    conds = dict(zip([n.input[0] for n in ifs], sess.run([n.input[0] for n in ifs], first)))
+    for node in ifs:
+        taken = "then_branch" if bool(np.asarray(conds[node.input[0]]).reshape(-1)[0]) else "else_branch"
+        body = next(a.g for a in node.attribute if a.name == taken)
+        at = list(m.graph.node).index(node)
+        new = list(body.node) + [
+            helper.make_node("Identity", [b.name], [o], name=f"{node.name}/inlined/{k}")
+            for k, (b, o) in enumerate(zip(body.output, node.output)) if o
+        ]
+        del m.graph.node[at]
+        for k, n in enumerate(new):
+            m.graph.node.insert(at + k, n)
+        m.graph.initializer.extend(body.initializer)
+    outs = [o.name for o in model.graph.output]
+    want = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"]).run(outs, first)
+    got = ort.InferenceSession(m.SerializeToString(), providers=["CPUExecutionProvider"]).run(outs, first)
+    for o, a, b in zip(outs, want, got):
+        if not np.allclose(a, b, rtol=1e-6, atol=0):
+            raise SystemExit(f"the inlined model's output '{o}' differs from the original's")
+    return m
+
+
 def load_feed(path, model_inputs, model, axes):
     decl = {i.name: i.type.tensor_type.elem_type for i in model.graph.input}
     if path.endswith(".npz"):
@@ -182,6 +273,7 @@ def run_ort(model, feed, samples, names, axes):
     for s in range(samples):
         one = {k: sample(v, s, axes[k]) for k, v in feed.items()}
         values = dict(zip(outs, sess.run(outs, one)))
+        values.update({k[: -len("::steps")]: v for k, v in values.items() if k.endswith("::steps")})
         values.update(one)
         runs.append({n: values[n] for n in names})
     return runs
@@ -196,6 +288,7 @@ def run_reference(model, feed, samples, names, axes):
     for s in range(samples):
         one = {k: sample(v, s, axes[k]) for k, v in feed.items()}
         values = dict(zip(outs, ev.run(outs, one)))
+        values.update({k[: -len("::steps")]: v for k, v in values.items() if k.endswith("::steps")})
         values.update(one)
         runs.append({n: values[n] for n in names})
     return runs
@@ -223,6 +316,7 @@ def main():
     p.add_argument("inputs")
     p.add_argument("out")
     p.add_argument("--check-reference", action="store_true")
+    p.add_argument("--control-flow", action="store_true")
     p.add_argument(
         "--batch-axis",
         action="append",
@@ -233,13 +327,23 @@ def main():
     args = p.parse_args()
 
     model = onnx.load(args.model)
-    inputs, names, merges = watched(model)
+    inputs, _, _ = watched(model)
     axes = {}
     for item in args.batch_axis:
         name, axis = item.split("=")
         axes[name] = None if axis == "none" else int(axis)
     feed, samples = load_feed(args.inputs, inputs, model, axes)
+    steps = []
+    if args.control_flow:
+        model, steps, step_merges = expose_scans(inline_ifs(model, feed, axes))
+    inputs, names, merges = watched(model)
     m = exposed(model, names)
+    names += steps
+    m.graph.output.extend(
+        helper.make_tensor_value_info(n + "::steps", onnx.TensorProto.FLOAT, None) for n in steps
+    )
+    if steps:
+        merges += step_merges
     tensors, adds = statistics(run_ort(m, feed, samples, names, axes), names, merges)
     doc = {
         "model": args.model,
