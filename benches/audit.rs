@@ -63,6 +63,7 @@ fn audit_config() -> AuditConfig {
         inputs: InputConfig::standard(BATCH),
         findings: shunt::findings::FindingConfig::STANDARD,
         influence: None,
+        headroom: shunt::findings::HeadroomConfig::STANDARD,
     }
 }
 

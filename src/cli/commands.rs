@@ -16,7 +16,7 @@ use crate::audit::{self, AuditConfig};
 use crate::batch;
 use crate::compare::{self, CompareConfig, Tolerance};
 use crate::expect;
-use crate::findings::FindingConfig;
+use crate::findings::{FindingConfig, HeadroomConfig};
 use crate::probe::inputs::InputConfig;
 use crate::report::Report;
 use crate::report::batch::BatchReport;
@@ -69,11 +69,15 @@ pub(super) fn audit(a: &AuditArgs, argv: &[OsString]) -> anyhow::Result<u8> {
     if a.no_run && a.influence.config()?.is_some() {
         bail!("--no-run cannot be combined with --knockout or --gain, which run the model");
     }
+    if a.no_run && a.headroom.precision.is_some() {
+        bail!("--no-run cannot be combined with --precision, whose headroom is measured by a run");
+    }
     let config = AuditConfig {
         open: a.limits.config(),
         inputs: if a.no_run { no_inputs() } else { a.inputs.config()? },
         findings,
         influence: a.influence.config()?,
+        headroom: a.headroom.config()?,
     };
     if is_batch(&a.models) {
         let job = |path: &Path| audit_one(path, a.no_run, &config, &crate::probe::Silent);
@@ -156,6 +160,7 @@ pub(super) fn verify(a: &VerifyArgs) -> anyhow::Result<u8> {
                 inputs: a.inputs.config()?,
                 findings: FindingConfig::STANDARD,
                 influence: None,
+                headroom: HeadroomConfig::STANDARD,
             };
             let bar = progress::Bar::new(a.quiet);
             let outcome = audit::audit_file(&a.model, &config, &bar)?;
@@ -193,8 +198,10 @@ pub(super) fn compare(a: &CompareArgs) -> anyhow::Result<u8> {
             inputs: a.inputs.config()?,
             findings: FindingConfig::STANDARD,
             influence: None,
+            headroom: HeadroomConfig::STANDARD,
         },
         run: !a.no_run,
+        error_above: a.error_above,
     };
     let bar = progress::Bar::new(a.quiet);
     let result = compare::compare_files(&a.a, &a.b, &config, &bar);

@@ -13,7 +13,10 @@ use crate::vocab::PairStatus;
 /// Identifies the JSON document of a comparison.
 pub const COMPARE_SCHEMA: &str = "shunt/compare";
 /// Version of the `shunt/compare` JSON schema.
-pub const COMPARE_SCHEMA_VERSION: u32 = 1;
+///
+/// Version 2 added `BlockPair::error` and `Comparison::errors`: where along
+/// depth B's tensors depart from A's (issue 14).
+pub const COMPARE_SCHEMA_VERSION: u32 = 2;
 
 /// The comparison of model A (the reference) with model B.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -38,6 +41,63 @@ pub struct Comparison {
     /// Why the comparison fails (structure, or numbers beyond the given
     /// tolerances); empty when A and B match.
     pub failures: Vec<String>,
+    /// Where along depth B's tensors depart from A's, when both ran.
+    pub errors: Option<ErrorLocalisation>,
+}
+
+/// Where B's error is born and how it grows along depth.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ErrorLocalisation {
+    /// Whether the aligned blocks' tensors were compared (both models ran
+    /// the same passes on the same inputs).
+    pub measured: bool,
+    /// Why they were not, when they were not.
+    pub note: Option<String>,
+    /// The error is born at the first aligned block whose merge-output
+    /// error is above this (or that holds a NaN or an infinity).
+    pub threshold: f64,
+    /// That block, if any.
+    pub born_at: Option<ErrorBirth>,
+    /// Output error of the last compared pair over the first's (both
+    /// finite, the first above 0): the growth along depth.
+    pub growth: Option<f64>,
+    /// Aligned pairs compared.
+    pub pairs: usize,
+}
+
+/// The block where B's error first exceeds the threshold.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ErrorBirth {
+    /// Block id in A.
+    pub a: usize,
+    /// Block id in B.
+    pub b: usize,
+    /// The merge node's name in A.
+    pub merge_a: String,
+    /// Its merge-output error (`null` when only non-finite values differ).
+    pub output: Option<f64>,
+    /// NaN or infinite values at the merge in A or B.
+    pub non_finite: u64,
+}
+
+/// The difference of one aligned pair's tensors, over all samples.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BlockError {
+    /// `‖B − A‖ / ‖A‖` of the merge output over the values both hold as
+    /// finite numbers.
+    pub output: Option<f64>,
+    /// The same for the shortcut at the merge.
+    pub shortcut: Option<f64>,
+    /// The same for the branch at the merge (its inputs summed).
+    pub branch: Option<f64>,
+    /// Positions where A or B holds a NaN or an infinity (output, shortcut
+    /// and branch together).
+    pub non_finite: u64,
+    /// This pair's output error over the previous compared pair's.
+    pub growth: Option<f64>,
 }
 
 /// One of the two models.
@@ -101,6 +161,8 @@ pub struct BlockPair {
     pub ratio_delta: Option<f64>,
     /// `ratio_b / ratio_a - 1`.
     pub ratio_change: Option<f64>,
+    /// The difference of B's tensors from A's, when they were compared.
+    pub error: Option<BlockError>,
 }
 
 /// How closely one output of B follows the same output of A.
@@ -124,6 +186,37 @@ pub struct OutputAgreement {
     pub top1: Option<f64>,
     /// Why the output could not be compared, if it could not.
     pub note: Option<String>,
+}
+
+/// Where the error is born and its growth, in one line.
+pub fn error_summary(e: &ErrorLocalisation) -> String {
+    if !e.measured {
+        return format!(
+            "error along depth: not measured: {}",
+            terminal_safe(e.note.as_deref().unwrap_or("unknown reason"))
+        );
+    }
+    let born = match &e.born_at {
+        Some(b) => {
+            let what = match (b.output, b.non_finite) {
+                (_, n) if n > 0 => format!("{n} non-finite value(s)"),
+                (Some(o), _) => format!("merge-output error {o:.3e}"),
+                (None, _) => "an error".to_owned(),
+            };
+            format!(
+                "born at block {} of A ({}) -> {} of B: {what}, above {}",
+                b.a,
+                terminal_safe(&b.merge_a),
+                b.b,
+                e.threshold
+            )
+        }
+        None => format!("no aligned block's merge-output error is above {}", e.threshold),
+    };
+    let growth = e.growth.map_or(String::new(), |g| {
+        format!("; grows x{g:.3} from the first compared block to the last")
+    });
+    format!("error along depth ({} pairs): {born}{growth}", e.pairs)
 }
 
 fn opt(x: Option<usize>) -> String {
@@ -176,6 +269,10 @@ pub fn render(c: &Comparison, out: &mut dyn io::Write) -> io::Result<()> {
     if c.run.is_some() {
         header.extend(["ratio A", "ratio B", "change"]);
     }
+    let errors = c.errors.as_ref().is_some_and(|e| e.measured);
+    if errors {
+        header.extend(["error out", "short", "branch", "growth"]);
+    }
     t.set_header(header);
     for p in &c.blocks {
         let structure = match p.status {
@@ -196,6 +293,18 @@ pub fn render(c: &Comparison, out: &mut dyn io::Write) -> io::Result<()> {
             row.push(num4(p.ratio_a));
             row.push(num4(p.ratio_b));
             row.push(p.ratio_change.map_or("-".to_owned(), |x| format!("{:+.1}%", x * 100.0)));
+        }
+        if errors {
+            let e = p.error.as_ref();
+            let sci = |v: Option<f64>| v.map_or("-".to_owned(), |v| format!("{v:.2e}"));
+            let mut out = sci(e.and_then(|e| e.output));
+            if e.is_some_and(|e| e.non_finite > 0) {
+                out.push_str(" (non-finite)");
+            }
+            row.push(out);
+            row.push(sci(e.and_then(|e| e.shortcut)));
+            row.push(sci(e.and_then(|e| e.branch)));
+            row.push(e.and_then(|e| e.growth).map_or("-".to_owned(), |g| format!("x{g:.2}")));
         }
         t.add_row(row);
     }
@@ -225,6 +334,9 @@ pub fn render(c: &Comparison, out: &mut dyn io::Write) -> io::Result<()> {
             worst.1.ratio_change.unwrap_or(0.0) * 100.0,
             opt(worst.1.a)
         );
+    }
+    if let Some(e) = &c.errors {
+        let _ = writeln!(s, "{}", error_summary(e));
     }
     for o in &c.outputs {
         let mut parts = vec![];
