@@ -307,6 +307,19 @@ pub(super) enum TextFormat {
     Json,
 }
 
+/// The formats of a comparison.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub(super) enum CompareFormat {
+    /// A table for people.
+    Table,
+    /// The versioned JSON document described in docs/formats.md.
+    Json,
+    /// One self-contained HTML page with the error along depth (use with --output).
+    Html,
+    /// Markdown for a pull-request comment, at most 60,000 bytes.
+    Markdown,
+}
+
 #[derive(Debug, clap::Args)]
 pub(super) struct PinArgs {
     /// The ONNX model file.
@@ -351,8 +364,8 @@ pub(super) struct CompareArgs {
     /// The model compared with it (B).
     pub b: PathBuf,
     /// Output format.
-    #[arg(long, value_enum, default_value_t = TextFormat::Table)]
-    pub format: TextFormat,
+    #[arg(long, value_enum, default_value_t = CompareFormat::Table)]
+    pub format: CompareFormat,
     /// Write the comparison to this file instead of standard output.
     #[arg(long, short = 'o', value_name = "FILE")]
     pub output: Option<PathBuf>,

@@ -8,8 +8,8 @@ use std::path::{Path, PathBuf};
 use anyhow::{Context, bail};
 
 use super::args::{
-    AuditArgs, CompareArgs, LowerArgs, ManyArgs, OutputArgs, PinArgs, ReportFormat, ScanArgs,
-    TextFormat, VerifyArgs,
+    AuditArgs, CompareArgs, CompareFormat, LowerArgs, ManyArgs, OutputArgs, PinArgs, ReportFormat,
+    ScanArgs, TextFormat, VerifyArgs,
 };
 use super::{ERRORS, FINDINGS, SUCCESS, convert, output, progress};
 use crate::audit::{self, AuditConfig};
@@ -210,8 +210,14 @@ pub(super) fn compare(a: &CompareArgs) -> anyhow::Result<u8> {
     let tolerance = Tolerance { max_rel_l2: a.max_rel_l2, max_ratio_change: a.max_ratio_change };
     c.failures = compare::failures(&c, &tolerance);
     output::write(a.output.as_deref(), &[&a.a, &a.b], |w| match a.format {
-        TextFormat::Table => crate::report::compare::render(&c, w),
-        TextFormat::Json => crate::report::json::render(&c, w),
+        CompareFormat::Table => crate::report::compare::render(&c, w),
+        CompareFormat::Json => crate::report::json::render(&c, w),
+        CompareFormat::Html => crate::report::compare::render_html(&c, w),
+        CompareFormat::Markdown => crate::report::compare::render_markdown(
+            &c,
+            crate::report::markdown::DEFAULT_MAX_BYTES,
+            w,
+        ),
     })?;
     Ok(if c.failures.is_empty() { SUCCESS } else { FINDINGS })
 }

@@ -369,3 +369,293 @@ pub fn render(c: &Comparison, out: &mut dyn io::Write) -> io::Result<()> {
     }
     out.write_all(s.as_bytes())
 }
+
+/// The table's cells of every pair, twelve per row: ids, stage, merge,
+/// structure, ratios and change, the three errors and the growth.
+fn cells(c: &Comparison) -> Vec<(bool, Vec<String>)> {
+    let born = c.errors.as_ref().and_then(|e| e.born_at.as_ref()).map(|b| (b.a, b.b));
+    let sci = |v: Option<f64>| v.map_or("-".to_owned(), |v| format!("{v:.2e}"));
+    c.blocks
+        .iter()
+        .map(|p| {
+            let structure = match p.status {
+                PairStatus::Same => "same".to_owned(),
+                PairStatus::Changed => p.differences.join("; "),
+                PairStatus::OnlyA => format!("only in A: {}", p.structure),
+                PairStatus::OnlyB => format!("only in B: {}", p.structure),
+            };
+            let merge = p.merge_a.clone().or_else(|| p.merge_b.clone().map(|m| format!("(B) {m}")));
+            let e = p.error.as_ref();
+            let mut out = sci(e.and_then(|e| e.output));
+            if e.is_some_and(|e| e.non_finite > 0) {
+                out.push_str(" (non-finite)");
+            }
+            let is_born = born.is_some() && p.a.zip(p.b) == born;
+            (
+                is_born,
+                vec![
+                    opt(p.a),
+                    opt(p.b),
+                    opt(p.stage),
+                    terminal_safe(&merge.unwrap_or_default()),
+                    terminal_safe(&structure),
+                    num4(p.ratio_a),
+                    num4(p.ratio_b),
+                    p.ratio_change.map_or("-".to_owned(), |x| format!("{:+.1}%", x * 100.0)),
+                    out,
+                    sci(e.and_then(|e| e.shortcut)),
+                    sci(e.and_then(|e| e.branch)),
+                    e.and_then(|e| e.growth).map_or("-".to_owned(), |g| format!("x{g:.2}")),
+                ],
+            )
+        })
+        .collect()
+}
+
+/// The lines under the table: outputs' agreement and the verdict.
+fn closing_lines(c: &Comparison) -> Vec<String> {
+    let mut lines = Vec::new();
+    for o in &c.outputs {
+        let mut parts = vec![];
+        if let Some(e) = o.rel_l2 {
+            parts.push(format!("relative L2 {e:.3e}"));
+        }
+        if let Some(x) = o.cosine {
+            parts.push(format!("cosine {x:.6}"));
+        }
+        if let (Some(t1), Some(k)) = (o.top1, o.classes) {
+            parts.push(format!("top-1 agreement {:.1}% (over {k} classes)", t1 * 100.0));
+        }
+        if let Some(n) = &o.note {
+            parts.push(terminal_safe(n));
+        }
+        lines.push(format!(
+            "output '{}' vs '{}': {}",
+            terminal_safe(&o.a),
+            terminal_safe(&o.b),
+            parts.join(", ")
+        ));
+    }
+    for f in &c.failures {
+        lines.push(format!("fails: {}", terminal_safe(f)));
+    }
+    lines
+}
+
+fn verdict(c: &Comparison) -> (String, &'static str) {
+    if c.failures.is_empty() {
+        ("match".to_owned(), "good")
+    } else {
+        (format!("{} reason(s) to fail", c.failures.len()), "bad")
+    }
+}
+
+fn summary(c: &Comparison) -> String {
+    c.errors.as_ref().map_or_else(
+        || "error along depth: not measured (the models were not run)".to_owned(),
+        error_summary,
+    )
+}
+
+struct PageRow {
+    born: bool,
+    cells: Vec<String>,
+}
+
+#[derive(askama::Template)]
+#[template(path = "compare.html")]
+struct Page {
+    title: String,
+    verdict: String,
+    verdict_class: &'static str,
+    summary: String,
+    facts: Vec<(&'static str, String)>,
+    plot: Option<crate::report::plot::Plot>,
+    caption: String,
+    header: Vec<&'static str>,
+    rows: Vec<PageRow>,
+    lines: Vec<String>,
+    version: &'static str,
+}
+
+const HEADER: [&str; 12] = [
+    "A",
+    "B",
+    "stage",
+    "merge in A",
+    "structure",
+    "ratio A",
+    "ratio B",
+    "change",
+    "error out",
+    "short",
+    "branch",
+    "growth",
+];
+
+/// The error along depth: one point per block of A, the merge-output
+/// error (marks) and the branch error (dashed), against the threshold.
+fn error_plot(c: &Comparison) -> io::Result<Option<crate::report::plot::Plot>> {
+    use crate::report::marks;
+    use crate::report::plot::{self, Companion, PlotSpec, Point, Threshold};
+    let Some(e) = c.errors.as_ref().filter(|e| e.measured && e.pairs > 0) else {
+        return Ok(None);
+    };
+    let by_a = |id: usize| c.blocks.iter().find(|p| p.a == Some(id));
+    let points: Vec<Point> = (1..=c.a.blocks)
+        .map(|id| {
+            let p = by_a(id);
+            let err = p.and_then(|p| p.error.as_ref());
+            let value = err.and_then(|e| e.output);
+            let non_finite = err.is_some_and(|e| e.non_finite > 0);
+            let born = e.born_at.as_ref().is_some_and(|b| b.a == id);
+            let mark = if non_finite {
+                marks::NON_FINITE
+            } else if value.is_some_and(|v| v > e.threshold) {
+                marks::RANGE
+            } else {
+                marks::OK
+            };
+            let shown = match (value, err) {
+                (Some(v), _) => format!("merge-output error {v:.3e}"),
+                (None, Some(_)) => "merge-output error not comparable".to_owned(),
+                (None, None) => "not paired with a block of B".to_owned(),
+            };
+            let name = p.and_then(|p| p.merge_a.as_deref()).unwrap_or("");
+            Point {
+                block: id,
+                value: err.and(value),
+                mark,
+                label: if born { format!("#{id} error born here") } else { String::new() },
+                title: format!(
+                    "#{id} {}\n{shown}{}",
+                    terminal_safe(name),
+                    if non_finite { "; non-finite values" } else { "" }
+                ),
+            }
+        })
+        .collect();
+    let spec = PlotSpec {
+        id: "errors",
+        y_desc: "relative L2 error, B against A",
+        points,
+        thresholds: vec![Threshold {
+            value: e.threshold,
+            label: format!("born above {}", e.threshold),
+            colour: plotters::style::RGBColor(0xD5, 0x5E, 0x00),
+            below: false,
+        }],
+        stages: Vec::new(),
+        companion: Some(Companion {
+            label: "branch error",
+            main_label: "merge-output error",
+            values: (1..=c.a.blocks)
+                .map(|id| by_a(id).and_then(|p| p.error.as_ref()).and_then(|e| e.branch))
+                .collect(),
+        }),
+    };
+    plot::draw(&spec).map(Some)
+}
+
+/// Renders a comparison as one self-contained HTML page with the error
+/// along depth.
+pub fn render_html(c: &Comparison, out: &mut dyn io::Write) -> io::Result<()> {
+    use askama::Template;
+    let (verdict, verdict_class) = verdict(c);
+    let mut facts = vec![
+        ("A", format!("{} ({} blocks)", terminal_safe(&c.a.path), c.a.blocks)),
+        ("B", format!("{} ({} blocks)", terminal_safe(&c.b.path), c.b.blocks)),
+    ];
+    if let Some(r) = &c.run {
+        facts.push((
+            "run",
+            format!(
+                "the same {} sample(s) with {}, seed {}",
+                r.samples,
+                terminal_safe(&r.engine),
+                r.seed
+            ),
+        ));
+    }
+    facts.push(("structural differences", c.structural_differences.to_string()));
+    let plot = error_plot(c)?;
+    let caption = match &c.errors {
+        Some(e) if e.measured => format!(
+            "‖B − A‖ / ‖A‖ of each aligned block's merge output over all samples (marks, solid \
+             line) and of its branch (dashed), log scale, by block of A. The error is born at \
+             the first block above {} or holding non-finite values.",
+            e.threshold
+        ),
+        Some(e) => format!("Not measured: {}", terminal_safe(e.note.as_deref().unwrap_or(""))),
+        None => "Not measured: the models were not run.".to_owned(),
+    };
+    let page = Page {
+        title: format!(
+            "shunt compare · {} → {}",
+            terminal_safe(&file_name(&c.a.path)),
+            terminal_safe(&file_name(&c.b.path))
+        ),
+        verdict,
+        verdict_class,
+        summary: summary(c),
+        facts,
+        plot,
+        caption,
+        header: HEADER.to_vec(),
+        rows: cells(c).into_iter().map(|(born, cells)| PageRow { born, cells }).collect(),
+        lines: closing_lines(c),
+        version: env!("CARGO_PKG_VERSION"),
+    };
+    let text = page.render().map_err(|e| io::Error::other(format!("rendering HTML: {e}")))?;
+    out.write_all(text.as_bytes())
+}
+
+fn file_name(path: &str) -> String {
+    std::path::Path::new(path)
+        .file_name()
+        .map_or_else(|| path.to_owned(), |n| n.to_string_lossy().into_owned())
+}
+
+#[derive(askama::Template)]
+#[template(path = "compare.md")]
+struct Doc<'a> {
+    a: String,
+    b: String,
+    verdict: String,
+    summary: String,
+    rows: &'a [PageRow],
+    elided: usize,
+    max_bytes: usize,
+    lines: Vec<String>,
+}
+
+/// Renders a comparison as Markdown for a pull-request comment, at most
+/// `max_bytes` long (rows elided from the end, and the comment says so).
+pub fn render_markdown(
+    c: &Comparison,
+    max_bytes: usize,
+    out: &mut dyn io::Write,
+) -> io::Result<()> {
+    use askama::Template;
+    let rows: Vec<PageRow> =
+        cells(c).into_iter().map(|(born, cells)| PageRow { born, cells }).collect();
+    let mut keep = rows.len();
+    loop {
+        let doc = Doc {
+            a: file_name(&c.a.path),
+            b: file_name(&c.b.path),
+            verdict: verdict(c).0,
+            summary: summary(c),
+            rows: &rows[..keep],
+            elided: rows.len() - keep,
+            max_bytes,
+            lines: closing_lines(c),
+        };
+        let text =
+            doc.render().map_err(|e| io::Error::other(format!("rendering Markdown: {e}")))?;
+        if text.len() <= max_bytes || keep == 0 {
+            return out.write_all(text.as_bytes());
+        }
+        keep = keep.saturating_sub((keep / 8).max(1));
+    }
+}
