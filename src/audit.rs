@@ -133,6 +133,9 @@ pub struct PairedAudit {
     pub not_paired: Option<String>,
 }
 
+/// Pairs the blocks of two structural reports: `(block of A, block of B)`, 0-based.
+pub(crate) type Aligner<'a> = dyn Fn(&Report, &Report) -> Vec<(usize, usize)> + 'a;
+
 /// Measures two opened models and assembles both reports. When their plans
 /// split the samples into the same passes, they run pass by pass and the
 /// aligned blocks (`align` pairs them from each model's structure, before
@@ -144,7 +147,7 @@ pub(crate) fn measured_pair(
     mut b: Opened,
     plan_b: &InputPlan,
     config: &AuditConfig,
-    align: &dyn Fn(&Report, &Report) -> Vec<(usize, usize)>,
+    align: &Aligner<'_>,
     progress: &dyn Progress,
 ) -> Result<PairedAudit> {
     let same_passes = plan_a.passes == plan_b.passes && plan_a.pass_batch == plan_b.pass_batch;
