@@ -334,7 +334,7 @@ fn blocks_selection_costs_one_pass_per_selected_block() {
     ]);
     assert_eq!(run.code, 0, "{}", run.stderr);
     let r: Report = serde_json::from_str(&run.stdout).unwrap();
-    assert_eq!(r.schema_version, 4);
+    assert_eq!(r.schema_version, 5);
     let inf = influence(&r);
     let k = inf.knockout.as_ref().unwrap();
     assert_eq!(k.blocks, vec![2, 5, 6]);
