@@ -523,7 +523,7 @@ fn plots(r: &Report) -> io::Result<Vec<PlotView>> {
             t(&h.chosen_by),
             h.format
         ),
-        None => "The largest |x| of each merge output over all samples (marks, solid line) and                  its RMS (dashed), log scale. `--precision fp16|bf16|int8` draws a format's                  limits here and reports each block's headroom."
+        None => "The largest |x| of each merge output over all samples (marks, solid line) and                  its RMS (dashed), log scale. `--precision fp16|bf16|int8` draws a format's                  limits are drawn here and each block's headroom is reported."
             .to_owned(),
     };
     let banner = model_findings(r);
