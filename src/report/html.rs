@@ -518,12 +518,16 @@ fn plots(r: &Report) -> io::Result<Vec<PlotView>> {
     };
     let range_caption = match &r.headroom {
         Some(h) => format!(
-            "The largest |x| of each merge output over all samples (marks, solid line) and its              RMS (dashed), log scale, against {}'s limits ({}). A value beyond the upper line              would be infinite in {}; below the lower line it loses precision as a subnormal.",
+            "The largest |x| of each merge output over all samples (marks, solid line) and its \
+             RMS (dashed), log scale, against {}'s limits ({}). A value beyond the upper line \
+             would be infinite in {}; below the lower line it loses precision as a subnormal.",
             h.format,
             t(&h.chosen_by),
             h.format
         ),
-        None => "The largest |x| of each merge output over all samples (marks, solid line) and                  its RMS (dashed), log scale. `--precision fp16|bf16|int8` draws a format's                  limits are drawn here and each block's headroom is reported."
+        None => "The largest |x| of each merge output over all samples (marks, solid line) and \
+                 its RMS (dashed), log scale. With --precision fp16, bf16 or int8 the format's \
+                 limits are drawn here and each block's headroom is reported."
             .to_owned(),
     };
     let banner = model_findings(r);
