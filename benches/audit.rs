@@ -20,6 +20,10 @@
 //!   timing [`Progress`].
 //!
 //! Everything is wall clock on one thread (tract runs on one).
+//!
+//! `--prepare` writes the files and stops; `--child audit PATH` runs one
+//! audit child, so children of two builds can be interleaved by hand
+//! (benches/RESULTS.md).
 #![allow(clippy::print_stdout, clippy::print_stderr)]
 
 use std::cell::RefCell;
@@ -67,6 +71,7 @@ fn audit_config() -> AuditConfig {
         findings: shunt::findings::FindingConfig::STANDARD,
         influence: None,
         budget: shunt::parallel::Budget::ONE_THREAD,
+        headroom: shunt::findings::HeadroomConfig::STANDARD,
     }
 }
 
@@ -407,6 +412,11 @@ fn main() {
         return;
     }
     let path = prepare_files();
+    if args.iter().any(|a| a == "--prepare") {
+        // Only the files, for interleaving children of two builds by hand.
+        println!("{}", path.display());
+        return;
+    }
 
     let (mut plain, mut recipe, mut audits) = (Vec::new(), Vec::new(), Vec::new());
     for round in 0..ROUNDS {

@@ -2,7 +2,7 @@
 //!
 //! Run `cargo run --release --example fixtures` from the repository root, or
 //! pass another target folder as the only argument. The list of fixtures
-//! lives in `shunt_testkit::fixtures` (and `::structure`), so the integration tests rebuild the
+//! lives in `shunt_testkit::fixtures` (and `::structure`, `::precision`), so the integration tests rebuild the
 //! same bytes in memory and fail when a committed file is stale.
 
 use std::io::Write;
@@ -17,6 +17,7 @@ fn main() -> ExitCode {
     let mut stdout = std::io::stdout().lock();
     let written = shunt_testkit::fixtures::write_all(&dir).and_then(|mut paths| {
         paths.extend(shunt_testkit::structure::write_all(&dir)?);
+        paths.extend(shunt_testkit::precision::write_all(&dir)?);
         Ok(paths)
     });
     match written {

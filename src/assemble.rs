@@ -8,7 +8,10 @@
 
 use std::collections::BTreeMap;
 
-use crate::findings::{self, BareRunFacts, BlockFacts, FindingConfig, InfluenceFacts};
+use crate::findings::{
+    self, BareRunFacts, BlockFacts, FindingConfig, FormatLimits, HeadroomConfig, HeadroomFacts,
+    InfluenceFacts,
+};
 use crate::graph::{Dim, Graph, NodeId, ValueId};
 use crate::load::tensor;
 use crate::lower::precision::Half;
@@ -19,7 +22,7 @@ use crate::probe::{BlockSamples, ENGINE};
 use crate::proto::ValueInfoProto;
 use crate::report::{self, *};
 use crate::stats::Spread;
-use crate::vocab::Command;
+use crate::vocab::{Command, Precision};
 
 /// A run to report: what was fed, what was measured, and the knockout and
 /// gain options it was measured with.
@@ -30,6 +33,8 @@ pub struct RunFacts<'a> {
     pub measurement: &'a Measurement,
     /// The knockout and gain options, when they ran.
     pub influence: Option<&'a InfluenceConfig>,
+    /// The target format of the headroom section and its thresholds.
+    pub headroom: &'a HeadroomConfig,
 }
 
 /// The report of one model: its structure, and the run when there is one;
@@ -74,12 +79,113 @@ pub fn report(
         }
     }
     set_findings(&mut report, &facts, thresholds);
+    if let Some(m) = measured
+        && let Some(run) = &run
+    {
+        let own = run.measurement.ran_as.as_ref().map(|r| r.half);
+        headroom(&mut report, &m.intact.blocks, run.headroom, own);
+    }
     if let (Some(m), Some(ic)) = (measured, run.as_ref().and_then(|r| r.influence))
         && let Some(inf) = &m.influence
     {
         influence(&mut report, analysis, m, inf, ic);
     }
     report
+}
+
+/// The headroom section and its findings (appended after the others): the
+/// format `--precision` names, else the model's own half-precision type.
+fn headroom(
+    report: &mut Report,
+    blocks: &[BlockSamples],
+    config: &HeadroomConfig,
+    own: Option<Half>,
+) {
+    let (format, chosen_by) = match (config.target, own) {
+        (Some(p), _) => (p, format!("--precision {p}")),
+        (None, Some(Half::Float16)) => {
+            (Precision::Fp16, "the model's own element type, float16".to_owned())
+        }
+        (None, Some(Half::Bfloat16)) => {
+            (Precision::Bf16, "the model's own element type, bfloat16".to_owned())
+        }
+        (None, None) => return,
+    };
+    let limits = FormatLimits::of(format);
+    let rows: Vec<HeadroomRow> = blocks
+        .iter()
+        .enumerate()
+        .map(|(i, s)| {
+            let measured = !s.output_max.is_empty();
+            let largest_seen = s.output_max.iter().copied().fold(0.0, f64::max);
+            let non_finite = s.output_max.iter().any(|v| !v.is_finite());
+            let stats = report.blocks[i].stats.as_ref();
+            let headroom = limits.largest.filter(|_| measured).map(|l| {
+                if non_finite || largest_seen.is_infinite() {
+                    0.0
+                } else if largest_seen > 0.0 {
+                    l / largest_seen
+                } else {
+                    f64::INFINITY
+                }
+            });
+            let headroom = headroom.filter(|h| h.is_finite());
+            let underflow = (format == Precision::Fp16 && measured).then(|| {
+                let n = s.f16_zero.len().max(1) as f64;
+                s.f16_zero.iter().zip(&s.f16_subnormal).map(|(z, u)| z + u).sum::<f64>() / n
+            });
+            let ratio = stats.and_then(|st| st.channel_max_ratio);
+            HeadroomRow {
+                block: i + 1,
+                max_abs: (measured && !non_finite).then_some(largest_seen),
+                rms: stats.and_then(|st| st.output_rms).map(|r| r.mean),
+                headroom,
+                headroom_bits: headroom.filter(|h| *h > 0.0).map(f64::log2),
+                underflow,
+                median_channel_levels: limits
+                    .levels
+                    .zip(ratio)
+                    .map(|(levels, r)| f64::from(levels) / r),
+            }
+        })
+        .collect();
+    let facts: Vec<HeadroomFacts> = rows
+        .iter()
+        .zip(blocks)
+        .map(|(r, s)| HeadroomFacts {
+            headroom: r.headroom,
+            max_abs: (!s.output_max.is_empty())
+                .then(|| s.output_max.iter().copied().fold(0.0, f64::max)),
+            underflow: r.underflow,
+            channel_max_ratio: report.blocks[r.block - 1]
+                .stats
+                .as_ref()
+                .and_then(|st| st.channel_max_ratio),
+        })
+        .collect();
+    for f in findings::headroom(&facts, format, &config.thresholds) {
+        report.findings.push(FindingRow {
+            code: f.code,
+            block: f.block,
+            node: f.block.and_then(|id| report.blocks.get(id - 1)).map(|b| b.merge.clone()),
+            message: f.message,
+        });
+    }
+    let t = &config.thresholds;
+    report.headroom = Some(HeadroomReport {
+        format,
+        chosen_by,
+        largest: limits.largest,
+        smallest_normal: limits.smallest_normal,
+        smallest_subnormal: limits.smallest_subnormal,
+        levels: limits.levels,
+        thresholds: HeadroomThresholdsRow {
+            margin: t.margin,
+            underflow_above: t.underflow_above,
+            outlier_ratio_above: t.outlier_ratio_above,
+        },
+        blocks: rows,
+    });
 }
 
 /// Stages from the shapes the run measured where static shape inference
@@ -507,6 +613,7 @@ fn structure(command: Command, model: ModelInfo, a: &Analysis) -> Report {
             })
             .collect(),
         influence: None,
+        headroom: None,
     }
 }
 fn run_row(input_plan: &InputPlan, f: &FindingConfig) -> RunRow {
@@ -562,6 +669,7 @@ fn stats_row(s: &BlockSamples, dead_below: f64) -> StatsRow {
         let dead = live.iter().filter(|(sc, br)| *br < limit * *sc).count();
         Some(dead as f64 / live.len() as f64)
     });
+    let outlier = crate::stats::channel_outlier(&s.channel_max);
     StatsRow {
         samples: s.output_rms.len(),
         fork_rms: Spread::of(&s.fork_rms),
@@ -576,6 +684,14 @@ fn stats_row(s: &BlockSamples, dead_below: f64) -> StatsRow {
         dead_channel_fraction,
         nan: s.nan,
         inf: s.inf,
+        output_max_abs: Spread::of(&s.output_max),
+        shortcut_max_abs: Spread::of(&s.shortcut_max),
+        branch_max_abs: Spread::of(&s.branch_max),
+        crest_factor: Spread::of(&ratios(&s.output_max, &s.output_rms)),
+        channel_max_ratio: outlier.map(|o| o.0),
+        outlier_channel: outlier.map(|o| o.1),
+        f16_zero: Spread::of(&s.f16_zero),
+        f16_subnormal: Spread::of(&s.f16_subnormal),
     }
 }
 

@@ -7,12 +7,13 @@ use std::path::Path;
 
 use crate::assemble::{self, RunFacts};
 use crate::error::{Error, Result};
-use crate::findings::FindingConfig;
-use crate::measure::{self, InfluenceConfig};
+use crate::findings::{FindingConfig, HeadroomConfig};
+use crate::measure::{self, InfluenceConfig, Measurement};
 use crate::open::{self, OpenConfig, Opened, Purpose};
 use crate::parallel::Budget;
 use crate::probe::Progress;
-use crate::probe::inputs::InputConfig;
+use crate::probe::inputs::{InputConfig, InputPlan};
+use crate::probe::paired::PairErrors;
 use crate::proto::ModelProto;
 use crate::report::Report;
 use crate::vocab::Command;
@@ -30,17 +31,20 @@ pub struct AuditConfig {
     pub influence: Option<InfluenceConfig>,
     /// Threads and memory the run may use (results do not depend on them).
     pub budget: Budget,
+    /// The target format of the headroom section (`--precision`) and its thresholds.
+    pub headroom: HeadroomConfig,
 }
 
 impl AuditConfig {
     /// The documented defaults: the standard limits, inputs and thresholds,
-    /// no knockout or gain.
+    /// no knockout or gain, no target format named.
     pub const STANDARD: AuditConfig = AuditConfig {
         open: OpenConfig::STANDARD,
         inputs: InputConfig::STANDARD,
         findings: FindingConfig::STANDARD,
         influence: None,
         budget: Budget::STANDARD,
+        headroom: HeadroomConfig::STANDARD,
     };
 
     /// [`AuditConfig::STANDARD`].
@@ -108,7 +112,8 @@ pub(crate) fn measured(
         &config.budget,
         progress,
     )?;
-    let run = RunFacts { input_plan, measurement: &measurement, influence };
+    let run =
+        RunFacts { input_plan, measurement: &measurement, influence, headroom: &config.headroom };
     let report = assemble::report(
         Command::Audit,
         &opened.file,
@@ -121,4 +126,93 @@ pub(crate) fn measured(
         Err(e) => (Some(e), Vec::new()),
     };
     Ok(Audit { report, run_error, outputs })
+}
+
+/// Two audits run pass by pass on the same inputs, and the differences of
+/// their aligned blocks (`compare`).
+#[derive(Debug)]
+pub struct PairedAudit {
+    /// Model A's audit.
+    pub a: Audit,
+    /// Model B's audit.
+    pub b: Audit,
+    /// The aligned pairs `(block of A, block of B)`, 0-based, and each one's
+    /// differences; empty when the models were run each on its own.
+    pub errors: Vec<((usize, usize), PairErrors)>,
+    /// Why the differences were not measured, when they were not.
+    pub not_paired: Option<String>,
+}
+
+/// Pairs the blocks of two structural reports: `(block of A, block of B)`, 0-based.
+pub(crate) type Aligner<'a> = dyn Fn(&Report, &Report) -> Vec<(usize, usize)> + 'a;
+
+/// Measures two opened models and assembles both reports. When their plans
+/// split the samples into the same passes, they run pass by pass and the
+/// aligned blocks (`align` pairs them from each model's structure, before
+/// the run) are compared tensor by tensor; otherwise, or when the paired run
+/// fails, each runs on its own and `not_paired` says why.
+pub(crate) fn measured_pair(
+    mut a: Opened,
+    plan_a: &InputPlan,
+    mut b: Opened,
+    plan_b: &InputPlan,
+    config: &AuditConfig,
+    align: &Aligner<'_>,
+    progress: &dyn Progress,
+) -> Result<PairedAudit> {
+    let same_passes = plan_a.passes == plan_b.passes && plan_a.pass_batch == plan_b.pass_batch;
+    if !same_passes {
+        let why = format!(
+            "A runs {} pass(es) of {} and B {} of {}: the blocks' tensors are compared only \
+             when both models run the same passes (try --pass-batch)",
+            plan_a.passes, plan_a.pass_batch, plan_b.passes, plan_b.pass_batch
+        );
+        let ra = measured(a, plan_a, config, progress)?;
+        let rb = measured(b, plan_b, config, progress)?;
+        return Ok(PairedAudit { a: ra, b: rb, errors: Vec::new(), not_paired: Some(why) });
+    }
+    // The structure of each model, to pair blocks before the run.
+    let sa = assemble::report(Command::Audit, &a.file, &a.analysis, None, &config.findings);
+    let sb = assemble::report(Command::Audit, &b.file, &b.analysis, None, &config.findings);
+    let pairs = align(&sa, &sb);
+    drop((sa, sb));
+    let runnable_a = a.take_runnable().expect("a model opened for a run");
+    let runnable_b = b.take_runnable().expect("a model opened for a run");
+    let paired = measure::measure_pair(
+        &runnable_a,
+        &a.analysis,
+        plan_a,
+        &runnable_b,
+        &b.analysis,
+        plan_b,
+        &pairs,
+        progress,
+    );
+    let (ma, mb, errors, not_paired) = match paired {
+        Ok(p) => (p.a, p.b, pairs.into_iter().zip(p.errors).collect(), None),
+        Err(e) => {
+            let why = format!("the paired run failed ({}); each model ran on its own", e.message());
+            let ma =
+                measure::measure(runnable_a, &a.analysis, plan_a, None, &config.budget, progress)?;
+            let mb =
+                measure::measure(runnable_b, &b.analysis, plan_b, None, &config.budget, progress)?;
+            (ma, mb, Vec::new(), Some(why))
+        }
+    };
+    let finish = |o: &Opened, plan: &InputPlan, m: Measurement| {
+        let run = RunFacts {
+            input_plan: plan,
+            measurement: &m,
+            influence: None,
+            headroom: &config.headroom,
+        };
+        let report =
+            assemble::report(Command::Audit, &o.file, &o.analysis, Some(run), &config.findings);
+        let (run_error, outputs) = match m.outcome {
+            Ok(m) => (None, m.intact.outputs),
+            Err(e) => (Some(e), Vec::new()),
+        };
+        Audit { report, run_error, outputs }
+    };
+    Ok(PairedAudit { a: finish(&a, plan_a, ma), b: finish(&b, plan_b, mb), errors, not_paired })
 }

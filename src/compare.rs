@@ -14,9 +14,11 @@ use crate::open;
 
 use crate::probe::Progress;
 use crate::probe::inputs::InputPlan;
+use crate::probe::paired::PairErrors;
 use crate::report::Report;
 use crate::report::compare::{
-    BlockPair, COMPARE_SCHEMA, COMPARE_SCHEMA_VERSION, Comparison, FedBoth, OutputAgreement, Side,
+    BlockError, BlockPair, COMPARE_SCHEMA, COMPARE_SCHEMA_VERSION, Comparison, ErrorBirth,
+    ErrorLocalisation, FedBoth, OutputAgreement, Side,
 };
 use crate::report::text::plural;
 use crate::scan;
@@ -31,7 +33,15 @@ pub struct CompareConfig {
     pub audit: AuditConfig,
     /// Run both models (otherwise structure only).
     pub run: bool,
+    /// The error is born at the first aligned block whose merge-output
+    /// relative L2 error is above this.
+    pub error_above: f64,
 }
+
+/// The default of [`CompareConfig::error_above`], our choice: 1% of the
+/// merge output's norm, above float16's rounding (a few 1e-4 per block) and
+/// at the size int8 quantisation reaches.
+pub const ERROR_ABOVE: f64 = 0.01;
 
 fn side(r: &Report) -> Side {
     Side {
@@ -102,14 +112,35 @@ pub fn compare_files(
     let purpose = open::Purpose::Run;
     let oa = open::open_file(a_path, &config.audit.open, purpose)?;
     let ob = open::open_file(b_path, &config.audit.open, purpose)?;
-    let fa = oa.plan(&config.audit.inputs).map_err(|e| e.at(a_path))?;
-    let fb = ob.plan(&config.audit.inputs).map_err(|e| e.at(b_path))?;
+    let mut fa = oa.plan(&config.audit.inputs).map_err(|e| e.at(a_path))?;
+    let mut fb = ob.plan(&config.audit.inputs).map_err(|e| e.at(b_path))?;
     same_inputs(&fa, &fb, b_path)?;
-    let a = audit::measured(oa, &fa, &config.audit, progress).map_err(|e| e.at(a_path))?;
+    // Paired passes need the same split of the samples; values do not depend
+    // on the split, so both are planned again with the smaller pass.
+    if fa.pass_batch != fb.pass_batch {
+        let mut inputs = config.audit.inputs.clone();
+        inputs.max_pass = Some(fa.pass_batch.min(fb.pass_batch));
+        fa = oa.plan(&inputs).map_err(|e| e.at(a_path))?;
+        fb = ob.plan(&inputs).map_err(|e| e.at(b_path))?;
+        same_inputs(&fa, &fb, b_path)?;
+    }
+    let pairs = |ra: &Report, rb: &Report| -> Vec<(usize, usize)> {
+        let ka: Vec<BlockKey> = ra.blocks.iter().map(|x| BlockKey::of_block(ra, x)).collect();
+        let kb: Vec<BlockKey> = rb.blocks.iter().map(|x| BlockKey::of_block(rb, x)).collect();
+        align(&ka, &kb, |x, y| x.score(y))
+            .into_iter()
+            .filter_map(|s| match s {
+                Step::Pair(i, j) => Some((i, j)),
+                _ => None,
+            })
+            .collect()
+    };
+    let paired = audit::measured_pair(oa, &fa, ob, &fb, &config.audit, &pairs, progress)
+        .map_err(|e| e.at(a_path))?;
+    let (a, b) = (paired.a, paired.b);
     if let Some(e) = a.run_error {
         return Err(e.at(a_path));
     }
-    let b = audit::measured(ob, &fb, &config.audit, progress).map_err(|e| e.at(b_path))?;
     if let Some(e) = b.run_error {
         return Err(e.at(b_path));
     }
@@ -121,7 +152,69 @@ pub fn compare_files(
         feed: r.feed.as_ref().map(|f| f.path.clone()),
     });
     let outputs = output_agreement(&a.report, &a.outputs, &b.report, &b.outputs);
-    Ok(comparison(&a.report, &b.report, fed, Some(outputs)))
+    let mut c = comparison(&a.report, &b.report, fed, Some(outputs));
+    localise(&mut c, &paired.errors, config.error_above, paired.not_paired);
+    Ok(c)
+}
+
+/// Puts each aligned pair's differences into the comparison, and finds
+/// where the error is born and how much it grows along depth.
+pub fn localise(
+    c: &mut Comparison,
+    errors: &[((usize, usize), PairErrors)],
+    threshold: f64,
+    note: Option<String>,
+) {
+    let mut previous: Option<f64> = None;
+    let mut first: Option<f64> = None;
+    let mut last: Option<f64> = None;
+    let mut born_at = None;
+    let mut pairs = 0;
+    for p in &mut c.blocks {
+        let (Some(i), Some(j)) = (p.a, p.b) else { continue };
+        let Some((_, e)) = errors.iter().find(|(k, _)| *k == (i - 1, j - 1)) else { continue };
+        pairs += 1;
+        let output = e.output.rel_l2();
+        let non_finite = e.output.non_finite + e.shortcut.non_finite + e.branch.non_finite;
+        let growth = match (previous, output) {
+            (Some(x), Some(y)) if x > 0.0 => Some(y / x),
+            _ => None,
+        };
+        if let Some(o) = output {
+            first.get_or_insert(o);
+            last = Some(o);
+        }
+        previous = output;
+        p.error = Some(BlockError {
+            output,
+            shortcut: e.shortcut.rel_l2(),
+            branch: e.branch.rel_l2(),
+            non_finite,
+            growth,
+        });
+        let exceeds = output.is_some_and(|o| o > threshold) || e.output.non_finite > 0;
+        if born_at.is_none() && exceeds {
+            born_at = Some(ErrorBirth {
+                a: i,
+                b: j,
+                merge_a: p.merge_a.clone().unwrap_or_default(),
+                output,
+                non_finite: e.output.non_finite,
+            });
+        }
+    }
+    let growth = match (first, last) {
+        (Some(f), Some(l)) if f > 0.0 && pairs > 1 => Some(l / f),
+        _ => None,
+    };
+    c.errors = Some(ErrorLocalisation {
+        measured: note.is_none(),
+        note,
+        threshold,
+        born_at,
+        growth,
+        pairs,
+    });
 }
 
 /// The last axis when an output is `[batch, classes]` with `classes` ≥ 2.
@@ -240,6 +333,7 @@ pub fn comparison(
                 ratio_b: rb,
                 ratio_delta: both.map(|(x, y)| y - x),
                 ratio_change: both.and_then(|(x, y)| (x > 0.0).then(|| y / x - 1.0)),
+                error: None,
             }
         })
         .collect();
@@ -254,6 +348,7 @@ pub fn comparison(
         structural_differences,
         outputs: outputs.unwrap_or_default(),
         failures: Vec::new(),
+        errors: None,
     }
 }
 

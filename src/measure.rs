@@ -20,6 +20,7 @@ use crate::lower::precision::{self, Half};
 use crate::open::{Analysis, HalfModel, Runnable};
 use crate::parallel::Budget;
 use crate::probe::inputs::InputPlan;
+use crate::probe::paired::{PairErrors, Side};
 use crate::probe::{
     self, BlockSamples, GainSamples, GatedPlan, ModelSource, ProbeResult, Progress, Watch,
 };
@@ -281,6 +282,72 @@ impl Selection {
             }
         }
         m
+    }
+}
+
+/// Both models of a comparison measured pass by pass on the same inputs,
+/// and the differences of their aligned blocks.
+#[derive(Debug)]
+pub struct PairedMeasurement {
+    /// Model A's measurement.
+    pub a: Measurement,
+    /// Model B's measurement.
+    pub b: Measurement,
+    /// One entry per aligned pair, in the order given.
+    pub errors: Vec<PairErrors>,
+}
+
+/// Runs A and B pass by pass on plans that split the samples into the same
+/// passes, and measures both and the difference of every aligned pair
+/// `(block of A, block of B)` (0-based). Each half-precision model runs as
+/// [`measure`] would run it. The runnables are borrowed, so that a caller
+/// can measure each model on its own when the paired run fails.
+#[allow(clippy::too_many_arguments)]
+pub fn measure_pair(
+    a: &Runnable,
+    analysis_a: &Analysis,
+    plan_a: &InputPlan,
+    b: &Runnable,
+    analysis_b: &Analysis,
+    plan_b: &InputPlan,
+    pairs: &[(usize, usize)],
+    progress: &dyn Progress,
+) -> Result<PairedMeasurement> {
+    let in_bodies = |a: &Analysis| a.bodies.iter().any(|b| !b.analysis.detection.blocks.is_empty());
+    if in_bodies(analysis_a) || in_bodies(analysis_b) {
+        // The paired run watches the main graph only; the blocks inside
+        // control flow are selected (and the model rewritten) by `measure`.
+        return Err(Error::new(
+            ErrorKind::Probe,
+            "blocks inside control flow are measured one model at a time",
+        ));
+    }
+    let (wa, wb) = (watches(analysis_a), watches(analysis_b));
+    let (source_a, source_b) = (source_of(a), source_of(b));
+    let (outcome, ran_a) = run_precise(a.half.as_ref(), source_a, a.dir.as_deref(), |sa| {
+        let (r, ran_b) = run_precise(b.half.as_ref(), source_b, b.dir.as_deref(), |sb| {
+            let side_a = Side { source: sa, watches: &wa, input_plan: plan_a };
+            let side_b = Side { source: sb, watches: &wb, input_plan: plan_b };
+            probe::paired::run_pair(side_a, side_b, pairs, progress)
+        });
+        r.map(|r| (r, ran_b))
+    });
+    let (r, ran_b) = outcome?;
+    let measured = |intact| Measured { intact, not_measured: Vec::new(), influence: None };
+    Ok(PairedMeasurement {
+        a: Measurement { ran_as: ran_a, outcome: Ok(measured(r.a)) },
+        b: Measurement { ran_as: ran_b, outcome: Ok(measured(r.b)) },
+        errors: r.errors,
+    })
+}
+
+/// Where the engine reads a runnable from, without taking it.
+fn source_of(r: &Runnable) -> ModelSource<'_> {
+    let bytes: &[u8] = r.bytes.as_deref().unwrap_or_default();
+    match (r.path.as_deref(), r.dir.as_deref()) {
+        (Some(p), _) => ModelSource::Path(p),
+        (None, Some(d)) => ModelSource::BytesIn(bytes, d),
+        (None, None) => ModelSource::Bytes(bytes),
     }
 }
 

@@ -191,6 +191,14 @@ words! {
         ExplodingGain = "exploding-gain",
         /// A small input change shrinks by more than the gain factor along the blocks.
         VanishingGain = "vanishing-gain",
+        /// A block's largest |x| exceeds the target format's largest finite value.
+        Overflow = "overflow",
+        /// A block's headroom in the target format is below the margin.
+        OverflowRisk = "overflow-risk",
+        /// Many of a block's values would be zero or subnormal in the target format.
+        UnderflowRisk = "underflow-risk",
+        /// Outlier channels leave the median channel few levels of an int8 per-tensor scale.
+        Int8OutlierChannels = "int8-outlier-channels",
     }
 }
 
@@ -198,6 +206,18 @@ impl FindingCode {
     /// Whether the structure alone can raise it (no run needed).
     pub fn is_structural(self) -> bool {
         matches!(self, FindingCode::StaticDead | FindingCode::LostShortcut)
+    }
+}
+
+words! {
+    /// A number format a model may be converted to (`--precision`).
+    pub enum Precision ("precision") {
+        /// IEEE 754-2008 binary16: largest finite 65504, smallest normal 2^-14.
+        Fp16 = "fp16",
+        /// bfloat16: float32's 8 exponent bits, 8 significand bits.
+        Bf16 = "bf16",
+        /// 8-bit integers with a symmetric per-tensor scale (127 levels each side).
+        Int8 = "int8",
     }
 }
 
@@ -310,7 +330,7 @@ mod tests {
             assert_eq!(Placement::parse(p.as_str()), Some(p));
             assert_eq!(serde_json::to_string(&p).unwrap(), format!("\"{p}\""));
         }
-        assert_eq!(FindingCode::ALL.len(), 11);
+        assert_eq!(FindingCode::ALL.len(), 15);
         assert_eq!(FindingCode::parse("deadish"), None);
         let e = serde_json::from_str::<Placement>("\"sideways\"").unwrap_err().to_string();
         assert!(e.contains("unknown placement 'sideways' (known: post-activation, "), "{e}");

@@ -105,7 +105,7 @@ fn batchnorm_folded_and_quantised_exports_match_the_pin() {
         assert_eq!(run.code, 0, "{other}: {}{}", run.stdout, run.stderr);
         let v = json(&run);
         assert_eq!(v["schema"], "shunt/verify");
-        assert_eq!(v["schema_version"], 1);
+        assert_eq!(v["schema_version"], 2);
         assert_eq!(v["differences"].as_array().unwrap().len(), 0);
     }
 }
@@ -334,7 +334,7 @@ fn float_and_quantised_exports_align_block_by_block() {
         compare_json(&torch("resnet_cifar_folded.onnx"), &torch("resnet_cifar_qdq.onnx"), &[]);
     assert_eq!(code, 0, "{v:#}");
     assert_eq!(v["schema"], "shunt/compare");
-    assert_eq!(v["schema_version"], 1);
+    assert_eq!(v["schema_version"], 2);
     assert_eq!(statuses(&v), same_six());
     for p in v["blocks"].as_array().unwrap() {
         let (a, b) = (p["ratio_a"].as_f64().unwrap(), p["ratio_b"].as_f64().unwrap());

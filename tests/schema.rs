@@ -91,9 +91,12 @@ fn report_documents_keep_their_fields() {
             "--batch",
             "2",
         ]),
+        // Headroom in a float format and in int8 (issue 14).
+        args(&["audit", &path(fixture("precision/overflow_stack.onnx")), "--precision", "fp16"]),
+        args(&["audit", &path(fixture("precision/outlier_channel.onnx")), "--precision", "int8"]),
     ];
     let documents: Vec<Value> = runs.iter().map(|a| document(a, &[0, 1, 2])).collect();
-    assert_eq!(documents.len(), 17);
+    assert_eq!(documents.len(), 19);
     // The run that fails writes its structure and says why.
     assert!(documents[10]["run_error"].is_string(), "{}", documents[10]["run_error"]);
     assert_eq!(documents[7]["concat_skips"][0]["skip_ops"].as_array().map(Vec::len), Some(1));
@@ -139,12 +142,21 @@ fn compare_documents_keep_their_fields() {
         args(&["compare", &a, &b, "--feed", &feed]),
         args(&["compare", &a, &b, "--no-run"]),
         args(&["compare", &one, &two, "--batch", "2"]),
+        // An error born at a block (issue 14).
+        args(&[
+            "compare",
+            &path(fixture("torch/resnet_cifar_folded.onnx")),
+            &path(fixture("transformed/resnet_cifar_qdq_ort.onnx")),
+            "--batch",
+            "2",
+        ]),
     ];
     let documents: Vec<Value> = runs
         .iter()
         .map(|a| document(&[a.clone(), args(&["--format", "json"])].concat(), &[0, 1]))
         .collect();
-    assert_eq!(documents.len(), 3);
+    assert_eq!(documents.len(), 4);
+    assert!(documents[3]["errors"]["born_at"].is_object(), "{}", documents[3]["errors"]);
     assert!(documents[2]["outputs"][1]["note"].is_string(), "{}", documents[2]["outputs"]);
     check_golden("shunt/compare", "compare", &documents);
 }

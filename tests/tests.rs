@@ -39,6 +39,8 @@ mod threads;
 mod report;
 // Half precision: float16/bfloat16 inputs, feeds, and statistics against onnxruntime.
 mod half;
+// Issue 14: range statistics, headroom, error along depth against numpy and onnxruntime.
+mod precision;
 // The commands shown in the README and docs/ give the output shown.
 mod docs;
 // Guards: the dependency table in DEVELOPERS.md matches the code.

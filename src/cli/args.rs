@@ -6,7 +6,7 @@ use std::path::PathBuf;
 
 use clap::{Parser, Subcommand, ValueEnum};
 
-use crate::findings::{FindingConfig, InfluenceThresholds};
+use crate::findings::{FindingConfig, HeadroomThresholds, InfluenceThresholds};
 use crate::measure::GAIN_STEP;
 use crate::open::OpenConfig;
 use crate::probe::inputs::{Dist, InputConfig};
@@ -90,7 +90,8 @@ pub(super) struct OutputArgs {
     /// Exit with code 1 when any of these findings occurs: a comma-separated
     /// list of codes (static-dead, lost-shortcut, dead, dominant,
     /// dead-channels, non-finite, exploding-signal, vanishing-signal,
-    /// low-impact, exploding-gain, vanishing-gain) or `any`.
+    /// low-impact, exploding-gain, vanishing-gain, overflow, overflow-risk,
+    /// underflow-risk, int8-outlier-channels) or `any`.
     #[arg(long, value_name = "LIST")]
     pub fail_on: Option<String>,
 }
@@ -120,7 +121,42 @@ pub(super) struct AuditArgs {
     #[command(flatten)]
     pub influence: InfluenceArgs,
     #[command(flatten)]
+    pub headroom: HeadroomArgs,
+    #[command(flatten)]
     pub limits: Limits,
+}
+
+/// The target number format of the headroom section.
+#[derive(Debug, clap::Args)]
+pub(super) struct HeadroomArgs {
+    /// Report every block's headroom in this format, with overflow, underflow
+    /// and int8 outlier-channel findings (default: a float16 or bfloat16
+    /// model's own type, else none).
+    #[arg(long, value_enum, value_name = "FORMAT")]
+    pub precision: Option<PrecisionArg>,
+    /// `overflow-risk` when the format's largest value over a block's largest
+    /// |x| is below this factor.
+    #[arg(long, value_name = "X", default_value_t = HeadroomThresholds::STANDARD.margin)]
+    pub headroom_below: f64,
+    /// `underflow-risk` (fp16) when more than this fraction of a merge output
+    /// would be zero or subnormal.
+    #[arg(long, value_name = "F", default_value_t = HeadroomThresholds::STANDARD.underflow_above)]
+    pub underflow_above: f64,
+    /// `int8-outlier-channels` when the largest channel's max |x| exceeds the
+    /// median channel's by more than this factor.
+    #[arg(long, value_name = "X", default_value_t = HeadroomThresholds::STANDARD.outlier_ratio_above)]
+    pub outlier_ratio_above: f64,
+}
+
+/// `--precision`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub(super) enum PrecisionArg {
+    /// IEEE binary16 (largest finite 65504).
+    Fp16,
+    /// bfloat16 (float32's exponent range).
+    Bf16,
+    /// int8 with a symmetric per-tensor scale.
+    Int8,
 }
 
 /// What is fed to a model that is run: `audit`, `verify --expect` and
@@ -291,6 +327,19 @@ pub(super) enum TextFormat {
     Json,
 }
 
+/// The formats of a comparison.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub(super) enum CompareFormat {
+    /// A table for people.
+    Table,
+    /// The versioned JSON document described in docs/formats.md.
+    Json,
+    /// One self-contained HTML page with the error along depth (use with --output).
+    Html,
+    /// Markdown for a pull-request comment, at most 60,000 bytes.
+    Markdown,
+}
+
 #[derive(Debug, clap::Args)]
 pub(super) struct PinArgs {
     /// The ONNX model file.
@@ -337,8 +386,8 @@ pub(super) struct CompareArgs {
     /// The model compared with it (B).
     pub b: PathBuf,
     /// Output format.
-    #[arg(long, value_enum, default_value_t = TextFormat::Table)]
-    pub format: TextFormat,
+    #[arg(long, value_enum, default_value_t = CompareFormat::Table)]
+    pub format: CompareFormat,
     /// Write the comparison to this file instead of standard output.
     #[arg(long, short = 'o', value_name = "FILE")]
     pub output: Option<PathBuf>,
@@ -348,6 +397,10 @@ pub(super) struct CompareArgs {
     /// Exit 1 when any aligned block's ratio changes by more than this fraction (0.1 = 10%).
     #[arg(long, value_name = "F")]
     pub max_ratio_change: Option<f64>,
+    /// The error is born at the first aligned block whose merge output differs
+    /// from A's by more than this (relative L2).
+    #[arg(long, value_name = "X", default_value_t = crate::compare::ERROR_ABOVE)]
+    pub error_above: f64,
     /// Do not run the models: compare structure only.
     #[arg(long)]
     pub no_run: bool,

@@ -8,15 +8,15 @@ use std::path::{Path, PathBuf};
 use anyhow::{Context, bail};
 
 use super::args::{
-    AuditArgs, CompareArgs, LowerArgs, ManyArgs, OutputArgs, PinArgs, ReportFormat, ScanArgs,
-    TextFormat, VerifyArgs,
+    AuditArgs, CompareArgs, CompareFormat, LowerArgs, ManyArgs, OutputArgs, PinArgs, ReportFormat,
+    ScanArgs, TextFormat, VerifyArgs,
 };
 use super::{ERRORS, FINDINGS, SUCCESS, convert, output, progress};
 use crate::audit::{self, AuditConfig};
 use crate::batch;
 use crate::compare::{self, CompareConfig, Tolerance};
 use crate::expect;
-use crate::findings::FindingConfig;
+use crate::findings::{FindingConfig, HeadroomConfig};
 use crate::probe::inputs::InputConfig;
 use crate::report::Report;
 use crate::report::batch::BatchReport;
@@ -69,12 +69,16 @@ pub(super) fn audit(a: &AuditArgs, argv: &[OsString]) -> anyhow::Result<u8> {
     if a.no_run && a.influence.config()?.is_some() {
         bail!("--no-run cannot be combined with --knockout or --gain, which run the model");
     }
+    if a.no_run && a.headroom.precision.is_some() {
+        bail!("--no-run cannot be combined with --precision, whose headroom is measured by a run");
+    }
     let config = AuditConfig {
         open: a.limits.config(),
         inputs: if a.no_run { no_inputs() } else { a.inputs.config()? },
         findings,
         influence: a.influence.config()?,
         budget: a.run.config()?,
+        headroom: a.headroom.config()?,
     };
     if is_batch(&a.models) {
         // The models run at once share the budget: jobs x threads stays
@@ -165,6 +169,7 @@ pub(super) fn verify(a: &VerifyArgs) -> anyhow::Result<u8> {
                 findings: FindingConfig::STANDARD,
                 influence: None,
                 budget: a.run.config()?,
+                headroom: HeadroomConfig::STANDARD,
             };
             let bar = progress::Bar::new(a.quiet);
             let outcome = audit::audit_file(&a.model, &config, &bar)?;
@@ -203,8 +208,10 @@ pub(super) fn compare(a: &CompareArgs) -> anyhow::Result<u8> {
             findings: FindingConfig::STANDARD,
             influence: None,
             budget: a.run.config()?,
+            headroom: HeadroomConfig::STANDARD,
         },
         run: !a.no_run,
+        error_above: a.error_above,
     };
     let bar = progress::Bar::new(a.quiet);
     let result = compare::compare_files(&a.a, &a.b, &config, &bar);
@@ -213,8 +220,14 @@ pub(super) fn compare(a: &CompareArgs) -> anyhow::Result<u8> {
     let tolerance = Tolerance { max_rel_l2: a.max_rel_l2, max_ratio_change: a.max_ratio_change };
     c.failures = compare::failures(&c, &tolerance);
     output::write(a.output.as_deref(), &[&a.a, &a.b], |w| match a.format {
-        TextFormat::Table => crate::report::compare::render(&c, w),
-        TextFormat::Json => crate::report::json::render(&c, w),
+        CompareFormat::Table => crate::report::compare::render(&c, w),
+        CompareFormat::Json => crate::report::json::render(&c, w),
+        CompareFormat::Html => crate::report::compare::render_html(&c, w),
+        CompareFormat::Markdown => crate::report::compare::render_markdown(
+            &c,
+            crate::report::markdown::DEFAULT_MAX_BYTES,
+            w,
+        ),
     })?;
     Ok(if c.failures.is_empty() { SUCCESS } else { FINDINGS })
 }

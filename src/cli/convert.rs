@@ -6,13 +6,15 @@ use std::collections::BTreeMap;
 
 use anyhow::{Context, bail};
 
-use super::args::{DistArg, InfluenceArgs, InputArgs, Limits, RunArgs, ThresholdArgs};
-use crate::findings::{FindingConfig, InfluenceThresholds};
+use super::args::{
+    DistArg, HeadroomArgs, InfluenceArgs, InputArgs, Limits, PrecisionArg, RunArgs, ThresholdArgs,
+};
+use crate::findings::{FindingConfig, HeadroomConfig, HeadroomThresholds, InfluenceThresholds};
 use crate::measure::InfluenceConfig;
 use crate::open::OpenConfig;
 use crate::parallel::Budget;
 use crate::probe::inputs::{Dist, InputConfig};
-use crate::vocab::FindingCode;
+use crate::vocab::{FindingCode, Precision};
 
 impl Limits {
     pub(super) fn config(&self) -> OpenConfig {
@@ -100,6 +102,30 @@ impl ThresholdArgs {
             dead_channels_above: self.dead_channels_above,
             depth_factor: self.depth_factor,
         }
+    }
+}
+
+impl HeadroomArgs {
+    pub(super) fn config(&self) -> anyhow::Result<HeadroomConfig> {
+        let positive = |v: f64, flag: &str| -> anyhow::Result<f64> {
+            if v.is_finite() && v > 0.0 {
+                Ok(v)
+            } else {
+                bail!("{flag} {v}: expected a positive number")
+            }
+        };
+        Ok(HeadroomConfig {
+            target: self.precision.map(|p| match p {
+                PrecisionArg::Fp16 => Precision::Fp16,
+                PrecisionArg::Bf16 => Precision::Bf16,
+                PrecisionArg::Int8 => Precision::Int8,
+            }),
+            thresholds: HeadroomThresholds {
+                margin: positive(self.headroom_below, "--headroom-below")?,
+                underflow_above: positive(self.underflow_above, "--underflow-above")?,
+                outlier_ratio_above: positive(self.outlier_ratio_above, "--outlier-ratio-above")?,
+            },
+        })
     }
 }
 

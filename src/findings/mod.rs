@@ -6,7 +6,7 @@
 //! **Invariant:** findings are a pure function of the per-block summaries and
 //! the configuration; they never look at tensors or graphs.
 
-use crate::vocab::FindingCode;
+use crate::vocab::{FindingCode, Precision};
 
 /// Thresholds, all relative.
 #[derive(Debug, Clone)]
@@ -279,6 +279,169 @@ pub fn influence(blocks: &[InfluenceFacts], t: &InfluenceThresholds) -> Vec<Find
     out
 }
 
+/// The limits of a number format.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FormatLimits {
+    /// Largest finite value (`None` for int8, whose scale follows the range).
+    pub largest: Option<f64>,
+    /// Smallest normal magnitude.
+    pub smallest_normal: Option<f64>,
+    /// Smallest subnormal magnitude.
+    pub smallest_subnormal: Option<f64>,
+    /// Magnitude levels of a symmetric per-tensor scale (int8: 127).
+    pub levels: Option<u32>,
+}
+
+impl FormatLimits {
+    /// IEEE 754-2008 binary16: (2 − 2^-10)·2^15 = 65504, 2^-14, 2^-24;
+    /// bfloat16 (8 exponent and 8 significand bits): (2 − 2^-7)·2^127, 2^-126,
+    /// 2^-133; int8 with a symmetric scale: 127 levels. The tests check the
+    /// floats against numpy's `finfo` (ml_dtypes' for bfloat16).
+    pub fn of(p: Precision) -> FormatLimits {
+        match p {
+            Precision::Fp16 => FormatLimits {
+                largest: Some((2.0 - 2f64.powi(-10)) * 2f64.powi(15)),
+                smallest_normal: Some(2f64.powi(-14)),
+                smallest_subnormal: Some(2f64.powi(-24)),
+                levels: None,
+            },
+            Precision::Bf16 => FormatLimits {
+                largest: Some((2.0 - 2f64.powi(-7)) * 2f64.powi(127)),
+                smallest_normal: Some(2f64.powi(-126)),
+                smallest_subnormal: Some(2f64.powi(-133)),
+                levels: None,
+            },
+            Precision::Int8 => FormatLimits {
+                largest: None,
+                smallest_normal: None,
+                smallest_subnormal: None,
+                levels: Some(127),
+            },
+        }
+    }
+}
+
+/// Thresholds of the headroom findings, all relative.
+#[derive(Debug, Clone)]
+pub struct HeadroomThresholds {
+    /// `overflow-risk` when the format's largest value over a block's
+    /// largest |x| is below this factor.
+    pub margin: f64,
+    /// `underflow-risk` when more than this fraction of a merge output
+    /// would be zero or subnormal in the format.
+    pub underflow_above: f64,
+    /// `int8-outlier-channels` when the largest channel's max |x| is more
+    /// than this factor above the median channel's.
+    pub outlier_ratio_above: f64,
+}
+
+impl HeadroomThresholds {
+    /// The documented defaults (docs/statistics.md), our choice: a margin of
+    /// 16 (4 bits of exponent range, since real inputs may reach further
+    /// than the audit's), underflow above 1% of the values, outlier channels
+    /// above 16 (the median channel keeps fewer than 8 of 127 levels).
+    pub const STANDARD: HeadroomThresholds =
+        HeadroomThresholds { margin: 16.0, underflow_above: 0.01, outlier_ratio_above: 16.0 };
+}
+
+/// What `--precision` asks for: a target format (or none: a half-precision
+/// model's own), and the thresholds of its findings.
+#[derive(Debug, Clone)]
+pub struct HeadroomConfig {
+    /// The format named by `--precision`; `None`: the model's own half
+    /// type, if it has one, else no headroom section.
+    pub target: Option<Precision>,
+    /// Thresholds of the headroom findings.
+    pub thresholds: HeadroomThresholds,
+}
+
+impl HeadroomConfig {
+    /// No target named, the standard thresholds.
+    pub const STANDARD: HeadroomConfig =
+        HeadroomConfig { target: None, thresholds: HeadroomThresholds::STANDARD };
+}
+
+/// What the headroom findings need to know of one block.
+#[derive(Debug, Clone, Default)]
+pub struct HeadroomFacts {
+    /// The format's largest value over the block's largest |x| (0 when a
+    /// value is not finite), if measured.
+    pub headroom: Option<f64>,
+    /// The block's largest |x| (infinite when a value is), if measured.
+    pub max_abs: Option<f64>,
+    /// Fraction of values zero or subnormal in the format, if measured.
+    pub underflow: Option<f64>,
+    /// Largest channel's max |x| over the median channel's, if measured.
+    pub channel_max_ratio: Option<f64>,
+}
+
+/// `overflow` (the largest |x| is beyond the format's largest value) or
+/// else `overflow-risk` (headroom below the margin), for fp16
+/// `underflow-risk`, and for int8 `int8-outlier-channels`, per block.
+pub fn headroom(
+    blocks: &[HeadroomFacts],
+    format: Precision,
+    t: &HeadroomThresholds,
+) -> Vec<Finding> {
+    let limits = FormatLimits::of(format);
+    let mut out = Vec::new();
+    for (i, b) in blocks.iter().enumerate() {
+        let block = Some(i + 1);
+        if let (Some(h), Some(largest)) = (b.headroom, limits.largest) {
+            let max = b.max_abs.map_or("a non-finite value".to_owned(), |m| {
+                if m.is_finite() { format!("{m:.4e}") } else { "a non-finite value".to_owned() }
+            });
+            if h < 1.0 {
+                out.push(Finding {
+                    code: FindingCode::Overflow,
+                    block,
+                    message: format!(
+                        "largest |x| {max} is beyond {format}'s largest finite value {largest}: it would be infinite"
+                    ),
+                });
+            } else if h < t.margin {
+                out.push(Finding {
+                    code: FindingCode::OverflowRisk,
+                    block,
+                    message: format!(
+                        "largest |x| {max} leaves a headroom of {h:.3e} ({:.1} bits) below {format}'s largest value, under the margin {}",
+                        h.log2(),
+                        t.margin
+                    ),
+                });
+            }
+        }
+        // Only float16 narrows the exponent range below float32's.
+        if let Some(u) = b.underflow.filter(|_| format == Precision::Fp16)
+            && u > t.underflow_above
+        {
+            out.push(Finding {
+                code: FindingCode::UnderflowRisk,
+                block,
+                message: format!(
+                    "{:.2}% of the merge output would be zero or subnormal in {format} (above {}%)",
+                    u * 100.0,
+                    t.underflow_above * 100.0
+                ),
+            });
+        }
+        if let (Some(levels), Some(r)) = (limits.levels, b.channel_max_ratio)
+            && r > t.outlier_ratio_above
+        {
+            out.push(Finding {
+                code: FindingCode::Int8OutlierChannels,
+                block,
+                message: format!(
+                    "the largest channel's max |x| is {r:.3e} times the median channel's (above {}): a per-tensor int8 scale leaves the median channel {:.1} of {levels} levels",
+                    t.outlier_ratio_above,
+                    f64::from(levels) / r
+                ),
+            });
+        }
+    }
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -326,6 +489,46 @@ mod tests {
             f.iter().map(|f| f.code).collect::<Vec<_>>(),
             vec![FindingCode::VanishingSignal]
         );
+    }
+
+    #[test]
+    fn headroom_thresholds() {
+        let t = HeadroomThresholds::STANDARD;
+        let fp16 = 65504.0;
+        let facts = [
+            HeadroomFacts {
+                headroom: Some(fp16 / 100.0),
+                max_abs: Some(100.0),
+                ..Default::default()
+            },
+            HeadroomFacts {
+                headroom: Some(fp16 / 5000.0),
+                max_abs: Some(5000.0),
+                ..Default::default()
+            },
+            HeadroomFacts {
+                headroom: Some(0.0),
+                max_abs: Some(f64::INFINITY),
+                underflow: Some(0.02),
+                channel_max_ratio: Some(200.0),
+            },
+        ];
+        let codes = |f: Vec<Finding>| f.into_iter().map(|f| (f.code, f.block)).collect::<Vec<_>>();
+        assert_eq!(
+            codes(headroom(&facts, Precision::Fp16, &t)),
+            vec![
+                (FindingCode::OverflowRisk, Some(2)),
+                (FindingCode::Overflow, Some(3)),
+                (FindingCode::UnderflowRisk, Some(3))
+            ]
+        );
+        // int8 has no overflow (its scale follows the range); outliers count.
+        assert_eq!(
+            codes(headroom(&facts, Precision::Int8, &t)),
+            vec![(FindingCode::Int8OutlierChannels, Some(3))]
+        );
+        let l = FormatLimits::of(Precision::Fp16);
+        assert_eq!(l.largest, Some(65504.0));
     }
 
     #[test]

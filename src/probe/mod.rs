@@ -19,6 +19,7 @@
 //! or its float32 twin (`lower::precision`).
 
 pub mod inputs;
+pub mod paired;
 
 use std::collections::HashMap;
 use std::panic::{AssertUnwindSafe, catch_unwind};
@@ -81,6 +82,20 @@ pub struct BlockSamples {
     pub inf: u64,
     /// The shape of the merge output in the first pass (empty until seen).
     pub output_shape: Vec<usize>,
+    /// Largest |x| of the merge output, per sample.
+    pub output_max: Vec<f64>,
+    /// Largest |x| of the shortcut at the merge, per sample.
+    pub shortcut_max: Vec<f64>,
+    /// Largest |x| of the branch at the merge, per sample.
+    pub branch_max: Vec<f64>,
+    /// Fraction of the merge output's values float16 rounds to zero (nonzero
+    /// values of magnitude at most 2^-25), per sample.
+    pub f16_zero: Vec<f64>,
+    /// Fraction of the merge output's values float16 keeps only as
+    /// subnormals (2^-25 < |x| < 2^-14), per sample.
+    pub f16_subnormal: Vec<f64>,
+    /// Largest |x| of each channel of the merge output over all samples.
+    pub channel_max: Vec<f64>,
 }
 
 /// The outcome of probing.
@@ -114,6 +129,7 @@ impl Progress for Silent {
 }
 
 /// Where tract reads the model from.
+#[derive(Clone, Copy)]
 pub enum ModelSource<'a> {
     /// A file; external data resolves against its folder.
     Path(&'a Path),
@@ -272,6 +288,12 @@ impl Merge for BlockSamples {
             nan,
             inf,
             output_shape,
+            output_max,
+            shortcut_max,
+            branch_max,
+            f16_zero,
+            f16_subnormal,
+            channel_max,
         } = later;
         self.fork_rms.merge(fork_rms);
         self.shortcut_rms.merge(shortcut_rms);
@@ -283,6 +305,17 @@ impl Merge for BlockSamples {
         add_sums(&mut self.channel_branch, channel_branch);
         self.nan += nan;
         self.inf += inf;
+        self.output_max.merge(output_max);
+        self.shortcut_max.merge(shortcut_max);
+        self.branch_max.merge(branch_max);
+        self.f16_zero.merge(f16_zero);
+        self.f16_subnormal.merge(f16_subnormal);
+        if self.channel_max.len() < channel_max.len() {
+            self.channel_max.resize(channel_max.len(), 0.0);
+        }
+        for (a, m) in self.channel_max.iter_mut().zip(channel_max) {
+            *a = a.max(m);
+        }
         if self.output_shape.is_empty() {
             self.output_shape = output_shape;
         }
@@ -358,7 +391,7 @@ fn forced_layout() -> Option<Layout> {
 
 /// One thread's evaluation state of the shared preparation, with the
 /// executor of tract's kernels on that thread.
-struct Runner {
+pub(crate) struct Runner {
     state: TypedSimpleState,
     executor: Executor,
 }
@@ -616,7 +649,7 @@ impl Prepared {
         input_plan: &InputPlan,
         tensors: TVec<TValue>,
         acc: &mut [BlockSamples],
-        mut hold: Option<&mut Vec<Held>>,
+        mut hold: Option<&mut dyn Keep>,
     ) -> Result<TVec<TValue>> {
         let mut pending = Pending::new(watches);
         let batch = input_plan.pass_batch;
@@ -631,7 +664,7 @@ impl Prepared {
                     batch,
                 )?;
                 if let Some(h) = hold.as_deref_mut() {
-                    h[b].keep(role, &tensors[*i]);
+                    h.keep(b, role, &tensors[*i])?;
                 }
             }
         }
@@ -640,7 +673,7 @@ impl Prepared {
             for &(b, role) in roles {
                 observe(&mut acc[b], &mut pending.slots[b], &watches[b], role, &value, batch)?;
                 if let Some(h) = hold.as_deref_mut() {
-                    h[b].keep(role, &value);
+                    h.keep(b, role, &value)?;
                 }
             }
         }
@@ -661,7 +694,7 @@ impl Prepared {
                             )
                             .map_err(|e| anyhow::anyhow!("{e}"))?;
                             if let Some(h) = hold.as_deref_mut() {
-                                h[b].keep(role, value);
+                                h.keep(b, role, value).map_err(|e| anyhow::anyhow!("{e}"))?;
                             }
                         }
                     }
@@ -801,6 +834,20 @@ fn collect_outputs(result: &TVec<TValue>, outputs: &mut [Vec<f32>]) -> Vec<Vec<u
         }
     }
     shapes
+}
+
+/// What keeps watched tensors of a pass beyond their measurement: the
+/// gain's intact pass, or the paired runs of a comparison.
+trait Keep {
+    /// Block `b`'s tensor in `role` has been produced.
+    fn keep(&mut self, b: usize, role: Role, value: &TValue) -> Result<()>;
+}
+
+impl Keep for Vec<Held> {
+    fn keep(&mut self, b: usize, role: Role, value: &TValue) -> Result<()> {
+        self[b].keep(role, value);
+        Ok(())
+    }
 }
 
 /// Watched tensors of one block in one pass, held for the gain.
@@ -1098,7 +1145,7 @@ fn gated_pass(
         input_plan,
         tensors,
         &mut intact.blocks,
-        held.as_mut(),
+        held.as_mut().map(|h| h as &mut dyn Keep),
     )?;
     intact.output_shapes = collect_outputs(&result, &mut intact.outputs);
     drop(result);
@@ -1277,10 +1324,11 @@ fn observe(
         }
         Role::Output => {
             let (shape, v) = view(value)?;
+            let (channels, inner) = channel_layout(&shape, w.channels_first);
             if acc.output_shape.is_empty() {
                 acc.output_shape = shape;
             }
-            with_view!(v, x => measure_output(acc, w, x, batch));
+            with_view!(v, x => measure_output(acc, w, x, batch, channels, inner));
         }
         Role::Shortcut => {
             slot.shortcut = Some(value.clone());
@@ -1294,17 +1342,47 @@ fn observe(
     Ok(())
 }
 
-/// The merge output: per sample its RMS and, with a ReLU after the merge,
-/// the fraction it zeroes.
-fn measure_output<T: stats::Value>(acc: &mut BlockSamples, w: &Watch, x: &[T], batch: usize) {
+/// Channels and the length of each channel's run in one sample laid out
+/// `[outer, channels, inner]`: axis 1 or the last axis; `(0, 0)` below rank 2.
+fn channel_layout(shape: &[usize], channels_first: bool) -> (usize, usize) {
+    if shape.len() < 2 {
+        return (0, 0);
+    }
+    let axis = if channels_first { 1 } else { shape.len() - 1 };
+    (shape[axis], shape[axis + 1..].iter().product::<usize>())
+}
+
+/// The merge output: per sample its RMS, its range (largest |x|, what
+/// float16 would lose, each channel's largest |x|) and, with a ReLU after
+/// the merge, the fraction it zeroes; one pass per sample.
+fn measure_output<T: stats::Value>(
+    acc: &mut BlockSamples,
+    w: &Watch,
+    x: &[T],
+    batch: usize,
+    channels: usize,
+    inner: usize,
+) {
     let mut finite = true;
+    let mut channel_max = vec![0f32; channels];
     for sample in samples(x, batch) {
-        // One pass: the sum of squares, and what a ReLU would zero.
-        let (ss, not_positive) = stats::sum_sq_not_positive(sample);
-        finite &= ss.is_finite();
-        acc.output_rms.push(rms_of(ss, sample.len()));
+        let r = stats::range_channels(sample, inner, &mut channel_max);
+        finite &= r.sum_sq.is_finite();
+        let n = sample.len().max(1) as f64;
+        acc.output_rms.push(rms_of(r.sum_sq, sample.len()));
+        acc.output_max.push(f64::from(r.max_abs));
+        acc.f16_zero.push(r.f16_zero as f64 / n);
+        acc.f16_subnormal.push(r.f16_subnormal as f64 / n);
         if w.relu_after {
-            acc.zeroed.push(not_positive as f64 / sample.len().max(1) as f64);
+            acc.zeroed.push(r.not_positive as f64 / n);
+        }
+    }
+    if channels > 0 {
+        if acc.channel_max.len() != channels {
+            acc.channel_max = vec![0.0; channels];
+        }
+        for (a, m) in acc.channel_max.iter_mut().zip(channel_max) {
+            *a = a.max(f64::from(m));
         }
     }
     if !finite {
@@ -1381,22 +1459,20 @@ fn pair_measure<A: stats::Value, B: stats::Value>(
     let mut finite = true;
     if sc.len() == br.len() && same_shape {
         // Per-channel sums of one sample laid out [outer, channels, inner].
-        let (channels, inner) = if shape.len() >= 2 {
-            let axis = if w.channels_first { 1 } else { shape.len() - 1 };
-            (shape[axis], shape[axis + 1..].iter().product::<usize>())
-        } else {
-            (0, 0)
-        };
+        let (channels, inner) = channel_layout(shape, w.channels_first);
         if acc.channel_shortcut.len() != channels {
             acc.channel_shortcut = vec![0.0; channels];
             acc.channel_branch = vec![0.0; channels];
         }
         for (a, b) in samples(sc, batch).zip(samples(br, batch)) {
-            let (ss, bb, sb) =
+            let p =
                 stats::pair_sums(a, b, inner, &mut acc.channel_shortcut, &mut acc.channel_branch);
+            let (ss, bb, sb) = (p.aa, p.bb, p.ab);
             finite &= ss.is_finite() && bb.is_finite() && sb.is_finite();
             acc.shortcut_rms.push(rms_of(ss, a.len()));
             acc.branch_rms.push(rms_of(bb, b.len()));
+            acc.shortcut_max.push(f64::from(p.max_a));
+            acc.branch_max.push(f64::from(p.max_b));
             if ss > 0.0 && bb > 0.0 {
                 acc.cosine.push((sb / (ss.sqrt() * bb.sqrt())).clamp(-1.0, 1.0));
             }
@@ -1404,14 +1480,16 @@ fn pair_measure<A: stats::Value, B: stats::Value>(
     } else {
         // Broadcast merge: each side on its own, no cosine.
         for a in samples(sc, batch) {
-            let ss = stats::sum_sq(a);
-            finite &= ss.is_finite();
-            acc.shortcut_rms.push(rms_of(ss, a.len()));
+            let r = stats::range(a);
+            finite &= r.sum_sq.is_finite();
+            acc.shortcut_rms.push(rms_of(r.sum_sq, a.len()));
+            acc.shortcut_max.push(f64::from(r.max_abs));
         }
         for b in samples(br, batch) {
-            let bb = stats::sum_sq(b);
-            finite &= bb.is_finite();
-            acc.branch_rms.push(rms_of(bb, b.len()));
+            let r = stats::range(b);
+            finite &= r.sum_sq.is_finite();
+            acc.branch_rms.push(rms_of(r.sum_sq, b.len()));
+            acc.branch_max.push(f64::from(r.max_abs));
         }
     }
     if !finite {

@@ -459,13 +459,76 @@ fn plots(r: &Report) -> io::Result<Vec<PlotView>> {
             })
             .unwrap_or_default(),
         stages: stages.clone(),
+        companion: None,
     };
     let rms_spec = PlotSpec {
         id: "rms",
         y_desc: "RMS of the block output",
         points: points(&|b| mean(b, |s| s.output_rms), "output RMS"),
         thresholds: Vec::new(),
+        stages: stages.clone(),
+        companion: None,
+    };
+    // The largest |x| over samples (the headroom's, when a format is named)
+    // and the RMS, against the format's limits.
+    let largest = |b: &BlockRow| -> Option<f64> {
+        let from_headroom = r
+            .headroom
+            .as_ref()
+            .and_then(|h| h.blocks.iter().find(|x| x.block == b.id))
+            .and_then(|x| x.max_abs);
+        from_headroom.or_else(|| b.stats.as_ref().and_then(|s| s.output_max_abs).map(|s| s.max))
+    };
+    const BLUISH_GREEN: plotters::style::RGBColor = plotters::style::RGBColor(0x00, 0x9E, 0x73);
+    let limits = r
+        .headroom
+        .as_ref()
+        .map(|h| {
+            let mut lines = Vec::new();
+            if let Some(l) = h.largest {
+                lines.push(Threshold {
+                    value: l,
+                    label: format!("{} largest {}", h.format, num(l)),
+                    colour: VERMILLION,
+                    below: false,
+                });
+            }
+            if let Some(n) = h.smallest_normal {
+                lines.push(Threshold {
+                    value: n,
+                    label: format!("{} smallest normal {}", h.format, num(n)),
+                    colour: BLUISH_GREEN,
+                    below: true,
+                });
+            }
+            lines
+        })
+        .unwrap_or_default();
+    let range_spec = PlotSpec {
+        id: "range",
+        y_desc: "|x| of the block output",
+        points: points(&largest, "largest |x|"),
+        thresholds: limits,
         stages,
+        companion: Some(plot::Companion {
+            label: "RMS",
+            main_label: "largest |x| over samples",
+            values: r.blocks.iter().map(|b| mean(b, |s| s.output_rms)).collect(),
+        }),
+    };
+    let range_caption = match &r.headroom {
+        Some(h) => format!(
+            "The largest |x| of each merge output over all samples (marks, solid line) and its \
+             RMS (dashed), log scale, against {}'s limits ({}). A value beyond the upper line \
+             would be infinite in {}; below the lower line it loses precision as a subnormal.",
+            h.format,
+            t(&h.chosen_by),
+            h.format
+        ),
+        None => "The largest |x| of each merge output over all samples (marks, solid line) and \
+                 its RMS (dashed), log scale. With --precision fp16, bf16 or int8 the format's \
+                 limits are drawn here and each block's headroom is reported."
+            .to_owned(),
     };
     let banner = model_findings(r);
     Ok(vec![
@@ -486,6 +549,12 @@ fn plots(r: &Report) -> io::Result<Vec<PlotView>> {
                       signal's size changes from the first block to the last."
                 .to_owned(),
             banner,
+        },
+        PlotView {
+            plot: plot::draw(&range_spec)?,
+            title: "Headroom across depth",
+            caption: range_caption,
+            banner: Vec::new(),
         },
     ])
 }

@@ -72,6 +72,14 @@ pub(crate) const LOW_IMPACT: Mark = Mark {
     path: "M-7,0L-3.5,-6L3.5,-6L7,0L3.5,6L-3.5,6Z",
     legend: "low impact when knocked out (hexagon)",
 };
+/// Dark grey, a bar with end caps: the block's range does not fit the
+/// target format (overflow or its risk, underflow, int8 outlier channels).
+pub(crate) const RANGE: Mark = Mark {
+    kind: "range",
+    fill: "#5A5A5A",
+    path: "M-7,-7L7,-7L7,-4L2,-4L2,4L7,4L7,7L-7,7L-7,4L-2,4L-2,-4L-7,-4Z",
+    legend: "range does not fit the target format (I-beam)",
+};
 /// Hollow grey: a block that was not measured.
 pub(crate) const UNMEASURED: Mark = Mark {
     kind: "unmeasured",
@@ -97,10 +105,11 @@ pub(crate) const VANISHING: Mark = Mark {
 };
 
 /// Every mark of a block, in the order of the legend.
-pub(crate) const ALL: [Mark; 10] = [
+pub(crate) const ALL: [Mark; 11] = [
     OK,
     DEAD,
     DOMINANT,
+    RANGE,
     EXPLODING,
     VANISHING,
     DEAD_CHANNELS,
@@ -111,8 +120,9 @@ pub(crate) const ALL: [Mark; 10] = [
 ];
 
 /// The mark of a block from its finding codes: the most severe one decides
-/// (non-finite, then a dead branch, dominant, a growing or shrinking input
-/// change, dead channels, lost shortcut, low impact). The signal's growth
+/// (non-finite, then a dead branch, dominant, a range that does not fit the
+/// target format, a growing or shrinking input change, dead channels, lost
+/// shortcut, low impact). The signal's growth
 /// across depth is a finding of the whole model and marks no block.
 pub(crate) fn for_codes(codes: impl IntoIterator<Item = FindingCode>) -> Mark {
     let mut best: Option<(u8, Mark)> = None;
@@ -121,11 +131,15 @@ pub(crate) fn for_codes(codes: impl IntoIterator<Item = FindingCode>) -> Mark {
             FindingCode::NonFinite => (0, NON_FINITE),
             FindingCode::Dead | FindingCode::StaticDead => (1, DEAD),
             FindingCode::Dominant => (2, DOMINANT),
-            FindingCode::ExplodingGain => (3, EXPLODING),
-            FindingCode::VanishingGain => (3, VANISHING),
-            FindingCode::DeadChannels => (4, DEAD_CHANNELS),
-            FindingCode::LostShortcut => (5, LOST_SHORTCUT),
-            FindingCode::LowImpact => (6, LOW_IMPACT),
+            FindingCode::Overflow
+            | FindingCode::OverflowRisk
+            | FindingCode::UnderflowRisk
+            | FindingCode::Int8OutlierChannels => (3, RANGE),
+            FindingCode::ExplodingGain => (4, EXPLODING),
+            FindingCode::VanishingGain => (4, VANISHING),
+            FindingCode::DeadChannels => (5, DEAD_CHANNELS),
+            FindingCode::LostShortcut => (6, LOST_SHORTCUT),
+            FindingCode::LowImpact => (7, LOW_IMPACT),
             FindingCode::ExplodingSignal | FindingCode::VanishingSignal => continue,
         };
         if best.is_none_or(|(rank, _)| candidate.0 < rank) {
@@ -148,6 +162,8 @@ mod tests {
         assert_eq!(for_codes([C::DeadChannels, C::NonFinite]), NON_FINITE);
         assert_eq!(for_codes([C::ExplodingSignal]), OK);
         assert_eq!(for_codes([C::LowImpact, C::ExplodingGain]), EXPLODING);
+        assert_eq!(for_codes([C::OverflowRisk, C::ExplodingGain]), RANGE);
+        assert_eq!(for_codes([C::Overflow, C::NonFinite]), NON_FINITE);
     }
 
     #[test]

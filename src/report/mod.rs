@@ -22,7 +22,7 @@ use std::collections::BTreeMap;
 use serde::{Deserialize, Serialize};
 
 use crate::vocab::{
-    Command, DeadReason, FindingCode, NotBlockReason, Placement, Severity, ShortcutKind,
+    Command, DeadReason, FindingCode, NotBlockReason, Placement, Precision, Severity, ShortcutKind,
 };
 
 /// Identifies the JSON document of a report.
@@ -38,6 +38,9 @@ pub const REPORT_SCHEMA: &str = "shunt/report";
 /// concatenative skips, merges that are not blocks and nodes carrying
 /// subgraphs (left out in the main graph), `BlockRow::not_measured` (left
 /// out when measured or not run), and `SubgraphRow::bodies`.
+/// Version 5 also added the range statistics to `StatsRow` (largest |x| of the
+/// merge output, shortcut and branch, crest factor, outlier channels, what
+/// float16 would lose) and `headroom` (issue 14).
 pub const REPORT_SCHEMA_VERSION: u32 = 5;
 
 /// The result of `shunt scan` or `shunt audit` on one model.
@@ -83,6 +86,71 @@ pub struct Report {
     /// when `audit --knockout` or `--gain` ran.
     #[serde(default)]
     pub influence: Option<InfluenceReport>,
+    /// Headroom of every block in a target number format, when the model
+    /// ran and `--precision` named a format or the model is half precision.
+    #[serde(default)]
+    pub headroom: Option<HeadroomReport>,
+}
+
+/// How every block's range fits a target number format.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct HeadroomReport {
+    /// The format: `fp16`, `bf16` or `int8`.
+    pub format: Precision,
+    /// Why this format: `--precision`, or the model's own element type.
+    pub chosen_by: String,
+    /// The format's largest finite value (`null` for int8, whose scale is
+    /// calibrated to the range).
+    pub largest: Option<f64>,
+    /// The format's smallest normal magnitude (`null` for int8).
+    pub smallest_normal: Option<f64>,
+    /// The format's smallest subnormal magnitude (`null` for int8).
+    pub smallest_subnormal: Option<f64>,
+    /// int8: the magnitude levels of a symmetric per-tensor scale (127).
+    pub levels: Option<u32>,
+    /// The thresholds of the headroom findings.
+    pub thresholds: HeadroomThresholdsRow,
+    /// One row per block of the report, in block order.
+    pub blocks: Vec<HeadroomRow>,
+}
+
+/// The thresholds of the headroom findings (all relative).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct HeadroomThresholdsRow {
+    /// `overflow-risk` when the headroom is below this factor.
+    pub margin: f64,
+    /// `underflow-risk` when more than this fraction of a merge output
+    /// would be zero or subnormal in the format.
+    pub underflow_above: f64,
+    /// `int8-outlier-channels` when the largest channel's max |x| exceeds
+    /// the median channel's by more than this factor.
+    pub outlier_ratio_above: f64,
+}
+
+/// One block's range against the format.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct HeadroomRow {
+    /// The block's id.
+    pub block: usize,
+    /// Largest |x| of the merge output over all samples (`null` when a
+    /// value is not finite or the block was not measured).
+    pub max_abs: Option<f64>,
+    /// Mean RMS of the merge output over samples.
+    pub rms: Option<f64>,
+    /// The format's largest finite value / `max_abs` (0 when a value is
+    /// already infinite; `null` for int8).
+    pub headroom: Option<f64>,
+    /// `log2(headroom)`: bits of exponent range left above the block.
+    pub headroom_bits: Option<f64>,
+    /// Mean fraction of merge-output values that would be zero or
+    /// subnormal in the format (fp16 only).
+    pub underflow: Option<f64>,
+    /// int8: levels of a per-tensor scale the median channel uses,
+    /// 127 / `channel_max_ratio`.
+    pub median_channel_levels: Option<f64>,
 }
 
 /// The model file and its main graph.
@@ -306,6 +374,26 @@ pub struct StatsRow {
     pub nan: u64,
     /// Infinite values seen in the block's tensors.
     pub inf: u64,
+    /// Largest |x| of the merge output, per sample (`null` when some sample
+    /// holds a NaN or an infinity: see `nan`, `inf`).
+    pub output_max_abs: Option<Spread>,
+    /// Largest |x| of the shortcut at the merge, per sample.
+    pub shortcut_max_abs: Option<Spread>,
+    /// Largest |x| of the branch at the merge, per sample.
+    pub branch_max_abs: Option<Spread>,
+    /// Crest factor of the merge output, max |x| / RMS, per sample.
+    pub crest_factor: Option<Spread>,
+    /// The largest channel's max |x| over the median channel's (merge
+    /// output, over all samples): how far outlier channels stand out.
+    pub channel_max_ratio: Option<f64>,
+    /// The channel with the largest max |x| (0-based), with `channel_max_ratio`.
+    pub outlier_channel: Option<usize>,
+    /// Fraction of the merge output's values float16 would round to zero
+    /// (nonzero, |x| ≤ 2^-25), per sample.
+    pub f16_zero: Option<Spread>,
+    /// Fraction of the merge output's values float16 would keep only as
+    /// subnormals (2^-25 < |x| < 2^-14), per sample.
+    pub f16_subnormal: Option<Spread>,
 }
 
 /// Mean, standard deviation (over samples), minimum and maximum.

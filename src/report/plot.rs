@@ -77,7 +77,24 @@ pub(crate) struct PlotSpec {
     pub(crate) thresholds: Vec<Threshold>,
     /// Stage runs, in order.
     pub(crate) stages: Vec<StageSpan>,
+    /// A second series drawn as a dashed line without marks (the RMS beside
+    /// the largest |x|), with its legend words.
+    pub(crate) companion: Option<Companion>,
 }
+
+/// A second series of a plot: a dashed line and its legend.
+#[derive(Debug, Clone)]
+pub(crate) struct Companion {
+    /// Our own words for the legend.
+    pub(crate) label: &'static str,
+    /// Words for the marked series in the legend.
+    pub(crate) main_label: &'static str,
+    /// One value per block, in block order.
+    pub(crate) values: Vec<Option<f64>>,
+}
+
+/// Okabe–Ito blue, the companion series' colour.
+const BLUE: RGBColor = RGBColor(0x00, 0x72, 0xB2);
 
 /// A drawn plot: plotters' SVG of the frame and the marks' positions.
 #[derive(Debug, Clone)]
@@ -137,6 +154,7 @@ fn y_range(spec: &PlotSpec) -> (f64, f64) {
         .points
         .iter()
         .filter_map(|p| p.value)
+        .chain(spec.companion.iter().flat_map(|c| c.values.iter().flatten().copied()))
         .chain(spec.thresholds.iter().map(|t| t.value))
         .filter(|v| v.is_finite() && *v > 0.0);
     let (lo, hi) =
@@ -282,6 +300,37 @@ pub(crate) fn draw(spec: &PlotSpec) -> io::Result<Plot> {
             chart.draw_series(LineSeries::new(r, LINE.stroke_width(2))).map_err(drawing_error)?;
         }
 
+        if let Some(c) = &spec.companion {
+            let mut run: Vec<(f64, f64)> = Vec::new();
+            let mut runs = Vec::new();
+            for (k, v) in c.values.iter().enumerate() {
+                match v.filter(|v| v.is_finite() && *v > 0.0) {
+                    Some(v) => run.push(((k + 1) as f64, v)),
+                    None => runs.push(std::mem::take(&mut run)),
+                }
+            }
+            runs.push(run);
+            for r in runs.into_iter().filter(|r| r.len() > 1) {
+                chart
+                    .draw_series(DashedLineSeries::new(r, 6, 4, BLUE.stroke_width(2)))
+                    .map_err(drawing_error)?;
+            }
+            // The legend, top left inside the plot.
+            let (px, py) = chart.backend_coord(&(0.5, hi));
+            root.draw(&Text::new(
+                format!("solid: {}", c.main_label),
+                (px + 8, py + 6),
+                font(13.0).color(&LINE).pos(Pos::new(HPos::Left, VPos::Top)),
+            ))
+            .map_err(drawing_error)?;
+            root.draw(&Text::new(
+                format!("dashed: {}", c.label),
+                (px + 8, py + 22),
+                font(13.0).color(&BLUE).pos(Pos::new(HPos::Left, VPos::Top)),
+            ))
+            .map_err(drawing_error)?;
+        }
+
         let mut flagged = 0usize;
         for p in &spec.points {
             let known = p.value.filter(|v| v.is_finite() && *v > 0.0);
@@ -339,6 +388,7 @@ mod tests {
             points: vec![point(1, Some(1.0)), point(2, Some(0.0)), point(3, None)],
             thresholds: vec![],
             stages: vec![StageSpan { first: 1, last: 3, label: "stage 1".into() }],
+            companion: None,
         };
         let plot = draw(&spec).unwrap();
         assert_eq!(plot.marks.len(), 3);
@@ -363,8 +413,13 @@ mod tests {
                 below: true,
             }],
             stages: vec![],
+            companion: Some(Companion {
+                label: "rms",
+                main_label: "max",
+                values: vec![Some(1e-3), None],
+            }),
         };
         let (lo, hi) = y_range(&spec);
-        assert!(lo < 0.01 && hi > 31.9, "{lo} {hi}");
+        assert!(lo < 1e-3 && hi > 31.9, "{lo} {hi}");
     }
 }

@@ -82,6 +82,11 @@ pub fn render(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
         profile(r, out)?;
     }
     if r.run_error.is_none()
+        && let Some(h) = &r.headroom
+    {
+        headroom(h, out)?;
+    }
+    if r.run_error.is_none()
         && let Some(inf) = &r.influence
     {
         influence(inf, out)?;
@@ -276,6 +281,7 @@ fn profile(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
         r.blocks.iter().map(|b| b.stats.as_ref().and_then(f).map_or(f64::NAN, |s| s.mean)).collect()
     };
     let output = pick(|s| s.output_rms);
+    let max_abs = pick(|s| s.output_max_abs);
     let ratio = pick(|s| s.ratio);
     let ends = |v: &[f64]| {
         let known: Vec<f64> = v.iter().copied().filter(|x| x.is_finite()).collect();
@@ -287,8 +293,39 @@ fn profile(r: &Report, out: &mut dyn io::Write) -> io::Result<()> {
     writeln!(out)?;
     writeln!(out, "signal profile across depth (log scale, one mark per block):")?;
     writeln!(out, "  output RMS  {}  {}", sparkline(&output), ends(&output))?;
+    writeln!(out, "  max |x|     {}  {}", sparkline(&max_abs), ends(&max_abs))?;
     writeln!(out, "  ratio       {}  {}", sparkline(&ratio), ends(&ratio))?;
     Ok(())
+}
+
+/// Every block's range against the target format.
+fn headroom(h: &crate::report::HeadroomReport, out: &mut dyn io::Write) -> io::Result<()> {
+    let num = |v: Option<f64>| v.map_or("-".to_owned(), |v| format!("{v:.3e}"));
+    writeln!(out)?;
+    let limits = match (h.largest, h.smallest_normal, h.levels) {
+        (Some(l), Some(n), _) => format!("largest {l:.5e}, smallest normal {n:.4e}"),
+        (_, _, Some(levels)) => format!("{levels} levels each side of a per-tensor scale"),
+        _ => String::new(),
+    };
+    writeln!(out, "headroom in {} ({}; {limits}):", h.format, terminal_safe(&h.chosen_by))?;
+    let last = if h.levels.is_some() { "median-channel levels" } else { "zero or subnormal" };
+    let mut t = new_table(&["#", "max |x|", "rms", "headroom", "bits", last]);
+    for b in &h.blocks {
+        let last = if h.levels.is_some() {
+            b.median_channel_levels.map_or("-".to_owned(), |v| format!("{v:.1}"))
+        } else {
+            b.underflow.map_or("-".to_owned(), |u| format!("{:.2}%", u * 100.0))
+        };
+        t.add_row(vec![
+            b.block.to_string(),
+            b.max_abs.map_or("non-finite".to_owned(), |v| format!("{v:.3e}")),
+            num(b.rms),
+            num(b.headroom),
+            b.headroom_bits.map_or("-".to_owned(), |v| format!("{v:.1}")),
+            last,
+        ]);
+    }
+    writeln!(out, "{t}")
 }
 
 /// Which blocks matter: knockout, gain and effective depth.

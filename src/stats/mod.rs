@@ -6,7 +6,7 @@
 //! well below the 1e-4 relative agreement the reference checks ask for.
 //!
 //! The kernels a run measures with (`sum_sq`, `sums3`, `pair_sums`,
-//! `sum_sq_not_positive`, `non_finite`, `rms`) take any [`Value`]: a
+//! `range`, `range_channels`, `non_finite`, `rms`) take any [`Value`]: a
 //! half-precision tensor is widened element by element as it is read, so it
 //! is measured in one pass without a float32 copy, and the result is exactly
 //! what the float32 kernel gives on the widened values (same operations in
@@ -80,67 +80,225 @@ pub fn sums3<A: Value, B: Value>(a: &[A], b: &[B]) -> (f64, f64, f64) {
     (ta, tb, tab)
 }
 
-/// [`sums3`] of one sample laid out `[outer, channels, inner]`, adding each
-/// channel's sums of squares to `ch_a` and `ch_b` (left alone when empty).
+/// Sums of one pair of tensors of the same length, from one pass.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct PairSums {
+    /// Σa².
+    pub aa: f64,
+    /// Σb².
+    pub bb: f64,
+    /// Σab.
+    pub ab: f64,
+    /// Largest |a| (NaN passed over).
+    pub max_a: f32,
+    /// Largest |b| (NaN passed over).
+    pub max_b: f32,
+}
+
+impl PairSums {
+    fn add(&mut self, o: &PairSums) {
+        self.aa += o.aa;
+        self.bb += o.bb;
+        self.ab += o.ab;
+        self.max_a = self.max_a.max(o.max_a);
+        self.max_b = self.max_b.max(o.max_b);
+    }
+}
+
+/// [`sums3`] and the largest |a| and |b|, in one pass.
+pub fn pair_range<A: Value, B: Value>(a: &[A], b: &[B]) -> PairSums {
+    debug_assert_eq!(a.len(), b.len());
+    let mut out = PairSums::default();
+    for (ca, cb) in a.chunks(CHUNK).zip(b.chunks(CHUNK)) {
+        let mut la = [0f32; 8];
+        let mut lb = [0f32; 8];
+        let mut lab = [0f32; 8];
+        let mut ma = [0f32; 8];
+        let mut mb = [0f32; 8];
+        let mut ia = ca.chunks_exact(8);
+        let mut ib = cb.chunks_exact(8);
+        for (x, y) in (&mut ia).zip(&mut ib) {
+            for i in 0..8 {
+                let (x, y) = (x[i].f32(), y[i].f32());
+                la[i] += x * x;
+                lb[i] += y * y;
+                lab[i] += x * y;
+                ma[i] = ma[i].max(x.abs());
+                mb[i] = mb[i].max(y.abs());
+            }
+        }
+        out.aa += la.iter().map(|&v| v as f64).sum::<f64>();
+        out.bb += lb.iter().map(|&v| v as f64).sum::<f64>();
+        out.ab += lab.iter().map(|&v| v as f64).sum::<f64>();
+        out.max_a = ma.iter().fold(out.max_a, |m, &v| m.max(v));
+        out.max_b = mb.iter().fold(out.max_b, |m, &v| m.max(v));
+        for (&x, &y) in ia.remainder().iter().zip(ib.remainder()) {
+            let (x, y) = (x.f32(), y.f32());
+            out.aa += x as f64 * x as f64;
+            out.bb += y as f64 * y as f64;
+            out.ab += x as f64 * y as f64;
+            out.max_a = out.max_a.max(x.abs());
+            out.max_b = out.max_b.max(y.abs());
+        }
+    }
+    out
+}
+
+/// [`pair_range`] of one sample laid out `[outer, channels, inner]`, adding
+/// each channel's sums of squares to `ch_a` and `ch_b` (left alone when empty).
 pub fn pair_sums<A: Value, B: Value>(
     a: &[A],
     b: &[B],
     inner: usize,
     ch_a: &mut [f64],
     ch_b: &mut [f64],
-) -> (f64, f64, f64) {
+) -> PairSums {
     let channels = ch_a.len();
     if channels == 0 || inner == 0 || ch_b.len() != channels {
-        return sums3(a, b);
+        return pair_range(a, b);
     }
-    let (mut ta, mut tb, mut tab) = (0f64, 0f64, 0f64);
+    let mut out = PairSums::default();
     if inner >= 8 {
         for (i, (xa, xb)) in a.chunks(inner).zip(b.chunks(inner)).enumerate() {
-            let (sa, sb, sab) = sums3(xa, xb);
-            ch_a[i % channels] += sa;
-            ch_b[i % channels] += sb;
-            ta += sa;
-            tb += sb;
-            tab += sab;
+            let s = pair_range(xa, xb);
+            ch_a[i % channels] += s.aa;
+            ch_b[i % channels] += s.bb;
+            out.add(&s);
         }
-        return (ta, tb, tab);
+        return out;
     }
     // Channels last (or nearly): accumulate element by element.
     for (i, (&x, &y)) in a.iter().zip(b).enumerate() {
         let c = (i / inner) % channels;
-        let (x, y) = (x.f32() as f64, y.f32() as f64);
-        ch_a[c] += x * x;
-        ch_b[c] += y * y;
-        ta += x * x;
-        tb += y * y;
-        tab += x * y;
+        let (x, y) = (x.f32(), y.f32());
+        let (xd, yd) = (x as f64, y as f64);
+        ch_a[c] += xd * xd;
+        ch_b[c] += yd * yd;
+        out.aa += xd * xd;
+        out.bb += yd * yd;
+        out.ab += xd * yd;
+        out.max_a = out.max_a.max(x.abs());
+        out.max_b = out.max_b.max(y.abs());
     }
-    (ta, tb, tab)
+    out
 }
 
-/// Sum of squares and the number of values that are not positive, in one pass.
-pub fn sum_sq_not_positive<T: Value>(x: &[T]) -> (f64, u64) {
-    let mut total = 0f64;
-    let mut not_positive = 0u64;
+/// float16's smallest normal magnitude, 2^-14 (IEEE 754-2008 binary16).
+pub const F16_MIN_NORMAL: f32 = 6.103_515_6e-5;
+/// Half of float16's smallest subnormal, 2^-25: a magnitude at or below it
+/// rounds to zero in float16 (round to nearest, ties to even).
+pub const F16_FLUSH: f32 = 2.980_232_2e-8;
+
+/// What one pass over a tensor (or one sample of it) measures besides its
+/// sum of squares: what a ReLU would zero, the range, and what float16
+/// would lose.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct Range {
+    /// Sum of squares, in `f64`.
+    pub sum_sq: f64,
+    /// Values that are not positive.
+    pub not_positive: u64,
+    /// Largest |x| (NaN values are passed over; an infinity is infinite).
+    pub max_abs: f32,
+    /// Nonzero values float16 rounds to zero: 0 < |x| ≤ 2^-25.
+    pub f16_zero: u64,
+    /// Values float16 keeps only as subnormals: 2^-25 < |x| < 2^-14.
+    pub f16_subnormal: u64,
+}
+
+impl Range {
+    fn add(&mut self, other: &Range) {
+        self.sum_sq += other.sum_sq;
+        self.not_positive += other.not_positive;
+        self.max_abs = self.max_abs.max(other.max_abs);
+        self.f16_zero += other.f16_zero;
+        self.f16_subnormal += other.f16_subnormal;
+    }
+}
+
+/// [`Range`] of `x` in one pass: the sum of squares (as [`sum_sq`] sums
+/// it), the values that are not positive, the largest |x| and the values
+/// float16 would flush to zero or keep as subnormals.
+pub fn range<T: Value>(x: &[T]) -> Range {
+    let mut out = Range::default();
     for chunk in x.chunks(CHUNK) {
         let mut lanes = [0f32; 8];
         let mut counts = [0u32; 8];
+        let mut maxes = [0f32; 8];
+        let mut zero = [0u32; 8];
+        let mut sub = [0u32; 8];
         let mut it = chunk.chunks_exact(8);
         for c in &mut it {
             for i in 0..8 {
                 let v = c[i].f32();
+                let a = v.abs();
                 lanes[i] += v * v;
                 counts[i] += (v <= 0.0) as u32;
+                maxes[i] = maxes[i].max(a);
+                zero[i] += (a > 0.0 && a <= F16_FLUSH) as u32;
+                sub[i] += (a > F16_FLUSH && a < F16_MIN_NORMAL) as u32;
             }
         }
-        total += lanes.iter().map(|&v| v as f64).sum::<f64>();
-        not_positive += counts.iter().map(|&c| c as u64).sum::<u64>();
+        out.sum_sq += lanes.iter().map(|&v| v as f64).sum::<f64>();
+        out.not_positive += counts.iter().map(|&c| c as u64).sum::<u64>();
+        out.max_abs = maxes.iter().fold(out.max_abs, |m, &v| m.max(v));
+        out.f16_zero += zero.iter().map(|&c| c as u64).sum::<u64>();
+        out.f16_subnormal += sub.iter().map(|&c| c as u64).sum::<u64>();
         for v in it.remainder().iter().map(|v| v.f32()) {
-            total += v as f64 * v as f64;
-            not_positive += (v <= 0.0) as u64;
+            let a = v.abs();
+            out.sum_sq += v as f64 * v as f64;
+            out.not_positive += (v <= 0.0) as u64;
+            out.max_abs = out.max_abs.max(a);
+            out.f16_zero += (a > 0.0 && a <= F16_FLUSH) as u64;
+            out.f16_subnormal += (a > F16_FLUSH && a < F16_MIN_NORMAL) as u64;
         }
     }
-    (total, not_positive)
+    out
+}
+
+/// [`range`] of one sample laid out `[outer, channels, inner]`, raising
+/// each channel's largest |x| in `channel_max` (a plain [`range`] when it is
+/// empty).
+pub fn range_channels<T: Value>(x: &[T], inner: usize, channel_max: &mut [f32]) -> Range {
+    let channels = channel_max.len();
+    if channels == 0 || inner == 0 {
+        return range(x);
+    }
+    let mut out = Range::default();
+    if inner >= 8 {
+        for (i, part) in x.chunks(inner).enumerate() {
+            let r = range(part);
+            let c = &mut channel_max[i % channels];
+            *c = c.max(r.max_abs);
+            out.add(&r);
+        }
+        return out;
+    }
+    // Channels last (or nearly): one row of channels at a time.
+    let row = channels * inner;
+    for part in x.chunks(row) {
+        let r = range(part);
+        out.add(&r);
+        for (k, v) in part.iter().enumerate() {
+            let c = &mut channel_max[k / inner];
+            *c = c.max(v.f32().abs());
+        }
+    }
+    out
+}
+
+/// The ratio of the largest to the median of per-channel maxima, and the
+/// largest channel; `None` with fewer than two channels or a median of 0.
+pub fn channel_outlier(channel_max: &[f64]) -> Option<(f64, usize)> {
+    if channel_max.len() < 2 {
+        return None;
+    }
+    let (top, &largest) = channel_max.iter().enumerate().max_by(|a, b| a.1.total_cmp(b.1))?;
+    let mut sorted = channel_max.to_vec();
+    sorted.sort_by(f64::total_cmp);
+    let n = sorted.len();
+    let median = if n % 2 == 1 { sorted[n / 2] } else { (sorted[n / 2 - 1] + sorted[n / 2]) / 2.0 };
+    (median > 0.0).then(|| (largest / median, top))
 }
 
 /// Root mean square; 0 for an empty slice.
@@ -303,7 +461,13 @@ mod tests {
         let half = narrow.len() / 2;
         assert_eq!(sum_sq(&narrow).to_bits(), sum_sq(&wide).to_bits());
         assert_eq!(rms(&narrow[..half]).to_bits(), rms(&wide[..half]).to_bits());
-        assert_eq!(sum_sq_not_positive(&narrow), sum_sq_not_positive(&wide));
+        assert_eq!(range(&narrow), range(&wide));
+        let (mut cn, mut cw) = (vec![0.0; 5], vec![0.0; 5]);
+        assert_eq!(
+            range_channels(&narrow[..1035], 9, &mut cn),
+            range_channels(&wide[..1035], 9, &mut cw)
+        );
+        assert_eq!(cn, cw);
         assert_eq!(non_finite(&narrow), non_finite(&wide));
         let (a, b) = (&narrow[..half], &narrow[half..2 * half]);
         let (x, y) = (&wide[..half], &wide[half..2 * half]);
@@ -349,7 +513,8 @@ mod tests {
         // [C=4, inner=250] and [T=250, C=4] give the same totals as the flat sums.
         for inner in [250, 1] {
             let (mut ca, mut cb) = (vec![0.0; 4], vec![0.0; 4]);
-            let (ta, tb, tab) = pair_sums(&a, &b, inner, &mut ca, &mut cb);
+            let PairSums { aa: ta, bb: tb, ab: tab, .. } =
+                pair_sums(&a, &b, inner, &mut ca, &mut cb);
             // f32 lanes summed over other chunk boundaries: float32 rounding.
             assert!(
                 (ta - sa).abs() < 1e-6 * sa
@@ -361,7 +526,8 @@ mod tests {
         let (mut ca, mut cb) = (vec![0.0; 2], vec![0.0; 2]);
         pair_sums(&[1.0, 1.0, 2.0, 2.0], &[0.0; 4], 1, &mut ca, &mut cb);
         assert_eq!(ca, vec![5.0, 5.0]);
-        assert_eq!(sum_sq_not_positive(&[-1.0, 0.0, 2.0]), (5.0, 2));
+        let r = range(&[-1.0f32, 0.0, 2.0]);
+        assert_eq!((r.sum_sq, r.not_positive, r.max_abs), (5.0, 2, 2.0));
     }
 
     #[test]
@@ -374,6 +540,38 @@ mod tests {
         let (mut out, mut zero) = (vec![0.0; 2], vec![0.0; 2]);
         pair_sums(&[1.0, 2.0, 1.0, 2.0, 1.0, 2.0], &[0.0; 6], 1, &mut out, &mut zero);
         assert_eq!(out, [3.0, 12.0]);
+    }
+
+    #[test]
+    fn range_counts_what_float16_loses() {
+        // 2^-25 rounds to 0 in float16 (a tie, to even); just above it is the
+        // smallest subnormal; 2^-14 is the smallest normal.
+        let tiny = F16_FLUSH;
+        let x = [0.0f32, tiny, -tiny, tiny * 1.5, 1e-5, -F16_MIN_NORMAL, 3.0, -70000.0, f32::NAN];
+        let r = range(&x);
+        assert_eq!((r.f16_zero, r.f16_subnormal), (2, 2));
+        assert_eq!(r.max_abs, 70000.0, "NaN is passed over");
+        assert_eq!(F16_FLUSH, 2f32.powi(-25));
+        assert_eq!(F16_MIN_NORMAL, 2f32.powi(-14));
+        // Long inputs: the lanes agree with a plain loop.
+        let long: Vec<f32> = (0..2051).map(|i| ((i * 7919) % 1000) as f32 * 1e-7 - 5e-5).collect();
+        let r = range(&long);
+        let plain_max = long.iter().fold(0f32, |m, v| m.max(v.abs()));
+        let plain_sub =
+            long.iter().filter(|v| v.abs() > F16_FLUSH && v.abs() < F16_MIN_NORMAL).count();
+        assert_eq!((r.max_abs, r.f16_subnormal as usize), (plain_max, plain_sub));
+        // Per channel, channels first and channels last.
+        let mut ch = vec![0.0; 2];
+        range_channels(&[1.0f32, -4.0, 1.0, 2.0, 2.0, 2.0], 3, &mut ch);
+        assert_eq!(ch, [4.0, 2.0]);
+        let mut ch = vec![0.0; 2];
+        range_channels(&[1.0f32, 2.0, -4.0, 2.0, 1.0, 2.0], 1, &mut ch);
+        assert_eq!(ch, [4.0, 2.0]);
+        assert_eq!(channel_outlier(&[1.0, 2.0, 8.0]), Some((4.0, 2)));
+        assert_eq!(channel_outlier(&[1.0, 3.0, 8.0, 2.0]), Some((3.2, 2)));
+        assert_eq!(channel_outlier(&[1.0]), None);
+        let p = pair_range(&[1.0f32, -3.0], &[0.5f32, 0.25]);
+        assert_eq!((p.max_a, p.max_b, p.aa), (3.0, 0.5, 10.0));
     }
 
     #[test]
