@@ -28,6 +28,7 @@ use std::path::Path;
 use tract_onnx::prelude::*;
 use tract_onnx::tract_core::model::{TypedNode, TypedRunnableModel, TypedSimpleState};
 use tract_onnx::tract_core::ops::OpState;
+use tract_onnx::tract_core::ops::scan::OptScan;
 use tract_onnx::tract_core::plan::{EvalContext, SimpleState};
 use tract_onnx::tract_core::tract_linalg::multithread::{Executor, multithread_tract_scope};
 use tract_onnx::tract_hir::infer::Factoid;
@@ -394,6 +395,10 @@ fn forced_layout() -> Option<Layout> {
 pub(crate) struct Runner {
     state: TypedSimpleState,
     executor: Executor,
+    /// The plan, kept when its ops carry state from one run to the next
+    /// (a `Scan` keeps its recurrent state for streaming use), so that each
+    /// pass starts from a fresh state, as its first did.
+    stateful: Option<Arc<TypedRunnableModel>>,
 }
 
 impl Runner {
@@ -404,7 +409,8 @@ impl Runner {
         } else {
             Executor::SingleThread
         };
-        Ok(Runner { state, executor })
+        let carries_state = prepared.plan.model().nodes.iter().any(|n| n.op_is::<OptScan>());
+        Ok(Runner { state, executor, stateful: carries_state.then(|| prepared.plan.clone()) })
     }
 
     /// One pass with `eval` called on every node, on this runner's executor.
@@ -417,6 +423,9 @@ impl Runner {
             TVec<TValue>,
         ) -> TractResult<TVec<TValue>>,
     {
+        if let Some(plan) = &self.stateful {
+            self.state = SimpleState::new(plan)?;
+        }
         let state = &mut self.state;
         multithread_tract_scope(self.executor.clone(), || state.run_plan_with_eval(tensors, eval))
     }
