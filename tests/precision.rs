@@ -158,6 +158,31 @@ fn the_overflow_stack_is_flagged_at_its_block_before_conversion() {
     assert!(findings(&plain, "overflow").is_empty());
 }
 
+/// The Markdown report carries the headroom as a column of its blocks table:
+/// below 1 exactly from the block the JSON flags as overflowing.
+#[test]
+fn the_markdown_blocks_table_shows_the_headroom() {
+    let path = fixture(OVERFLOW).to_string_lossy().into_owned();
+    let run = shunt(&["audit", &path, "--precision", "fp16", "--format", "markdown", "--quiet"]);
+    assert!(run.code <= 1, "{}", run.stderr);
+    let header = run.stdout.lines().find(|l| l.starts_with("| # |")).expect("a blocks table");
+    let column = header.split('|').position(|c| c.trim() == "headroom in fp16");
+    let column = column.expect("a headroom column");
+    let rows: Vec<f64> = run
+        .stdout
+        .lines()
+        .filter(|l| l.split('|').nth(1).is_some_and(|c| c.trim().parse::<usize>().is_ok()))
+        .map(|l| l.split('|').nth(column).unwrap().trim().parse::<f64>().unwrap())
+        .collect();
+    assert_eq!(rows.len(), OVERFLOW_BLOCKS);
+    for (k, headroom) in rows.iter().enumerate() {
+        assert_eq!(*headroom < 1.0, k + 1 >= OVERFLOW_BLOCK, "block {}: {headroom}", k + 1);
+    }
+    // Without a target format the table has no such column.
+    let plain = shunt(&["audit", &path, "--format", "markdown", "--quiet"]);
+    assert!(!plain.stdout.contains("headroom in"));
+}
+
 // Converted by onnxconverter-common 1.16.0 and run by onnxruntime 1.23.2
 // (tests/reference/precision.py tensors): the merge outputs of blocks 1-4
 // are finite and block 5's holds infinities; shunt's audit of the float16

@@ -79,6 +79,9 @@ struct Doc<'a> {
     findings: &'a [FindingLine],
     rows: &'a [Row],
     measured: bool,
+    /// The headroom column's title (`headroom in fp16`), when the report
+    /// has a headroom section.
+    headroom: Option<String>,
     elided_findings: usize,
     elided_rows: usize,
     max_bytes: usize,
@@ -110,6 +113,9 @@ struct Row {
     cosine: String,
     growth: String,
     output: String,
+    /// The block's headroom in the report's target format: the ratio for a
+    /// float format, the median channel's levels for int8.
+    headroom: String,
     codes: String,
 }
 
@@ -139,6 +145,10 @@ fn render_string(r: &Report, config: &MarkdownConfig) -> io::Result<String> {
             findings: &findings[..nf],
             rows: &rows[..nr],
             measured,
+            headroom: r.headroom.as_ref().map(|h| match h.levels {
+                Some(_) => format!("{} levels of the median channel", h.format),
+                None => format!("headroom in {}", h.format),
+            }),
             elided_findings: findings.len() - nf,
             elided_rows: rows.len() - nr,
             max_bytes: config.max_bytes,
@@ -238,6 +248,17 @@ fn row(r: &Report, b: &BlockRow) -> Row {
     let spread = |v: Option<crate::report::Spread>| v.map_or("–".to_owned(), |v| num(v.mean));
     let codes: Vec<&str> =
         r.findings.iter().filter(|f| f.block == Some(b.id)).map(|f| f.code.as_str()).collect();
+    let room = r.headroom.as_ref().and_then(|h| {
+        let row = h.blocks.iter().find(|x| x.block == b.id)?;
+        Some(match h.levels {
+            Some(_) => row.median_channel_levels.map_or("–".to_owned(), |v| format!("{v:.1}")),
+            None => match (row.max_abs, row.headroom) {
+                (None, _) => "non-finite".to_owned(),
+                (_, Some(x)) => num(x),
+                _ => "–".to_owned(),
+            },
+        })
+    });
     Row {
         id: b.id,
         stage: b.stage.map_or("?".to_owned(), |s| s.to_string()),
@@ -250,6 +271,7 @@ fn row(r: &Report, b: &BlockRow) -> Row {
         cosine: s.and_then(|s| s.cosine).map_or("–".to_owned(), |c| format!("{:+.2}", c.mean)),
         growth: spread(s.and_then(|s| s.growth)),
         output: spread(s.and_then(|s| s.output_rms)),
+        headroom: room.unwrap_or_else(|| "–".to_owned()),
         codes: codes.join(", "),
     }
 }
