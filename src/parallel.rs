@@ -209,8 +209,12 @@ fn sequential<S, T, E>(
     Ok(())
 }
 
-/// Runs `f`, turning a panic into an error.
-fn guarded<T, E>(f: impl FnOnce() -> Result<T, E>, panicked: impl Fn(String) -> E) -> Result<T, E> {
+/// Runs `f`, turning a panic into an error: `panicked` gets the panic's
+/// message. The one place a panic is caught around the engine.
+pub(crate) fn guarded<T, E>(
+    f: impl FnOnce() -> Result<T, E>,
+    panicked: impl Fn(String) -> E,
+) -> Result<T, E> {
     catch_unwind(AssertUnwindSafe(f)).unwrap_or_else(|panic| {
         let what = panic
             .downcast_ref::<String>()

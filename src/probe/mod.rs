@@ -22,7 +22,6 @@ pub mod inputs;
 pub mod paired;
 
 use std::collections::HashMap;
-use std::panic::{AssertUnwindSafe, catch_unwind};
 use std::path::Path;
 
 use tract_onnx::prelude::*;
@@ -158,21 +157,7 @@ pub fn run(
     budget: &Budget,
     progress: &dyn Progress,
 ) -> Result<ProbeResult> {
-    let inner = AssertUnwindSafe(|| run_inner(source, watches, input_plan, budget, progress));
-    match catch_unwind(inner) {
-        Ok(r) => r,
-        Err(panic) => {
-            let what = panic
-                .downcast_ref::<String>()
-                .map(String::as_str)
-                .or_else(|| panic.downcast_ref::<&str>().copied())
-                .unwrap_or("unknown cause");
-            Err(Error::new(
-                ErrorKind::Probe,
-                format!("the inference engine (tract) failed while running the model: {what}"),
-            ))
-        }
-    }
+    parallel::guarded(|| run_inner(source, watches, input_plan, budget, progress), engine_panic)
 }
 
 /// Runs a small model (no watches) once on the first pass of the plan's
@@ -191,10 +176,7 @@ pub fn evaluate(source: ModelSource<'_>, input_plan: &InputPlan) -> Result<Vec<f
         let view = cast.try_as_plain_ram().map_err(|e| tract_err("tract", &e))?;
         Ok(view.as_slice::<f64>().map_err(|e| tract_err("tract", &e))?.to_vec())
     };
-    match catch_unwind(AssertUnwindSafe(go)) {
-        Ok(r) => r,
-        Err(_) => Err(Error::new(ErrorKind::Probe, "the inference engine (tract) panicked")),
-    }
+    parallel::guarded(go, engine_panic)
 }
 
 fn tract_err(what: &str, e: &anyhow::Error) -> Error {
@@ -244,7 +226,7 @@ fn run_inner(
 }
 
 /// A panic inside tract, as an error.
-fn engine_panic(what: String) -> Error {
+pub(crate) fn engine_panic(what: String) -> Error {
     Error::new(
         ErrorKind::Probe,
         format!("the inference engine (tract) failed while running the model: {what}"),
@@ -1021,23 +1003,10 @@ pub fn run_gated(
     sink: &mut OutputSink<'_>,
     progress: &dyn Progress,
 ) -> Result<GatedResult> {
-    let inner = AssertUnwindSafe(|| {
-        run_gated_inner(source, watches, input_plan, plan, budget, sink, progress)
-    });
-    match catch_unwind(inner) {
-        Ok(r) => r,
-        Err(panic) => {
-            let what = panic
-                .downcast_ref::<String>()
-                .map(String::as_str)
-                .or_else(|| panic.downcast_ref::<&str>().copied())
-                .unwrap_or("unknown cause");
-            Err(Error::new(
-                ErrorKind::Probe,
-                format!("the inference engine (tract) failed while running the model: {what}"),
-            ))
-        }
-    }
+    parallel::guarded(
+        || run_gated_inner(source, watches, input_plan, plan, budget, sink, progress),
+        engine_panic,
+    )
 }
 
 fn run_gated_inner(

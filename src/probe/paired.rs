@@ -8,8 +8,6 @@
 //! pass's merge tensors of A's aligned blocks are held (shared references to
 //! tract's values), and B's only until its block is complete.
 
-use std::panic::{AssertUnwindSafe, catch_unwind};
-
 use tract_onnx::prelude::*;
 
 use super::{
@@ -109,20 +107,7 @@ pub fn run_pair(
     pairs: &[(usize, usize)],
     progress: &dyn Progress,
 ) -> Result<PairedResult> {
-    match catch_unwind(AssertUnwindSafe(|| run_pair_inner(a, b, pairs, progress))) {
-        Ok(r) => r,
-        Err(panic) => {
-            let what = panic
-                .downcast_ref::<String>()
-                .map(String::as_str)
-                .or_else(|| panic.downcast_ref::<&str>().copied())
-                .unwrap_or("unknown cause");
-            Err(Error::new(
-                ErrorKind::Probe,
-                format!("the inference engine (tract) failed while running the models: {what}"),
-            ))
-        }
-    }
+    crate::parallel::guarded(|| run_pair_inner(a, b, pairs, progress), super::engine_panic)
 }
 
 fn run_pair_inner(
