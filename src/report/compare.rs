@@ -339,26 +339,7 @@ pub fn render(c: &Comparison, out: &mut dyn io::Write) -> io::Result<()> {
         let _ = writeln!(s, "{}", error_summary(e));
     }
     for o in &c.outputs {
-        let mut parts = vec![];
-        if let Some(e) = o.rel_l2 {
-            parts.push(format!("relative L2 {e:.3e}"));
-        }
-        if let Some(x) = o.cosine {
-            parts.push(format!("cosine {x:.6}"));
-        }
-        if let (Some(t1), Some(k)) = (o.top1, o.classes) {
-            parts.push(format!("top-1 agreement {:.1}% (over {k} classes)", t1 * 100.0));
-        }
-        if let Some(n) = &o.note {
-            parts.push(n.clone());
-        }
-        let _ = writeln!(
-            s,
-            "output '{}' vs '{}': {}",
-            terminal_safe(&o.a),
-            terminal_safe(&o.b),
-            parts.join(", ")
-        );
+        let _ = writeln!(s, "{}", output_line(o, str::to_owned));
     }
     if c.failures.is_empty() {
         let _ = writeln!(s, "verdict: match");
@@ -416,30 +397,30 @@ fn cells(c: &Comparison) -> Vec<(bool, Vec<String>)> {
 fn closing_lines(c: &Comparison) -> Vec<String> {
     let mut lines = Vec::new();
     for o in &c.outputs {
-        let mut parts = vec![];
-        if let Some(e) = o.rel_l2 {
-            parts.push(format!("relative L2 {e:.3e}"));
-        }
-        if let Some(x) = o.cosine {
-            parts.push(format!("cosine {x:.6}"));
-        }
-        if let (Some(t1), Some(k)) = (o.top1, o.classes) {
-            parts.push(format!("top-1 agreement {:.1}% (over {k} classes)", t1 * 100.0));
-        }
-        if let Some(n) = &o.note {
-            parts.push(terminal_safe(n));
-        }
-        lines.push(format!(
-            "output '{}' vs '{}': {}",
-            terminal_safe(&o.a),
-            terminal_safe(&o.b),
-            parts.join(", ")
-        ));
+        lines.push(output_line(o, terminal_safe));
     }
     for f in &c.failures {
         lines.push(format!("fails: {}", terminal_safe(f)));
     }
     lines
+}
+
+/// One output's agreement between A and B, its note written by `note`.
+fn output_line(o: &OutputAgreement, note: impl Fn(&str) -> String) -> String {
+    let mut parts = vec![];
+    if let Some(e) = o.rel_l2 {
+        parts.push(format!("relative L2 {e:.3e}"));
+    }
+    if let Some(x) = o.cosine {
+        parts.push(format!("cosine {x:.6}"));
+    }
+    if let (Some(t1), Some(k)) = (o.top1, o.classes) {
+        parts.push(format!("top-1 agreement {:.1}% (over {k} classes)", t1 * 100.0));
+    }
+    if let Some(n) = &o.note {
+        parts.push(note(n));
+    }
+    format!("output '{}' vs '{}': {}", terminal_safe(&o.a), terminal_safe(&o.b), parts.join(", "))
 }
 
 fn verdict(c: &Comparison) -> (String, &'static str) {
